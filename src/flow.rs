@@ -1,0 +1,789 @@
+//! The normalizing flow: a stack of RealNVP-style affine coupling layers with
+//! ActNorm and fixed permutations, over a standard normal base.
+//!
+//! Each layer maps its input `x` (D features) to `y`:
+//!   a = x * exp(log_scale) + bias            (ActNorm)
+//!   p = a[perm]                              (fixed, seeded permutation)
+//!   p1 = p[..d1], p2 = p[d1..]
+//!   (r, t) = MLP(p1);  s = c * tanh(r / c)   (soft-clamped log-scale)
+//!   y = [p1, p2 * exp(s) + t]
+//! log|det dy/dx| = sum(log_scale) + sum(s).
+//!
+//! The forward pass, its backward pass and the inverse are written by hand
+//! over flat f32 buffers with a reusable [`Workspace`], so a training step
+//! allocates nothing once the workspace exists. The candle implementation in
+//! `reference.rs` computes the same function with autograd and the tests hold
+//! this one to it.
+
+use crate::linalg::{matmul, View};
+use rand::rngs::StdRng;
+use rand::seq::SliceRandom;
+use rand::{Rng, SeedableRng};
+
+/// `0.5 * ln(2 * pi)`, the per-dimension constant of the standard normal.
+pub const HALF_LN_2PI: f64 = 0.918_938_533_204_672_8;
+
+/// Shape of a flow; everything needed to lay out its parameters.
+#[derive(Clone, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct FlowSpec {
+    /// Number of features the flow transforms.
+    pub dim: usize,
+    /// Number of coupling layers (each with its own ActNorm and permutation).
+    pub layers: usize,
+    /// Width of the conditioner's hidden layers.
+    pub hidden: usize,
+    /// Number of hidden layers in each conditioner (at least 1).
+    pub depth: usize,
+    /// Soft clamp `c` of the log-scale: `s = c * tanh(r / c)`.
+    pub clamp: f32,
+}
+
+/// Where one linear layer's weight (`out x inp`, row-major) and bias live in
+/// the flat parameter vector.
+#[derive(Clone, Debug)]
+pub struct LinearSlot {
+    pub weight: usize,
+    pub bias: usize,
+    pub out: usize,
+    pub inp: usize,
+}
+
+/// Where one coupling layer's parameters live in the flat parameter vector.
+#[derive(Clone, Debug)]
+pub struct LayerSlots {
+    pub log_scale: usize,
+    pub bias: usize,
+    pub linears: Vec<LinearSlot>,
+}
+
+impl FlowSpec {
+    /// Sizes of the two halves: `d1` conditions, `d2` is transformed.
+    pub fn split(&self) -> (usize, usize) {
+        let d1 = self.dim / 2;
+        (d1, self.dim - d1)
+    }
+
+    /// Offsets of every parameter tensor, and the total parameter count.
+    pub fn layout(&self) -> (Vec<LayerSlots>, usize) {
+        let (d1, d2) = self.split();
+        let mut next = 0usize;
+        let mut take = |n: usize| {
+            let at = next;
+            next += n;
+            at
+        };
+        let mut layers = Vec::with_capacity(self.layers);
+        for _ in 0..self.layers {
+            let log_scale = take(self.dim);
+            let bias = take(self.dim);
+            let mut shapes = vec![(self.hidden, d1)];
+            shapes.extend(std::iter::repeat_n((self.hidden, self.hidden), self.depth - 1));
+            shapes.push((2 * d2, self.hidden));
+            let linears = shapes
+                .into_iter()
+                .map(|(out, inp)| LinearSlot { weight: take(out * inp), bias: take(out), out, inp })
+                .collect();
+            layers.push(LayerSlots { log_scale, bias, linears });
+        }
+        (layers, next)
+    }
+}
+
+/// A flow's parameters and permutations.
+#[derive(Clone, Debug)]
+pub struct Flow {
+    pub spec: FlowSpec,
+    pub slots: Vec<LayerSlots>,
+    /// All trainable parameters, one flat vector (the optimizer works on it whole).
+    pub params: Vec<f32>,
+    /// For each layer, `perm[j]` is the input feature placed at position `j`.
+    pub perms: Vec<Vec<u32>>,
+}
+
+impl Flow {
+    /// A new flow that is exactly the identity: ActNorm at scale 1 and shift 0,
+    /// and every conditioner's last layer zero, so `s = t = 0`. Hidden layers
+    /// start uniform in +-1/sqrt(fan_in) so that training can break symmetry.
+    pub fn new(spec: FlowSpec, seed: u64) -> Flow {
+        assert!(spec.depth >= 1, "a conditioner needs at least one hidden layer");
+        assert!(spec.layers == 0 || spec.dim >= 2, "coupling needs at least two features");
+        let (slots, total) = spec.layout();
+        let mut rng = StdRng::seed_from_u64(seed);
+        let mut params = vec![0.0f32; total];
+        for layer in &slots {
+            let hidden_linears = &layer.linears[..layer.linears.len() - 1];
+            for lin in hidden_linears {
+                let bound = 1.0 / (lin.inp.max(1) as f32).sqrt();
+                for w in &mut params[lin.weight..lin.weight + lin.out * lin.inp] {
+                    *w = rng.random_range(-bound..bound);
+                }
+            }
+        }
+        let perms = (0..spec.layers)
+            .map(|_| {
+                let mut p: Vec<u32> = (0..spec.dim as u32).collect();
+                p.shuffle(&mut rng);
+                p
+            })
+            .collect();
+        Flow { spec, slots, params, perms }
+    }
+
+    /// Reset ActNorm to the identity and zero every conditioner's output
+    /// layer: the flow becomes the identity map (used as the "no flow" model).
+    pub fn make_identity(&mut self) {
+        let dim = self.spec.dim;
+        for layer in &self.slots {
+            self.params[layer.log_scale..layer.log_scale + 2 * dim].fill(0.0);
+            let last = layer.linears.last().expect("conditioner has layers");
+            self.params[last.weight..last.weight + last.out * last.inp + last.out].fill(0.0);
+        }
+    }
+
+    /// Data-dependent ActNorm initialisation: each layer's ActNorm is set so
+    /// that its output on `x` has zero mean and unit variance per feature,
+    /// layer after layer.
+    pub fn init_actnorm(&mut self, x: &[f32], rows: usize) {
+        let dim = self.spec.dim;
+        let mut ws = Workspace::new(&self.spec, rows);
+        ws.acts[..rows * dim].copy_from_slice(&x[..rows * dim]);
+        for k in 0..self.spec.layers {
+            let input = &ws.acts[k * ws.cap * dim..k * ws.cap * dim + rows * dim];
+            let slot = &self.slots[k];
+            for j in 0..dim {
+                let mean = (0..rows).map(|r| input[r * dim + j] as f64).sum::<f64>() / rows as f64;
+                let var = (0..rows).map(|r| (input[r * dim + j] as f64 - mean).powi(2)).sum::<f64>()
+                    / rows as f64;
+                let log_scale = -0.5 * (var + 1e-6).ln();
+                self.params[slot.log_scale + j] = log_scale as f32;
+                self.params[slot.bias + j] = (-mean * log_scale.exp()) as f32;
+            }
+            forward_layer(self, k, &mut ws, rows, None);
+        }
+    }
+
+    pub fn param_count(&self) -> usize {
+        self.params.len()
+    }
+}
+
+/// Dropout in the conditioner's hidden layers during training. Masks are a
+/// function of (seed, layer, hidden layer, global row), so they do not depend
+/// on how rows are split across threads.
+#[derive(Clone, Copy, Debug)]
+pub struct Dropout {
+    pub rate: f32,
+    pub seed: u64,
+    /// Index of the first row of this chunk within the whole batch.
+    pub row_offset: usize,
+}
+
+/// Preallocated buffers for up to `cap` rows: every layer's input, permuted
+/// ActNorm output, hidden activations and log-scales, plus backward scratch.
+pub struct Workspace {
+    pub cap: usize,
+    /// `layers + 1` blocks of `cap x dim`: block k is layer k's input, the
+    /// last block is the latent `z`.
+    pub acts: Vec<f32>,
+    perm: Vec<f32>,
+    hidden: Vec<f32>,
+    s: Vec<f32>,
+    es: Vec<f32>,
+    out: Vec<f32>,
+    /// Per-row log-determinant of the whole flow.
+    pub logdet: Vec<f64>,
+    g: Vec<f32>,
+    gp: Vec<f32>,
+    gout: Vec<f32>,
+    gh_a: Vec<f32>,
+    gh_b: Vec<f32>,
+    gx1: Vec<f32>,
+    /// 1 / (1 - dropout rate) of the last forward pass.
+    keep_inv: f32,
+}
+
+impl Workspace {
+    pub fn new(spec: &FlowSpec, cap: usize) -> Workspace {
+        let (d1, d2) = spec.split();
+        let (dim, k, h) = (spec.dim, spec.layers, spec.hidden);
+        Workspace {
+            cap,
+            acts: vec![0.0; (k + 1) * cap * dim],
+            perm: vec![0.0; k * cap * dim],
+            hidden: vec![0.0; k * spec.depth * cap * h],
+            s: vec![0.0; k * cap * d2],
+            es: vec![0.0; k * cap * d2],
+            out: vec![0.0; cap * 2 * d2],
+            logdet: vec![0.0; cap],
+            g: vec![0.0; cap * dim],
+            gp: vec![0.0; cap * dim],
+            gout: vec![0.0; cap * 2 * d2],
+            gh_a: vec![0.0; cap * h],
+            gh_b: vec![0.0; cap * h],
+            gx1: vec![0.0; cap * d1],
+            keep_inv: 1.0,
+        }
+    }
+
+    /// The latent vectors of the last forward pass (`rows x dim`).
+    pub fn latent(&self, dim: usize, layers: usize, rows: usize) -> &[f32] {
+        let at = layers * self.cap * dim;
+        &self.acts[at..at + rows * dim]
+    }
+}
+
+/// splitmix64: a tiny, well-mixed hash for dropout masks.
+fn mix(mut z: u64) -> u64 {
+    z = z.wrapping_add(0x9E37_79B9_7F4A_7C15);
+    z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
+    z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
+    z ^ (z >> 31)
+}
+
+/// Fill `out` (rows x out) with `inp * W^T + b`.
+fn linear_forward(params: &[f32], lin: &LinearSlot, inp: View<'_, f32>, out: &mut [f32]) {
+    let rows = inp.rows;
+    let bias = &params[lin.bias..lin.bias + lin.out];
+    for r in 0..rows {
+        out[r * lin.out..(r + 1) * lin.out].copy_from_slice(bias);
+    }
+    let w = View::transposed(&params[lin.weight..lin.weight + lin.out * lin.inp], lin.out, lin.inp);
+    matmul(out, lin.out, true, inp, w);
+}
+
+/// The conditioner of layer `k` on `inp` (rows x d1): hidden activations go
+/// to `hidden` (depth blocks, `block` apart), `(r, t)` to `out` (rows x 2*d2).
+fn run_conditioner(
+    flow: &Flow,
+    k: usize,
+    inp: View<'_, f32>,
+    hidden: &mut [f32],
+    block: usize,
+    out: &mut [f32],
+    dropout: Option<(Dropout, usize)>,
+) {
+    let (spec, slot, params) = (&flow.spec, &flow.slots[k], &flow.params);
+    let (rows, hid) = (inp.rows, spec.hidden);
+    for i in 0..spec.depth {
+        let (prev, cur) = hidden.split_at_mut(i * block);
+        let cur = &mut cur[..rows * hid];
+        let layer_in = if i == 0 { inp } else { View::rows(&prev[(i - 1) * block..], rows, hid, hid) };
+        linear_forward(params, &slot.linears[i], layer_in, cur);
+        match dropout {
+            Some((d, layer)) if d.rate > 0.0 => {
+                let scale = 1.0 / (1.0 - d.rate);
+                let threshold = (d.rate as f64 * u64::MAX as f64) as u64;
+                for r in 0..rows {
+                    let unit = ((layer * 64 + i) as u64) << 40;
+                    let mut state = mix(d.seed ^ mix(unit ^ (d.row_offset + r) as u64));
+                    for v in &mut cur[r * hid..(r + 1) * hid] {
+                        state = mix(state);
+                        *v = if state < threshold { 0.0 } else { v.max(0.0) * scale };
+                    }
+                }
+            }
+            _ => cur.iter_mut().for_each(|v| *v = v.max(0.0)),
+        }
+    }
+    let last_in = View::rows(&hidden[(spec.depth - 1) * block..], rows, hid, hid);
+    linear_forward(params, &slot.linears[spec.depth], last_in, out);
+}
+
+/// Forward pass of layer `k` over the first `rows` rows of the workspace:
+/// reads block k of `acts`, writes block k+1 and adds to `logdet`.
+fn forward_layer(flow: &Flow, k: usize, ws: &mut Workspace, rows: usize, dropout: Option<Dropout>) {
+    let spec = &flow.spec;
+    let (dim, hid, cap) = (spec.dim, spec.hidden, ws.cap);
+    let (d1, d2) = spec.split();
+    let slot = &flow.slots[k];
+    let params = &flow.params;
+    let perm = &flow.perms[k];
+    let log_scale = &params[slot.log_scale..slot.log_scale + dim];
+    let shift = &params[slot.bias..slot.bias + dim];
+
+    let (before, after) = ws.acts.split_at_mut((k + 1) * cap * dim);
+    let input = &before[k * cap * dim..k * cap * dim + rows * dim];
+    let output = &mut after[..rows * dim];
+    let p = &mut ws.perm[k * cap * dim..k * cap * dim + rows * dim];
+    for r in 0..rows {
+        let (xi, pr) = (&input[r * dim..(r + 1) * dim], &mut p[r * dim..(r + 1) * dim]);
+        for (j, &src) in perm.iter().enumerate() {
+            let src = src as usize;
+            pr[j] = xi[src] * log_scale[src].exp() + shift[src];
+        }
+    }
+    let actnorm_logdet: f64 = log_scale.iter().map(|&v| v as f64).sum();
+
+    // Conditioner MLP on p1 = p[:, ..d1].
+    let hidden_block = cap * hid;
+    let layer_hidden = &mut ws.hidden[k * spec.depth * hidden_block..(k + 1) * spec.depth * hidden_block];
+    let out = &mut ws.out[..rows * 2 * d2];
+    let masks = dropout.map(|d| (d, k));
+    run_conditioner(flow, k, View::rows(&p[..], rows, d1, dim), layer_hidden, hidden_block, out, masks);
+
+    let c = spec.clamp;
+    let s = &mut ws.s[k * cap * d2..k * cap * d2 + rows * d2];
+    let es = &mut ws.es[k * cap * d2..k * cap * d2 + rows * d2];
+    for r in 0..rows {
+        let mut row_logdet = actnorm_logdet;
+        let o = &out[r * 2 * d2..(r + 1) * 2 * d2];
+        for j in 0..d2 {
+            let sv = c * (o[j] / c).tanh();
+            let e = sv.exp();
+            s[r * d2 + j] = sv;
+            es[r * d2 + j] = e;
+            row_logdet += sv as f64;
+            output[r * dim + d1 + j] = p[r * dim + d1 + j] * e + o[d2 + j];
+        }
+        output[r * dim..r * dim + d1].copy_from_slice(&p[r * dim..r * dim + d1]);
+        ws.logdet[r] += row_logdet;
+    }
+}
+
+/// Run the whole flow on `x` (`rows x dim`, rows <= ws.cap). Afterwards the
+/// latent is `ws.latent(..)` and the per-row log-determinant is `ws.logdet`.
+pub fn forward(flow: &Flow, ws: &mut Workspace, x: &[f32], rows: usize, dropout: Option<Dropout>) {
+    let dim = flow.spec.dim;
+    assert!(rows <= ws.cap, "batch larger than workspace");
+    ws.acts[..rows * dim].copy_from_slice(&x[..rows * dim]);
+    ws.logdet[..rows].fill(0.0);
+    ws.keep_inv = 1.0 / (1.0 - dropout.map(|d| d.rate).unwrap_or(0.0));
+    for k in 0..flow.spec.layers {
+        forward_layer(flow, k, ws, rows, dropout);
+    }
+}
+
+/// Per-row negative log-density of the flow's own input, `-log p(x)` in
+/// nats, from a finished forward pass: `0.5 ||z||^2 + (d/2) ln 2pi - logdet`.
+pub fn nll_rows(flow: &Flow, ws: &Workspace, rows: usize, out: &mut [f64]) {
+    for (r, o) in out[..rows].iter_mut().enumerate() {
+        *o = row_nll(flow, ws, r);
+    }
+}
+
+fn row_nll(flow: &Flow, ws: &Workspace, r: usize) -> f64 {
+    let dim = flow.spec.dim;
+    let at = flow.spec.layers * ws.cap * dim + r * dim;
+    let sq: f64 = ws.acts[at..at + dim].iter().map(|&v| (v as f64) * (v as f64)).sum();
+    0.5 * sq + dim as f64 * HALF_LN_2PI - ws.logdet[r]
+}
+
+/// Backward pass of `scale * sum_rows NLL` after [`forward`] on the same
+/// rows; adds the gradient with respect to every parameter into `grad`.
+pub fn backward_nll(flow: &Flow, ws: &mut Workspace, rows: usize, scale: f32, grad: &mut [f32]) {
+    let spec = &flow.spec;
+    let (dim, hid, cap) = (spec.dim, spec.hidden, ws.cap);
+    let (d1, d2) = spec.split();
+    let c = spec.clamp;
+    let params = &flow.params;
+    let Workspace { acts, perm, hidden, s, es, g, gp, gout, gh_a, gh_b, gx1, keep_inv, .. } = ws;
+    let keep_inv = *keep_inv;
+    // dL/dz = scale * z.
+    let z = &acts[spec.layers * cap * dim..spec.layers * cap * dim + rows * dim];
+    for (gv, &zv) in g[..rows * dim].iter_mut().zip(z) {
+        *gv = scale * zv;
+    }
+    let hidden_block = cap * hid;
+    for k in (0..spec.layers).rev() {
+        let slot = &flow.slots[k];
+        let p = &perm[k * cap * dim..k * cap * dim + rows * dim];
+        let s = &s[k * cap * d2..k * cap * d2 + rows * d2];
+        let es = &es[k * cap * d2..k * cap * d2 + rows * d2];
+        // Through y2 = p2 * exp(s) + t and the -scale * sum(s) logdet term.
+        for r in 0..rows {
+            for j in 0..d2 {
+                let g2 = g[r * dim + d1 + j];
+                let e = es[r * d2 + j];
+                let sv = s[r * d2 + j] / c;
+                let gs = g2 * p[r * dim + d1 + j] * e - scale;
+                gout[r * 2 * d2 + j] = gs * (1.0 - sv * sv);
+                gout[r * 2 * d2 + d2 + j] = g2;
+                gp[r * dim + d1 + j] = g2 * e;
+            }
+        }
+        // Through the conditioner MLP, last layer first; the running gradient
+        // ping-pongs between the two hidden scratch buffers.
+        let layer_hidden = &hidden[k * spec.depth * hidden_block..(k + 1) * spec.depth * hidden_block];
+        let mut src_is_a: Option<bool> = None;
+        for i in (0..=spec.depth).rev() {
+            let lin = &slot.linears[i];
+            let (g_cur, dst): (&[f32], &mut [f32]) = match src_is_a {
+                None => (&gout[..rows * 2 * d2], &mut gh_a[..]),
+                Some(true) => (&gh_a[..rows * hid], &mut gh_b[..]),
+                Some(false) => (&gh_b[..rows * hid], &mut gh_a[..]),
+            };
+            let inp = if i == 0 {
+                View::rows(p, rows, d1, dim)
+            } else {
+                View::rows(&layer_hidden[(i - 1) * hidden_block..(i - 1) * hidden_block + rows * hid], rows, hid, hid)
+            };
+            // gW += g_cur^T * inp ; gb += column sums of g_cur.
+            let (gw, gb) = grad[lin.weight..lin.bias + lin.out].split_at_mut(lin.out * lin.inp);
+            matmul(gw, lin.inp, true, View::transposed(g_cur, rows, lin.out), inp);
+            for r in 0..rows {
+                for (b, &gv) in gb.iter_mut().zip(&g_cur[r * lin.out..(r + 1) * lin.out]) {
+                    *b += gv;
+                }
+            }
+            let w = View::rows(&params[lin.weight..lin.weight + lin.out * lin.inp], lin.out, lin.inp, lin.inp);
+            let g_cur = View::rows(g_cur, rows, lin.out, lin.out);
+            if i == 0 {
+                matmul(&mut gx1[..rows * d1], d1, false, g_cur, w);
+            } else {
+                // Into the previous hidden layer's output, then through ReLU and
+                // dropout: zero where the stored output is 0, scaled by 1/keep
+                // where it was kept.
+                let gh = &mut dst[..rows * hid];
+                matmul(gh, hid, false, g_cur, w);
+                let h = &layer_hidden[(i - 1) * hidden_block..(i - 1) * hidden_block + rows * hid];
+                for (gv, &hv) in gh.iter_mut().zip(h) {
+                    *gv = if hv > 0.0 { *gv * keep_inv } else { 0.0 };
+                }
+                src_is_a = Some(!src_is_a.unwrap_or(false));
+            }
+        }
+        // gp1 = g1 + the conditioner's input gradient; then back through the
+        // permutation and ActNorm.
+        for r in 0..rows {
+            for j in 0..d1 {
+                gp[r * dim + j] = g[r * dim + j] + gx1[r * d1 + j];
+            }
+        }
+        let log_scale = &params[slot.log_scale..slot.log_scale + dim];
+        let shift = &params[slot.bias..slot.bias + dim];
+        for (j, &src) in flow.perms[k].iter().enumerate() {
+            let src = src as usize;
+            let e = log_scale[src].exp();
+            let (mut g_ls, mut g_b) = (0.0f32, 0.0f32);
+            for r in 0..rows {
+                let gv = gp[r * dim + j];
+                g_ls += gv * (p[r * dim + j] - shift[src]);
+                g_b += gv;
+                g[r * dim + src] = gv * e;
+            }
+            grad[slot.log_scale + src] += g_ls - scale * rows as f32;
+            grad[slot.bias + src] += g_b;
+        }
+    }
+}
+
+/// The exact inverse: latent `z` (`rows x dim`) back to the flow's input.
+pub fn inverse(flow: &Flow, z: &[f32], rows: usize) -> Vec<f32> {
+    let spec = &flow.spec;
+    let (dim, hid) = (spec.dim, spec.hidden);
+    let (d1, d2) = spec.split();
+    let mut y = z[..rows * dim].to_vec();
+    let mut p = vec![0.0f32; rows * dim];
+    let mut hidden = vec![0.0f32; spec.depth * rows * hid];
+    let mut out = vec![0.0f32; rows * 2 * d2];
+    for k in (0..spec.layers).rev() {
+        run_conditioner(flow, k, View::rows(&y, rows, d1, dim), &mut hidden, rows * hid, &mut out, None);
+        for r in 0..rows {
+            p[r * dim..r * dim + d1].copy_from_slice(&y[r * dim..r * dim + d1]);
+            for j in 0..d2 {
+                let sv = spec.clamp * (out[r * 2 * d2 + j] / spec.clamp).tanh();
+                let t = out[r * 2 * d2 + d2 + j];
+                p[r * dim + d1 + j] = (y[r * dim + d1 + j] - t) * (-sv).exp();
+            }
+        }
+        let slot = &flow.slots[k];
+        for (j, &src) in flow.perms[k].iter().enumerate() {
+            let src = src as usize;
+            let inv = (-flow.params[slot.log_scale + src]).exp();
+            let b = flow.params[slot.bias + src];
+            for r in 0..rows {
+                y[r * dim + src] = (p[r * dim + j] - b) * inv;
+            }
+        }
+    }
+    y
+}
+
+/// One workspace and one gradient buffer per thread. Batches are split by
+/// rows into contiguous chunks, one per thread; gradients are summed in
+/// thread order, so a fixed thread count gives bit-identical results.
+pub struct Workers {
+    chunk_cap: usize,
+    pool: Vec<(Workspace, Vec<f32>)>,
+}
+
+/// Fewest rows worth handing to a thread of its own.
+const MIN_ROWS_PER_THREAD: usize = 32;
+
+impl Workers {
+    pub fn new(flow: &Flow, threads: usize, batch_cap: usize) -> Workers {
+        let threads = threads.max(1);
+        let chunk_cap = batch_cap.div_ceil(threads).max(1);
+        let pool = (0..threads)
+            .map(|_| (Workspace::new(&flow.spec, chunk_cap), vec![0.0f32; flow.param_count()]))
+            .collect();
+        Workers { chunk_cap, pool }
+    }
+
+    fn chunks(&self, rows: usize) -> usize {
+        let useful = rows.div_ceil(MIN_ROWS_PER_THREAD).max(1);
+        useful.min(self.pool.len()).max(rows.div_ceil(self.chunk_cap))
+    }
+
+    /// Mean NLL over `rows` rows of `x` and its gradient (written to `grad`).
+    pub fn nll_and_grad(&mut self, flow: &Flow, x: &[f32], rows: usize, dropout: Option<(f32, u64)>, grad: &mut [f32]) -> f64 {
+        let dim = flow.spec.dim;
+        let parts = self.chunks(rows);
+        assert!(parts <= self.pool.len(), "batch larger than the workers were sized for");
+        let per = rows.div_ceil(parts);
+        let scale = 1.0 / rows as f32;
+        let job = |(idx, (ws, g)): (usize, &mut (Workspace, Vec<f32>))| -> f64 {
+            let start = (idx * per).min(rows);
+            let n = per.min(rows - start);
+            g.fill(0.0);
+            if n == 0 {
+                return 0.0;
+            }
+            let d = dropout.map(|(rate, seed)| Dropout { rate, seed, row_offset: start });
+            forward(flow, ws, &x[start * dim..(start + n) * dim], n, d);
+            let total = (0..n).map(|r| row_nll(flow, ws, r)).sum();
+            backward_nll(flow, ws, n, scale, g);
+            total
+        };
+        let pool = &mut self.pool[..parts];
+        let totals: Vec<f64> = if parts == 1 {
+            pool.iter_mut().enumerate().map(job).collect()
+        } else {
+            std::thread::scope(|sc| {
+                let handles: Vec<_> = pool.iter_mut().enumerate().map(|item| sc.spawn(move || job(item))).collect();
+                handles.into_iter().map(|h| h.join().expect("worker thread panicked")).collect()
+            })
+        };
+        grad.copy_from_slice(&pool[0].1);
+        for (_, g) in &pool[1..] {
+            for (a, b) in grad.iter_mut().zip(g) {
+                *a += b;
+            }
+        }
+        totals.iter().sum::<f64>() / rows as f64
+    }
+
+    /// Per-row NLL of the flow's input, any number of rows, written to `out`.
+    pub fn nll(&mut self, flow: &Flow, x: &[f32], rows: usize, out: &mut [f64]) {
+        let dim = flow.spec.dim;
+        let block = self.chunk_cap * self.pool.len();
+        let mut start = 0;
+        while start < rows {
+            let n = block.min(rows - start);
+            let parts = self.chunks(n);
+            let per = n.div_ceil(parts);
+            let xs = &x[start * dim..(start + n) * dim];
+            let outs = &mut out[start..start + n];
+            let pool = &mut self.pool[..parts];
+            std::thread::scope(|sc| {
+                for ((ws, _), (xc, oc)) in pool.iter_mut().zip(xs.chunks(per * dim).zip(outs.chunks_mut(per))) {
+                    let m = oc.len();
+                    let mut run = move || {
+                        forward(flow, ws, xc, m, None);
+                        nll_rows(flow, ws, m, oc);
+                    };
+                    if parts == 1 {
+                        run()
+                    } else {
+                        sc.spawn(run);
+                    }
+                }
+            });
+            start += n;
+        }
+    }
+}
+
+#[cfg(test)]
+mod reference;
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use rand_distr::{Distribution, StandardNormal};
+
+    fn spec(dim: usize, layers: usize, hidden: usize, depth: usize) -> FlowSpec {
+        FlowSpec { dim, layers, hidden, depth, clamp: 3.0 }
+    }
+
+    /// A flow with every parameter random (non-identity ActNorm, non-zero
+    /// last layers), as after some training.
+    fn random_flow(spec: FlowSpec, seed: u64) -> Flow {
+        let mut flow = Flow::new(spec, seed);
+        let mut rng = StdRng::seed_from_u64(seed + 1);
+        for p in &mut flow.params {
+            *p = rng.random_range(-0.4f32..0.4);
+        }
+        flow
+    }
+
+    fn normal(rows: usize, dim: usize, seed: u64) -> Vec<f32> {
+        let mut rng = StdRng::seed_from_u64(seed);
+        (0..rows * dim).map(|_| StandardNormal.sample(&mut rng)).collect()
+    }
+
+    fn fast(flow: &Flow, x: &[f32], rows: usize, dropout: Option<(f32, u64)>) -> (f64, Vec<f32>) {
+        let mut workers = Workers::new(flow, 1, rows);
+        let mut grad = vec![0.0; flow.param_count()];
+        let nll = workers.nll_and_grad(flow, x, rows, dropout, &mut grad);
+        (nll, grad)
+    }
+
+    fn init_candle() {
+        // candle's element-wise pool collapses on a busy 2-core machine.
+        std::env::set_var("CANDLE_NUM_THREADS", "1");
+    }
+
+    /// Every parameter gradient of the hand-written backward pass agrees with
+    /// candle's autograd (reference implementation, f64) to 1e-4 relative to
+    /// the largest gradient entry of its tensor.
+    #[test]
+    fn gradients_match_candle_autograd() {
+        init_candle();
+        for (dim, layers, hidden, depth) in [(7, 3, 16, 2), (2, 2, 8, 1), (12, 2, 24, 3)] {
+            let flow = random_flow(spec(dim, layers, hidden, depth), 11 + dim as u64);
+            let rows = 64;
+            let x = normal(rows, dim, 5);
+            let (nll, grad) = fast(&flow, &x, rows, None);
+            let r = reference::evaluate(&flow, &x, rows).unwrap();
+            assert!((nll - r.mean_nll).abs() <= 1e-5 * r.mean_nll.abs().max(1.0), "{nll} vs {}", r.mean_nll);
+            for layer in &flow.slots {
+                let mut tensors = vec![(layer.log_scale, dim), (layer.bias, dim)];
+                for lin in &layer.linears {
+                    tensors.push((lin.weight, lin.out * lin.inp));
+                    tensors.push((lin.bias, lin.out));
+                }
+                for (at, n) in tensors {
+                    let want = &r.grad[at..at + n];
+                    let top = want.iter().fold(0.0f64, |m, v| m.max(v.abs())).max(1e-3);
+                    for (i, (&g, &w)) in grad[at..at + n].iter().zip(want).enumerate() {
+                        assert!((g as f64 - w).abs() <= 1e-4 * top, "dim {dim}: param {} grad {g} vs {w}", at + i);
+                    }
+                }
+            }
+        }
+    }
+
+    /// The latent and log-determinant of the forward pass agree with candle's.
+    #[test]
+    fn forward_matches_candle() {
+        init_candle();
+        let flow = random_flow(spec(5, 4, 12, 2), 3);
+        let rows = 20;
+        let x = normal(rows, 5, 9);
+        let mut ws = Workspace::new(&flow.spec, rows);
+        forward(&flow, &mut ws, &x, rows, None);
+        let r = reference::evaluate(&flow, &x, rows).unwrap();
+        for (a, b) in ws.latent(5, 4, rows).iter().zip(&r.z) {
+            assert!((*a as f64 - b).abs() < 1e-4 * b.abs().max(1.0));
+        }
+        for (a, b) in ws.logdet[..rows].iter().zip(&r.logdet) {
+            assert!((a - b).abs() < 1e-4 * b.abs().max(1.0));
+        }
+    }
+
+    /// Change of variables: ln|det J| of the forward map, with J by central
+    /// finite differences of the f64 reference map, equals the analytic
+    /// log-determinant.
+    #[test]
+    fn log_determinant_matches_finite_difference_jacobian() {
+        init_candle();
+        for dim in [2usize, 5, 8] {
+            let flow = random_flow(spec(dim, 3, 16, 2), 21 + dim as u64);
+            let x = normal(1, dim, 77);
+            let mut ws = Workspace::new(&flow.spec, 1);
+            forward(&flow, &mut ws, &x, 1, None);
+            let x64: Vec<f64> = x.iter().map(|&v| v as f64).collect();
+            let eps = 1e-5;
+            let mut jac = nalgebra::DMatrix::<f64>::zeros(dim, dim);
+            for j in 0..dim {
+                let (mut hi, mut lo) = (x64.clone(), x64.clone());
+                hi[j] += eps;
+                lo[j] -= eps;
+                let (fh, fl) = (reference::map_row(&flow, &hi).unwrap(), reference::map_row(&flow, &lo).unwrap());
+                for i in 0..dim {
+                    jac[(i, j)] = (fh[i] - fl[i]) / (2.0 * eps);
+                }
+            }
+            let fd = jac.determinant().abs().ln();
+            assert!((fd - ws.logdet[0]).abs() < 1e-3, "dim {dim}: fd {fd} vs analytic {}", ws.logdet[0]);
+        }
+    }
+
+    /// inverse(forward(x)) = x, for a random flow, an identity flow and odd D.
+    #[test]
+    fn inverse_undoes_forward() {
+        for (flow, dim) in [
+            (random_flow(spec(9, 5, 32, 2), 4), 9),
+            (Flow::new(spec(6, 3, 8, 1), 4), 6),
+        ] {
+            let rows = 100;
+            let x = normal(rows, dim, 1);
+            let mut ws = Workspace::new(&flow.spec, rows);
+            forward(&flow, &mut ws, &x, rows, None);
+            let back = inverse(&flow, ws.latent(dim, flow.spec.layers, rows), rows);
+            for (a, b) in back.iter().zip(&x) {
+                assert!((a - b).abs() < 1e-4 * b.abs().max(1.0), "{a} vs {b}");
+            }
+        }
+    }
+
+    /// An untrained flow is the identity, so its log-density is the standard
+    /// multivariate normal's: -0.5 ||x||^2 - (D/2) ln(2 pi) (closed form).
+    #[test]
+    fn untrained_flow_is_standard_normal() {
+        let dim = 6;
+        let flow = Flow::new(spec(dim, 4, 16, 2), 8);
+        let rows = 30;
+        let x = normal(rows, dim, 2);
+        let mut workers = Workers::new(&flow, 2, 16);
+        let mut nll = vec![0.0; rows];
+        workers.nll(&flow, &x, rows, &mut nll);
+        for r in 0..rows {
+            let sq: f64 = x[r * dim..(r + 1) * dim].iter().map(|&v| (v as f64).powi(2)).sum();
+            let want = 0.5 * sq + 0.5 * dim as f64 * (2.0 * std::f64::consts::PI).ln();
+            assert!((nll[r] - want).abs() < 1e-4, "{} vs {want}", nll[r]);
+        }
+    }
+
+    /// With dropout the gradient is still the derivative of the (fixed-mask)
+    /// loss: a central finite difference along a random direction.
+    #[test]
+    fn dropout_gradient_matches_directional_finite_difference() {
+        let mut flow = random_flow(spec(6, 2, 32, 2), 5);
+        let rows = 40;
+        let x = normal(rows, 6, 3);
+        let drop = Some((0.3, 1234));
+        let (_, grad) = fast(&flow, &x, rows, drop);
+        let mut rng = StdRng::seed_from_u64(9);
+        let dir: Vec<f32> = (0..flow.param_count()).map(|_| rng.random_range(-1.0f32..1.0)).collect();
+        let slope: f64 = grad.iter().zip(&dir).map(|(g, d)| (*g as f64) * (*d as f64)).sum();
+        let eps = 1e-3f32;
+        let base = flow.params.clone();
+        let at = |flow: &mut Flow, sign: f32| {
+            for ((p, b), d) in flow.params.iter_mut().zip(&base).zip(&dir) {
+                *p = b + sign * eps * d;
+            }
+            fast(flow, &x, rows, drop).0
+        };
+        let fd = (at(&mut flow, 1.0) - at(&mut flow, -1.0)) / (2.0 * eps as f64);
+        assert!((fd - slope).abs() < 2e-2 * slope.abs().max(1.0), "fd {fd} vs analytic {slope}");
+    }
+
+    /// Splitting a batch across threads changes nothing but summation order.
+    #[test]
+    fn threads_agree_with_one_thread() {
+        let flow = random_flow(spec(10, 3, 32, 2), 6);
+        let rows = 256;
+        let x = normal(rows, 10, 4);
+        let (n1, g1) = fast(&flow, &x, rows, Some((0.2, 7)));
+        let mut workers = Workers::new(&flow, 3, rows);
+        let mut g3 = vec![0.0; flow.param_count()];
+        let n3 = workers.nll_and_grad(&flow, &x, rows, Some((0.2, 7)), &mut g3);
+        assert!((n1 - n3).abs() < 1e-6 * n1.abs());
+        let top = g1.iter().fold(0.0f32, |m, v| m.max(v.abs()));
+        for (a, b) in g1.iter().zip(&g3) {
+            assert!((a - b).abs() <= 1e-5 * top);
+        }
+    }
+}
