@@ -1,1 +1,206 @@
-fn main(){}
+//! The `tidemark` command line: parses arguments and calls the library.
+
+use clap::{Args, Parser, Subcommand};
+use std::path::PathBuf;
+use std::process::ExitCode;
+use tidemark::preprocess::Method;
+use tidemark::train::FitOptions;
+use tidemark::{data, demo, model::Model, score, Result};
+
+#[derive(Parser)]
+#[command(name = "tidemark", version, about = "Fit normalizing flows to embedding vectors and score new vectors for how in-distribution they are")]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Subcommand)]
+enum Command {
+    /// Fit a flow to embedding vectors (.npy, .safetensors or .csv) and save it.
+    Fit(FitArgs),
+    /// Score vectors with a fitted model: one CSV row per vector.
+    Score {
+        model: PathBuf,
+        data: PathBuf,
+        /// Output CSV file, or - for standard output.
+        #[arg(short, long)]
+        output: PathBuf,
+        #[command(flatten)]
+        input: InputArgs,
+        #[arg(long, default_value_t = default_threads())]
+        threads: usize,
+    },
+    /// Print how a model was made and how it did.
+    Inspect {
+        model: PathBuf,
+        /// Print the raw metadata JSON instead.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Draw vectors from a fitted model into a .npy file.
+    Sample {
+        model: PathBuf,
+        #[arg(short = 'n', long)]
+        count: usize,
+        #[arg(short, long)]
+        output: PathBuf,
+        #[arg(long, default_value_t = 0)]
+        seed: u64,
+    },
+    /// Run the whole job on the shipped demo data and summarise it.
+    Demo {
+        #[arg(long, default_value = "demo-data")]
+        data_dir: PathBuf,
+        #[arg(long, default_value = "demo-out")]
+        out_dir: PathBuf,
+        #[arg(long, default_value_t = default_threads())]
+        threads: usize,
+    },
+}
+
+#[derive(Args)]
+struct InputArgs {
+    /// Tensor to read from a .safetensors file holding several.
+    #[arg(long)]
+    tensor: Option<String>,
+}
+
+#[derive(Args)]
+struct FitArgs {
+    data: PathBuf,
+    /// Where to write the model (.safetensors).
+    #[arg(short, long)]
+    output: PathBuf,
+    #[command(flatten)]
+    input: InputArgs,
+    /// Integer class label per row (.npy or one-column .csv); class counts are stored in the model.
+    #[arg(long)]
+    labels: Option<PathBuf>,
+    /// Preprocessing before the flow [default: pca].
+    #[arg(long, value_enum)]
+    method: Option<Method>,
+    /// Coupling layers [default: 6].
+    #[arg(long)]
+    layers: Option<usize>,
+    /// Conditioner hidden width [default: 2 x flow dims, within 64..512].
+    #[arg(long)]
+    hidden: Option<usize>,
+    /// Conditioner hidden layers [default: 2].
+    #[arg(long)]
+    depth: Option<usize>,
+    /// Soft clamp of the coupling log-scale [default: 3].
+    #[arg(long)]
+    clamp: Option<f32>,
+    /// Leading principal components the flow models; the rest are standard normal [default: all, or a third when rows per dimension < 50].
+    #[arg(long)]
+    flow_dims: Option<usize>,
+    /// Maximum epochs [default: by data size, 20..200].
+    #[arg(long)]
+    epochs: Option<usize>,
+    /// Minibatch size [default: 128, or 256 from 20,000 rows].
+    #[arg(long)]
+    batch_size: Option<usize>,
+    /// Peak learning rate (Adam; warm-up then cosine decay) [default: 0.001].
+    #[arg(long)]
+    lr: Option<f64>,
+    /// Fraction of rows held out for validation and early stopping [default: 0.1].
+    #[arg(long)]
+    val_fraction: Option<f64>,
+    /// Stop after this many epochs without a better validation NLL [default: 10].
+    #[arg(long)]
+    patience: Option<usize>,
+    /// Dropout in the conditioner [default: by rows per dimension].
+    #[arg(long)]
+    dropout: Option<f32>,
+    /// Gaussian noise added to whitened training vectors [default: by rows per dimension].
+    #[arg(long)]
+    noise: Option<f32>,
+    /// A feature is dead when its std is at most this fraction of the largest std [default: 1e-6].
+    #[arg(long)]
+    dead_threshold: Option<f64>,
+    #[arg(long, default_value_t = 0)]
+    seed: u64,
+    #[arg(long, default_value_t = default_threads())]
+    threads: usize,
+    /// No progress output.
+    #[arg(long, short)]
+    quiet: bool,
+}
+
+fn default_threads() -> usize {
+    std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1)
+}
+
+fn run(cli: Cli) -> Result<()> {
+    match cli.command {
+        Command::Fit(a) => {
+            let x = data::read_matrix(&a.data, a.input.tensor.as_deref())?;
+            let labels = match &a.labels {
+                Some(p) => {
+                    let l = data::read_labels(p)?;
+                    data::check_label_count(p, l.len(), x.rows)?;
+                    Some(l)
+                }
+                None => None,
+            };
+            let opts = FitOptions {
+                method: a.method,
+                layers: a.layers,
+                hidden: a.hidden,
+                depth: a.depth,
+                clamp: a.clamp,
+                flow_dims: a.flow_dims,
+                epochs: a.epochs,
+                batch_size: a.batch_size,
+                lr: a.lr,
+                val_fraction: a.val_fraction,
+                patience: a.patience,
+                dropout: a.dropout,
+                noise: a.noise,
+                dead_threshold: a.dead_threshold,
+                seed: a.seed,
+                threads: a.threads,
+                quiet: a.quiet,
+            };
+            let model = tidemark::train::fit(&x, labels.as_deref(), &opts)?;
+            model.save(&a.output)?;
+            if !a.quiet {
+                eprintln!("{}", model.meta.fit_summary(&a.output));
+            }
+            Ok(())
+        }
+        Command::Score { model, data: path, output, input, threads } => {
+            let m = Model::load(&model)?;
+            let x = data::read_matrix(&path, input.tensor.as_deref())?;
+            m.check_width(&path, x.cols)?;
+            score::write_csv(&output, &score::score(&m, &x, threads))
+        }
+        Command::Inspect { model, json } => {
+            let m = Model::load(&model)?;
+            if json {
+                println!("{}", serde_json::to_string_pretty(&m.meta).expect("metadata serializes"));
+            } else {
+                print!("{}", m.meta.describe());
+            }
+            Ok(())
+        }
+        Command::Sample { model, count, output, seed } => {
+            let m = Model::load(&model)?;
+            let samples = m.sample(count, seed);
+            tidemark::output::write_atomic(&output, |w| {
+                data::write_npy(w, &samples).map_err(|source| tidemark::Error::Io { path: output.clone(), source })
+            })
+        }
+        Command::Demo { data_dir, out_dir, threads } => demo::run(&data_dir, &out_dir, threads),
+    }
+}
+
+fn main() -> ExitCode {
+    match run(Cli::parse()) {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => {
+            eprintln!("error: {e}");
+            ExitCode::FAILURE
+        }
+    }
+}

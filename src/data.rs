@@ -1,0 +1,413 @@
+//! Data in: embedding matrices from `.npy`, `.safetensors` and `.csv` files,
+//! and integer class labels; every value checked before it reaches a model.
+
+use half::{bf16, f16};
+use std::fmt;
+use std::io::Read;
+use std::path::{Path, PathBuf};
+
+/// A problem with an input file, always naming the file.
+#[derive(Debug, thiserror::Error)]
+#[error("{}: {msg}", path.display())]
+pub struct DataError {
+    pub path: PathBuf,
+    pub msg: String,
+}
+
+fn fail<T>(path: &Path, msg: impl fmt::Display) -> Result<T, DataError> {
+    Err(DataError { path: path.to_path_buf(), msg: msg.to_string() })
+}
+
+/// A dense row-major matrix of f32: one embedding vector per row.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Matrix {
+    pub rows: usize,
+    pub cols: usize,
+    pub data: Vec<f32>,
+}
+
+impl Matrix {
+    pub fn new(rows: usize, cols: usize, data: Vec<f32>) -> Matrix {
+        assert_eq!(rows * cols, data.len());
+        Matrix { rows, cols, data }
+    }
+
+    pub fn row(&self, r: usize) -> &[f32] {
+        &self.data[r * self.cols..(r + 1) * self.cols]
+    }
+
+    /// The rows at `idx`, in that order.
+    pub fn select_rows(&self, idx: &[usize]) -> Matrix {
+        let mut data = Vec::with_capacity(idx.len() * self.cols);
+        for &r in idx {
+            data.extend_from_slice(self.row(r));
+        }
+        Matrix::new(idx.len(), self.cols, data)
+    }
+}
+
+/// Read an embedding matrix, choosing the format by extension. `tensor`
+/// names the tensor inside a `.safetensors` file holding several.
+pub fn read_matrix(path: &Path, tensor: Option<&str>) -> Result<Matrix, DataError> {
+    let m = match extension(path).as_str() {
+        "npy" => read_npy_matrix(path)?,
+        "safetensors" => read_safetensors_matrix(path, tensor)?,
+        "csv" => read_csv_matrix(path)?,
+        other => return fail(path, format!("unsupported file type '.{other}' (expected .npy, .safetensors or .csv)")),
+    };
+    if m.rows == 0 {
+        return fail(path, "has zero rows");
+    }
+    if m.cols == 0 {
+        return fail(path, "has zero columns");
+    }
+    if let Some(i) = m.data.iter().position(|v| !v.is_finite()) {
+        let what = if m.data[i].is_nan() { "NaN" } else { "infinite" };
+        return fail(path, format!("row {}, column {} (0-based) is {what}", i / m.cols, i % m.cols));
+    }
+    Ok(m)
+}
+
+/// Read one integer class label per row from `.npy` (any integer dtype) or
+/// a one-column `.csv` (header optional).
+pub fn read_labels(path: &Path) -> Result<Vec<i64>, DataError> {
+    let labels = match extension(path).as_str() {
+        "npy" => {
+            let (header, bytes) = read_npy(path)?;
+            if header.shape.len() > 2 || (header.shape.len() == 2 && header.shape[1] != 1) {
+                return fail(path, format!("labels must be 1-D (or one column), found shape {:?}", header.shape));
+            }
+            let n = header.shape.first().copied().unwrap_or(1);
+            decode_ints(path, &header.descr, &bytes, n)?
+        }
+        "csv" => read_csv_labels(path)?,
+        other => return fail(path, format!("unsupported label file type '.{other}' (expected .npy or .csv)")),
+    };
+    if labels.is_empty() {
+        return fail(path, "has zero labels");
+    }
+    Ok(labels)
+}
+
+/// Labels must pair one to one with the data rows.
+pub fn check_label_count(path: &Path, labels: usize, rows: usize) -> Result<(), DataError> {
+    if labels != rows {
+        return fail(path, format!("has {labels} labels but the data has {rows} rows"));
+    }
+    Ok(())
+}
+
+fn extension(path: &Path) -> String {
+    path.extension().and_then(|e| e.to_str()).unwrap_or("").to_ascii_lowercase()
+}
+
+fn open(path: &Path) -> Result<std::fs::File, DataError> {
+    std::fs::File::open(path).or_else(|e| fail(path, format!("cannot open: {e}")))
+}
+
+// ---------------------------------------------------------------- .npy
+
+/// The parts of a `.npy` header this tool uses.
+#[derive(Debug)]
+struct NpyHeader {
+    descr: String,
+    fortran_order: bool,
+    shape: Vec<usize>,
+}
+
+/// Parse the header and read the raw data bytes of a `.npy` file
+/// (format versions 1.0, 2.0 and 3.0).
+fn read_npy(path: &Path) -> Result<(NpyHeader, Vec<u8>), DataError> {
+    let mut f = std::io::BufReader::new(open(path)?);
+    let mut magic = [0u8; 8];
+    if f.read_exact(&mut magic).is_err() || &magic[..6] != b"\x93NUMPY" {
+        return fail(path, "is not a .npy file (bad magic string)");
+    }
+    let header_len = match magic[6] {
+        1 => {
+            let mut b = [0u8; 2];
+            f.read_exact(&mut b).or_else(|_| fail(path, "truncated .npy header"))?;
+            u16::from_le_bytes(b) as usize
+        }
+        2 | 3 => {
+            let mut b = [0u8; 4];
+            f.read_exact(&mut b).or_else(|_| fail(path, "truncated .npy header"))?;
+            u32::from_le_bytes(b) as usize
+        }
+        v => return fail(path, format!("unsupported .npy format version {v}.{}", magic[7])),
+    };
+    let mut text = vec![0u8; header_len];
+    f.read_exact(&mut text).or_else(|_| fail(path, "truncated .npy header"))?;
+    let text = String::from_utf8(text).or_else(|_| fail(path, ".npy header is not text"))?;
+    let header = parse_npy_header(&text).ok_or_else(|| DataError {
+        path: path.to_path_buf(),
+        msg: format!("cannot parse .npy header {}", text.trim()),
+    })?;
+    let width = dtype_width(&header.descr).ok_or_else(|| DataError {
+        path: path.to_path_buf(),
+        msg: format!("unsupported dtype '{}'", header.descr),
+    })?;
+    let expected = header.shape.iter().product::<usize>() * width;
+    let mut bytes = Vec::with_capacity(expected);
+    f.take(expected as u64).read_to_end(&mut bytes).or_else(|e| fail(path, format!("read error: {e}")))?;
+    if bytes.len() < expected {
+        return fail(
+            path,
+            format!("truncated: shape {:?} needs {expected} data bytes, file has {}", header.shape, bytes.len()),
+        );
+    }
+    Ok((header, bytes))
+}
+
+/// Parse the Python dict literal of a `.npy` header, e.g.
+/// `{'descr': '<f4', 'fortran_order': False, 'shape': (3, 4), }`.
+fn parse_npy_header(text: &str) -> Option<NpyHeader> {
+    let value_after = |key: &str| -> Option<&str> {
+        let at = text.find(&format!("'{key}'")).or_else(|| text.find(&format!("\"{key}\"")))?;
+        let rest = &text[at + key.len() + 2..];
+        Some(rest[rest.find(':')? + 1..].trim_start())
+    };
+    let descr_raw = value_after("descr")?;
+    let quote = descr_raw.chars().next()?;
+    let descr = descr_raw[1..].split(quote).next()?.to_string();
+    let fortran_order = value_after("fortran_order")?.starts_with("True");
+    let shape_raw = value_after("shape")?;
+    let inner = &shape_raw[shape_raw.find('(')? + 1..shape_raw.find(')')?];
+    let shape = inner
+        .split(',')
+        .map(str::trim)
+        .filter(|s| !s.is_empty())
+        .map(|s| s.trim_end_matches('L').parse().ok())
+        .collect::<Option<Vec<usize>>>()?;
+    Some(NpyHeader { descr, fortran_order, shape })
+}
+
+/// Bytes per element of a numpy dtype string, for the dtypes we read.
+fn dtype_width(descr: &str) -> Option<usize> {
+    let (order, kind) = descr.split_at(1);
+    if !matches!(order, "<" | ">" | "|" | "=") {
+        return None;
+    }
+    match kind {
+        "f2" | "i2" | "u2" => Some(2),
+        "f4" | "i4" | "u4" => Some(4),
+        "f8" | "i8" | "u8" => Some(8),
+        "i1" | "u1" | "b1" => Some(1),
+        _ => None,
+    }
+}
+
+/// Copy `n` elements of `width` bytes each, flipping byte order when the
+/// file is big-endian, so decoders below always see little-endian bytes.
+fn element(bytes: &[u8], i: usize, width: usize, big_endian: bool) -> [u8; 8] {
+    let mut out = [0u8; 8];
+    out[..width].copy_from_slice(&bytes[i * width..(i + 1) * width]);
+    if big_endian {
+        out[..width].reverse();
+    }
+    out
+}
+
+fn decode_floats(path: &Path, descr: &str, bytes: &[u8], n: usize) -> Result<Vec<f32>, DataError> {
+    let big = descr.starts_with('>');
+    let kind = &descr[1..];
+    let width = dtype_width(descr).unwrap_or(0);
+    let conv: fn([u8; 8]) -> f32 = match kind {
+        "f4" => |b| f32::from_le_bytes([b[0], b[1], b[2], b[3]]),
+        "f8" => |b| f64::from_le_bytes(b) as f32,
+        "f2" => |b| f16::from_le_bytes([b[0], b[1]]).to_f32(),
+        _ => {
+            return fail(path, format!("unsupported dtype '{descr}' for embeddings (expected float32, float64 or float16)"))
+        }
+    };
+    Ok((0..n).map(|i| conv(element(bytes, i, width, big))).collect())
+}
+
+fn decode_ints(path: &Path, descr: &str, bytes: &[u8], n: usize) -> Result<Vec<i64>, DataError> {
+    let big = descr.starts_with('>');
+    let width = dtype_width(descr).unwrap_or(0);
+    let conv: fn([u8; 8]) -> i64 = match &descr[1..] {
+        "i1" => |b| b[0] as i8 as i64,
+        "u1" => |b| b[0] as i64,
+        "i2" => |b| i16::from_le_bytes([b[0], b[1]]) as i64,
+        "u2" => |b| u16::from_le_bytes([b[0], b[1]]) as i64,
+        "i4" => |b| i32::from_le_bytes([b[0], b[1], b[2], b[3]]) as i64,
+        "u4" => |b| u32::from_le_bytes([b[0], b[1], b[2], b[3]]) as i64,
+        "i8" => i64::from_le_bytes,
+        "u8" => |b| u64::from_le_bytes(b).min(i64::MAX as u64) as i64,
+        _ => return fail(path, format!("unsupported dtype '{descr}' for labels (expected an integer dtype)")),
+    };
+    Ok((0..n).map(|i| conv(element(bytes, i, width, big))).collect())
+}
+
+fn read_npy_matrix(path: &Path) -> Result<Matrix, DataError> {
+    let (header, bytes) = read_npy(path)?;
+    if header.shape.len() != 2 {
+        return fail(
+            path,
+            format!("expected a 2-D array (rows x features), found {}-D shape {:?}", header.shape.len(), header.shape),
+        );
+    }
+    let (rows, cols) = (header.shape[0], header.shape[1]);
+    let data = decode_floats(path, &header.descr, &bytes, rows * cols)?;
+    let data = if header.fortran_order { transpose(&data, cols, rows) } else { data };
+    Ok(Matrix::new(rows, cols, data))
+}
+
+/// Transpose a row-major `rows x cols` buffer.
+fn transpose(data: &[f32], rows: usize, cols: usize) -> Vec<f32> {
+    let mut out = vec![0.0; data.len()];
+    for r in 0..rows {
+        for c in 0..cols {
+            out[c * rows + r] = data[r * cols + c];
+        }
+    }
+    out
+}
+
+/// Write a float32 2-D `.npy` file (format 1.0) to `w`.
+pub fn write_npy<W: std::io::Write + ?Sized>(w: &mut W, m: &Matrix) -> std::io::Result<()> {
+    let mut header = format!("{{'descr': '<f4', 'fortran_order': False, 'shape': ({}, {}), }}", m.rows, m.cols);
+    // Pad so that magic + length + header + newline is a multiple of 64.
+    let unpadded = 10 + header.len() + 1;
+    header.push_str(&" ".repeat(unpadded.next_multiple_of(64) - unpadded));
+    header.push('\n');
+    w.write_all(b"\x93NUMPY\x01\x00")?;
+    w.write_all(&(header.len() as u16).to_le_bytes())?;
+    w.write_all(header.as_bytes())?;
+    let mut buf = Vec::with_capacity(m.data.len() * 4);
+    for v in &m.data {
+        buf.extend_from_slice(&v.to_le_bytes());
+    }
+    w.write_all(&buf)
+}
+
+// ---------------------------------------------------------------- .safetensors
+
+fn read_safetensors_matrix(path: &Path, tensor: Option<&str>) -> Result<Matrix, DataError> {
+    let bytes = std::fs::read(path).or_else(|e| fail(path, format!("cannot read: {e}")))?;
+    let st = safetensors::SafeTensors::deserialize(&bytes)
+        .or_else(|e| fail(path, format!("not a valid safetensors file ({e})")))?;
+    let mut names: Vec<&str> = st.names().into_iter().collect();
+    names.sort();
+    let name = match (tensor, names.as_slice()) {
+        (Some(t), _) => t,
+        (None, [only]) => only,
+        (None, []) => return fail(path, "holds no tensors"),
+        (None, _) => {
+            return fail(path, format!("holds several tensors; choose one with --tensor: {}", names.join(", ")))
+        }
+    };
+    let view = st
+        .tensor(name)
+        .or_else(|_| fail(path, format!("has no tensor '{name}' (it has: {})", names.join(", "))))?;
+    let shape = view.shape();
+    if shape.len() != 2 {
+        return fail(path, format!("tensor '{name}' is {}-D {shape:?}; expected 2-D (rows x features)", shape.len()));
+    }
+    let raw = view.data();
+    use safetensors::Dtype;
+    let data: Vec<f32> = match view.dtype() {
+        Dtype::F32 => raw.chunks_exact(4).map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]])).collect(),
+        Dtype::F64 => raw.chunks_exact(8).map(|b| f64::from_le_bytes(b.try_into().expect("8 bytes")) as f32).collect(),
+        Dtype::F16 => raw.chunks_exact(2).map(|b| f16::from_le_bytes([b[0], b[1]]).to_f32()).collect(),
+        Dtype::BF16 => raw.chunks_exact(2).map(|b| bf16::from_le_bytes([b[0], b[1]]).to_f32()).collect(),
+        other => {
+            return fail(path, format!("tensor '{name}' has unsupported dtype {other:?} (expected F32, F64, F16 or BF16)"))
+        }
+    };
+    Ok(Matrix::new(shape[0], shape[1], data))
+}
+
+// ---------------------------------------------------------------- .csv
+
+fn csv_records(path: &Path) -> Result<Vec<(u64, csv::StringRecord)>, DataError> {
+    let mut reader = csv::ReaderBuilder::new().has_headers(false).flexible(true).trim(csv::Trim::All).from_reader(open(path)?);
+    let mut out = Vec::new();
+    for rec in reader.records() {
+        let rec = rec.or_else(|e| fail(path, format!("CSV error: {e}")))?;
+        let line = rec.position().map(|p| p.line()).unwrap_or(0);
+        if rec.iter().all(str::is_empty) {
+            continue;
+        }
+        out.push((line, rec));
+    }
+    Ok(out)
+}
+
+/// A first row with any field that is not a number is a header.
+fn split_header(records: &mut Vec<(u64, csv::StringRecord)>) -> Option<Vec<String>> {
+    let first = &records.first()?.1;
+    if first.iter().all(|f| f.parse::<f64>().is_ok()) {
+        return None;
+    }
+    let names = first.iter().map(str::to_string).collect();
+    records.remove(0);
+    Some(names)
+}
+
+fn read_csv_matrix(path: &Path) -> Result<Matrix, DataError> {
+    let mut records = csv_records(path)?;
+    let header = split_header(&mut records);
+    let cols = header.as_ref().map(Vec::len).or_else(|| records.first().map(|r| r.1.len())).unwrap_or(0);
+    let mut data = Vec::with_capacity(records.len() * cols);
+    for (line, rec) in &records {
+        if rec.len() != cols {
+            return fail(path, format!("line {line} has {} fields, expected {cols}", rec.len()));
+        }
+        for (c, field) in rec.iter().enumerate() {
+            let v: f64 = field.parse().or_else(|_| {
+                let col = match &header {
+                    Some(names) => format!("column {} ('{}')", c + 1, names[c]),
+                    None => format!("column {}", c + 1),
+                };
+                fail(path, format!("line {line}, {col}: '{field}' is not a number"))
+            })?;
+            data.push(v as f32);
+        }
+    }
+    Ok(Matrix::new(records.len(), cols, data))
+}
+
+fn read_csv_labels(path: &Path) -> Result<Vec<i64>, DataError> {
+    let mut records = csv_records(path)?;
+    if records.first().is_some_and(|(_, r)| r.len() == 1 && r[0].parse::<i64>().is_err()) {
+        records.remove(0);
+    }
+    records
+        .iter()
+        .map(|(line, rec)| {
+            if rec.len() != 1 {
+                return fail(path, format!("line {line} has {} fields; a label file has one column", rec.len()));
+            }
+            rec[0].parse::<i64>().or_else(|_| fail(path, format!("line {line}: '{}' is not an integer label", &rec[0])))
+        })
+        .collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn parses_header_variants() {
+        let h = parse_npy_header("{'descr': '<f8', 'fortran_order': True, 'shape': (3, 4), }").unwrap();
+        assert_eq!((h.descr.as_str(), h.fortran_order, h.shape), ("<f8", true, vec![3, 4]));
+        let h = parse_npy_header("{'descr': '|u1', 'fortran_order': False, 'shape': (7,), }").unwrap();
+        assert_eq!(h.shape, vec![7]);
+    }
+
+    #[test]
+    fn npy_round_trip() {
+        let m = Matrix::new(2, 3, vec![1.0, -2.5, 3.25, 0.0, 1e-8, 7.0]);
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("m.npy");
+        let mut f = std::fs::File::create(&p).unwrap();
+        write_npy(&mut f, &m).unwrap();
+        drop(f);
+        assert_eq!(read_matrix(&p, None).unwrap(), m);
+        // The whole header block is 64-byte aligned, as numpy writes it.
+        let bytes = std::fs::read(&p).unwrap();
+        assert_eq!((bytes.len() - 24) % 64, 0);
+    }
+}

@@ -1,0 +1,375 @@
+//! The fitted model: preprocessing + flow, its exact log-likelihood in the
+//! original input space, sampling, and the `.safetensors` model file.
+//!
+//! Log-likelihood of an input vector x (live features only; dead features are
+//! kept out and reported separately):
+//!   u = whiten(x)                      ln|det du/dx| = preprocessing log-det
+//!   flow on u[..k], standard normal on u[k..]
+//!   log p(x) = -NLL_flow(u[..k]) - sum_{i>=k} (u_i^2/2 + ln(2 pi)/2) + log-det
+
+use crate::data::Matrix;
+use crate::error::{Error, Result};
+use crate::flow::{self, Flow, FlowSpec, Workers, HALF_LN_2PI};
+use crate::preprocess::{Method, Preprocessor};
+use rand::SeedableRng;
+use rand_distr::{Distribution, StandardNormal};
+use safetensors::{Dtype, SafeTensors};
+use std::collections::HashMap;
+use std::path::Path;
+
+/// Version of the model file layout; bumped on any incompatible change.
+pub const FORMAT_VERSION: u32 = 1;
+/// Key of the JSON document in the safetensors `__metadata__`.
+const META_KEY: &str = "tidemark";
+
+/// How a model was trained and how it did.
+#[derive(Clone, Debug, Default, serde::Serialize, serde::Deserialize)]
+pub struct TrainingSummary {
+    /// Every resolved training setting (after defaults by data size).
+    pub settings: serde_json::Value,
+    pub train_rows: usize,
+    pub validation_rows: usize,
+    pub epochs_run: usize,
+    /// 0 means the untrained (identity) flow, i.e. the whitened Gaussian, won.
+    pub best_epoch: usize,
+    /// Mean negative log-likelihood per vector, nats, input space.
+    pub best_train_nll: f64,
+    pub best_validation_nll: f64,
+    /// Validation NLL of the untrained flow (the whitened Gaussian).
+    pub gaussian_validation_nll: f64,
+    pub seconds: f64,
+}
+
+/// Mean and standard deviation of a statistic over the training rows.
+#[derive(Clone, Debug, Default, serde::Serialize, serde::Deserialize)]
+pub struct Spread {
+    pub mean: f64,
+    pub std: f64,
+}
+
+/// The JSON document stored in the model file's metadata.
+#[derive(Clone, Debug, serde::Serialize, serde::Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Meta {
+    pub format: String,
+    pub format_version: u32,
+    pub created_by: String,
+    /// Width of the input vectors.
+    pub input_dim: usize,
+    pub preprocessing: PreprocessingMeta,
+    /// How many leading whitened dimensions the flow models; the rest are
+    /// standard normal.
+    pub flow_dims: usize,
+    pub flow: FlowSpec,
+    pub seed: u64,
+    pub training: TrainingSummary,
+    /// Log-likelihood (nats, input space) over the training rows.
+    pub train_log_likelihood: Spread,
+    /// Class labels given at fit time and their row counts (empty without labels).
+    #[serde(default)]
+    pub classes: Vec<ClassCount>,
+}
+
+#[derive(Clone, Debug, serde::Serialize, serde::Deserialize)]
+pub struct ClassCount {
+    pub label: i64,
+    pub rows: usize,
+}
+
+impl Meta {
+    /// A readable account of the model, for `inspect`.
+    pub fn describe(&self) -> String {
+        let p = &self.preprocessing;
+        let t = &self.training;
+        let dead = if p.dead_features.is_empty() {
+            "none".to_string()
+        } else {
+            format!("{} {:?}", p.dead_features.len(), p.dead_features)
+        };
+        let mut s = String::new();
+        let mut line = |k: &str, v: String| s.push_str(&format!("{k:<28}{v}\n"));
+        line("model", format!("{} v{} ({})", self.format, self.format_version, self.created_by));
+        line("input features", self.input_dim.to_string());
+        line("dead features", format!("{dead} (std <= {:e} x largest std)", p.dead_threshold));
+        line("preprocessing", format!("{:?}, log-det {:.4}, floored components {}", p.method, p.log_det, p.floored_components).to_lowercase());
+        line(
+            "flow",
+            format!(
+                "{} coupling layers over the leading {} of {} whitened dims; conditioner {} x {} (soft clamp {})",
+                self.flow.layers, self.flow_dims, p.live_features, self.flow.depth, self.flow.hidden, self.flow.clamp
+            ),
+        );
+        line("seed", self.seed.to_string());
+        line("rows", format!("{} train, {} validation", t.train_rows, t.validation_rows));
+        line("epochs", format!("{} run, best {} (0 = untrained flow, i.e. Gaussian)", t.epochs_run, t.best_epoch));
+        let per_dim = |v: f64| v / p.live_features as f64;
+        line("train NLL", format!("{:.4} nats/vector ({:.4} nats/dim)", t.best_train_nll, per_dim(t.best_train_nll)));
+        line("validation NLL", format!("{:.4} nats/vector ({:.4} nats/dim)", t.best_validation_nll, per_dim(t.best_validation_nll)));
+        line("Gaussian validation NLL", format!("{:.4} nats/vector", t.gaussian_validation_nll));
+        line("train log-likelihood", format!("mean {:.4}, std {:.4}", self.train_log_likelihood.mean, self.train_log_likelihood.std));
+        if !self.classes.is_empty() {
+            let c: Vec<String> = self.classes.iter().map(|c| format!("{}: {}", c.label, c.rows)).collect();
+            line("classes (rows)", c.join(", "));
+        }
+        line("training time", format!("{:.1} s", t.seconds));
+        line("settings", t.settings.to_string());
+        s
+    }
+
+    /// One line for the end of `fit`.
+    pub fn fit_summary(&self, path: &Path) -> String {
+        let t = &self.training;
+        format!(
+            "wrote {}: validation NLL {:.4} nats/vector (Gaussian {:.4}), best epoch {} of {}",
+            path.display(),
+            t.best_validation_nll,
+            t.gaussian_validation_nll,
+            t.best_epoch,
+            t.epochs_run
+        )
+    }
+}
+
+#[derive(Clone, Debug, serde::Serialize, serde::Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct PreprocessingMeta {
+    pub method: Method,
+    pub live_features: usize,
+    /// Input columns kept out of the model because they do not vary.
+    pub dead_features: Vec<usize>,
+    pub dead_threshold: f64,
+    pub floored_components: usize,
+    /// ln|det| of the whitening map on the live features.
+    pub log_det: f64,
+}
+
+/// A fitted model.
+#[derive(Clone, Debug)]
+pub struct Model {
+    pub meta: Meta,
+    pub pre: Preprocessor,
+    pub flow: Flow,
+}
+
+/// Per-row results of evaluating a model.
+#[derive(Clone, Debug, Default)]
+pub struct Evaluation {
+    /// log p(x), nats, over the live features, in input space.
+    pub log_likelihood: Vec<f64>,
+    /// Largest absolute deviation on dead features from their training value.
+    pub dead_deviation: Vec<f64>,
+}
+
+/// Rows whitened and pushed through the flow at a time: bounds memory.
+const CHUNK_ROWS: usize = 8192;
+
+impl Model {
+    /// Dimensions the log-likelihood is over (live features).
+    pub fn dim(&self) -> usize {
+        self.pre.dim()
+    }
+
+    pub fn check_width(&self, path: &Path, cols: usize) -> Result<()> {
+        if cols != self.meta.input_dim {
+            return Err(Error::Data(crate::data::DataError {
+                path: path.to_path_buf(),
+                msg: format!("has {cols} features per row but the model was fitted on {}", self.meta.input_dim),
+            }));
+        }
+        Ok(())
+    }
+
+    /// log p(x) for every row, in chunks of bounded size.
+    pub fn evaluate(&self, x: &Matrix, threads: usize) -> Evaluation {
+        let mut out = Evaluation::default();
+        let mut workers = Workers::new(&self.flow, threads, CHUNK_ROWS.min(x.rows));
+        let mut whitened = vec![0.0f32; CHUNK_ROWS.min(x.rows) * self.dim()];
+        for start in (0..x.rows).step_by(CHUNK_ROWS) {
+            let n = CHUNK_ROWS.min(x.rows - start);
+            let rows = &x.data[start * x.cols..(start + n) * x.cols];
+            self.pre.transform(rows, n, &mut whitened);
+            out.log_likelihood.extend(self.log_likelihood_whitened(&whitened[..n * self.dim()], n, &mut workers));
+            out.dead_deviation.extend((0..n).map(|r| self.pre.dead_deviation(x.row(start + r))));
+        }
+        out
+    }
+
+    /// log p(x) from whitened rows (`rows x dim`).
+    pub fn log_likelihood_whitened(&self, u: &[f32], rows: usize, workers: &mut Workers) -> Vec<f64> {
+        let (d, k) = (self.dim(), self.meta.flow_dims);
+        let head = leading_columns(u, rows, d, k);
+        let mut nll = vec![0.0f64; rows];
+        workers.nll(&self.flow, &head, rows, &mut nll);
+        let log_det = self.pre.log_det();
+        (0..rows)
+            .map(|r| {
+                let tail: f64 = u[r * d + k..(r + 1) * d].iter().map(|&v| 0.5 * (v as f64).powi(2) + HALF_LN_2PI).sum();
+                -nll[r] - tail + log_det
+            })
+            .collect()
+    }
+
+    /// Draw `n` vectors from the model (input space).
+    pub fn sample(&self, n: usize, seed: u64) -> Matrix {
+        let (d, k) = (self.dim(), self.meta.flow_dims);
+        let mut rng = rand::rngs::StdRng::seed_from_u64(seed);
+        let z: Vec<f32> = (0..n * d).map(|_| StandardNormal.sample(&mut rng)).collect();
+        let head = flow::inverse(&self.flow, &leading_columns(&z, n, d, k), n);
+        let mut u = z;
+        for r in 0..n {
+            u[r * d..r * d + k].copy_from_slice(&head[r * k..(r + 1) * k]);
+        }
+        Matrix::new(n, self.meta.input_dim, self.pre.inverse(&u, n))
+    }
+
+    /// Write the model as one `.safetensors` file (atomically).
+    pub fn save(&self, path: &Path) -> Result<()> {
+        let mut tensors: Vec<(String, Dtype, Vec<usize>, Vec<u8>)> = Vec::new();
+        let mut put = |name: &str, dtype: Dtype, shape: Vec<usize>, bytes: Vec<u8>| {
+            tensors.push((name.to_string(), dtype, shape, bytes));
+        };
+        let pre = &self.pre;
+        let d = pre.dim();
+        put("preprocess.mean", Dtype::F64, vec![d], le_bytes_f64(&pre.mean));
+        put("preprocess.scale", Dtype::F64, vec![d], le_bytes_f64(&pre.scale));
+        put("preprocess.live_features", Dtype::I64, vec![d], le_bytes_i64(&pre.live));
+        if let Some(c) = &pre.components {
+            put("preprocess.components", Dtype::F32, vec![d, d], le_bytes_f32(c));
+        }
+        if !pre.dead.is_empty() {
+            put("preprocess.dead_values", Dtype::F64, vec![pre.dead.len()], le_bytes_f64(&pre.dead_value));
+        }
+        for (k, slot) in self.flow.slots.iter().enumerate() {
+            let p = &self.flow.params;
+            let dim = self.flow.spec.dim;
+            put(&format!("flow.{k}.actnorm.log_scale"), Dtype::F32, vec![dim], le_bytes_f32(&p[slot.log_scale..slot.log_scale + dim]));
+            put(&format!("flow.{k}.actnorm.bias"), Dtype::F32, vec![dim], le_bytes_f32(&p[slot.bias..slot.bias + dim]));
+            let perm: Vec<usize> = self.flow.perms[k].iter().map(|&v| v as usize).collect();
+            put(&format!("flow.{k}.permutation"), Dtype::I64, vec![dim], le_bytes_i64(&perm));
+            for (i, lin) in slot.linears.iter().enumerate() {
+                let w = &p[lin.weight..lin.weight + lin.out * lin.inp];
+                put(&format!("flow.{k}.net.{i}.weight"), Dtype::F32, vec![lin.out, lin.inp], le_bytes_f32(w));
+                put(&format!("flow.{k}.net.{i}.bias"), Dtype::F32, vec![lin.out], le_bytes_f32(&p[lin.bias..lin.bias + lin.out]));
+            }
+        }
+        let meta_json = serde_json::to_string(&self.meta).map_err(|e| Error::model(path, e))?;
+        let metadata = HashMap::from([(META_KEY.to_string(), meta_json)]);
+        let views = tensors
+            .iter()
+            .map(|(name, dtype, shape, bytes)| {
+                let view = safetensors::tensor::TensorView::new(*dtype, shape.clone(), bytes).map_err(|e| Error::model(path, e))?;
+                Ok((name.clone(), view))
+            })
+            .collect::<Result<Vec<_>>>()?;
+        let bytes = safetensors::serialize(views, Some(metadata)).map_err(|e| Error::model(path, e))?;
+        crate::output::write_atomic(path, |w| w.write_all(&bytes).map_err(|source| Error::Io { path: path.into(), source }))
+    }
+
+    /// Read a model file written by [`Model::save`].
+    pub fn load(path: &Path) -> Result<Model> {
+        let bytes = std::fs::read(path).map_err(|e| Error::model(path, format!("cannot read model: {e}")))?;
+        let st = SafeTensors::deserialize(&bytes).map_err(|e| Error::model(path, format!("not a safetensors file ({e})")))?;
+        let (_, header) = SafeTensors::read_metadata(&bytes).map_err(|e| Error::model(path, e))?;
+        let json = header
+            .metadata()
+            .as_ref()
+            .and_then(|m| m.get(META_KEY))
+            .ok_or_else(|| Error::model(path, "is not a tidemark model (no tidemark metadata)"))?;
+        let meta: Meta = serde_json::from_str(json).map_err(|e| Error::model(path, format!("bad model metadata: {e}")))?;
+        if meta.format_version != FORMAT_VERSION {
+            return Err(Error::model(path, format!("model format version {} is not supported (this build reads {FORMAT_VERSION})", meta.format_version)));
+        }
+        let get = |name: &str, dtype: Dtype, len: usize| -> Result<Vec<u8>> {
+            let t = st.tensor(name).map_err(|_| Error::model(path, format!("missing tensor '{name}'")))?;
+            let n: usize = t.shape().iter().product();
+            if t.dtype() != dtype || n != len {
+                return Err(Error::model(path, format!("tensor '{name}' has dtype {:?} and {n} values, expected {dtype:?} and {len}", t.dtype())));
+            }
+            Ok(t.data().to_vec())
+        };
+        let pm = &meta.preprocessing;
+        let d = pm.live_features;
+        let live: Vec<usize> = from_i64(&get("preprocess.live_features", Dtype::I64, d)?);
+        let mut is_live = vec![false; meta.input_dim];
+        for &j in &live {
+            if j >= meta.input_dim {
+                return Err(Error::model(path, "live feature index out of range"));
+            }
+            is_live[j] = true;
+        }
+        let dead: Vec<usize> = (0..meta.input_dim).filter(|&j| !is_live[j]).collect();
+        if dead != pm.dead_features {
+            return Err(Error::model(path, "dead feature list does not match the live features"));
+        }
+        let pre = Preprocessor {
+            method: pm.method,
+            input_dim: meta.input_dim,
+            dead_value: if dead.is_empty() { vec![] } else { from_f64(&get("preprocess.dead_values", Dtype::F64, dead.len())?) },
+            live,
+            dead,
+            mean: from_f64(&get("preprocess.mean", Dtype::F64, d)?),
+            components: match pm.method {
+                Method::Pca => Some(from_f32(&get("preprocess.components", Dtype::F32, d * d)?)),
+                Method::Standardize => None,
+            },
+            scale: from_f64(&get("preprocess.scale", Dtype::F64, d)?),
+            floored: pm.floored_components,
+        };
+        if meta.flow.dim != meta.flow_dims || meta.flow_dims > d || meta.flow.depth == 0 {
+            return Err(Error::model(path, "flow dimensions do not match the preprocessing"));
+        }
+        let mut flow = Flow::new(meta.flow.clone(), 0);
+        let dim = flow.spec.dim;
+        for k in 0..flow.spec.layers {
+            let slot = flow.slots[k].clone();
+            let mut fill = |name: String, at: usize, n: usize| -> Result<()> {
+                let vals = from_f32(&get(&name, Dtype::F32, n)?);
+                flow.params[at..at + n].copy_from_slice(&vals);
+                Ok(())
+            };
+            fill(format!("flow.{k}.actnorm.log_scale"), slot.log_scale, dim)?;
+            fill(format!("flow.{k}.actnorm.bias"), slot.bias, dim)?;
+            for (i, lin) in slot.linears.iter().enumerate() {
+                fill(format!("flow.{k}.net.{i}.weight"), lin.weight, lin.out * lin.inp)?;
+                fill(format!("flow.{k}.net.{i}.bias"), lin.bias, lin.out)?;
+            }
+            let perm: Vec<usize> = from_i64(&get(&format!("flow.{k}.permutation"), Dtype::I64, dim)?);
+            let mut seen = vec![false; dim];
+            for &p in &perm {
+                if p >= dim || std::mem::replace(&mut seen[p], true) {
+                    return Err(Error::model(path, format!("flow.{k}.permutation is not a permutation")));
+                }
+            }
+            flow.perms[k] = perm.iter().map(|&p| p as u32).collect();
+        }
+        Ok(Model { meta, pre, flow })
+    }
+}
+
+/// The first `k` of `d` columns of a row-major matrix, contiguous.
+fn leading_columns(u: &[f32], rows: usize, d: usize, k: usize) -> Vec<f32> {
+    let mut out = Vec::with_capacity(rows * k);
+    for r in 0..rows {
+        out.extend_from_slice(&u[r * d..r * d + k]);
+    }
+    out
+}
+
+fn le_bytes_f32(v: &[f32]) -> Vec<u8> {
+    v.iter().flat_map(|x| x.to_le_bytes()).collect()
+}
+fn le_bytes_f64(v: &[f64]) -> Vec<u8> {
+    v.iter().flat_map(|x| x.to_le_bytes()).collect()
+}
+fn le_bytes_i64(v: &[usize]) -> Vec<u8> {
+    v.iter().flat_map(|&x| (x as i64).to_le_bytes()).collect()
+}
+fn from_f32(b: &[u8]) -> Vec<f32> {
+    b.chunks_exact(4).map(|c| f32::from_le_bytes(c.try_into().expect("4 bytes"))).collect()
+}
+fn from_f64(b: &[u8]) -> Vec<f64> {
+    b.chunks_exact(8).map(|c| f64::from_le_bytes(c.try_into().expect("8 bytes"))).collect()
+}
+fn from_i64(b: &[u8]) -> Vec<usize> {
+    b.chunks_exact(8).map(|c| i64::from_le_bytes(c.try_into().expect("8 bytes")).max(0) as usize).collect()
+}

@@ -1,0 +1,45 @@
+//! Files out: every output is written to a temporary file beside its target
+//! and renamed into place only when complete, so a failure never leaves a
+//! partial file behind. `-` means standard output.
+
+use crate::error::{Error, Result};
+use std::io::{BufWriter, Write};
+use std::path::{Path, PathBuf};
+
+/// Is this path the "write to standard output" marker?
+pub fn is_stdout(path: &Path) -> bool {
+    path.as_os_str() == "-"
+}
+
+/// Write `path` atomically with `body`; on any error the temporary file is
+/// removed and `path` is left as it was.
+pub fn write_atomic<F>(path: &Path, body: F) -> Result<()>
+where
+    F: FnOnce(&mut dyn Write) -> Result<()>,
+{
+    if is_stdout(path) {
+        let stdout = std::io::stdout();
+        let mut w = BufWriter::new(stdout.lock());
+        body(&mut w)?;
+        return w.flush().map_err(|source| Error::Io { path: path.into(), source });
+    }
+    let tmp = temp_path(path);
+    let io = |source| Error::Io { path: path.to_path_buf(), source };
+    let result = (|| {
+        let file = std::fs::File::create(&tmp).map_err(io)?;
+        let mut w = BufWriter::new(file);
+        body(&mut w)?;
+        let file = w.into_inner().map_err(|e| io(e.into_error()))?;
+        file.sync_all().map_err(io)?;
+        std::fs::rename(&tmp, path).map_err(io)
+    })();
+    if result.is_err() {
+        let _ = std::fs::remove_file(&tmp);
+    }
+    result
+}
+
+fn temp_path(path: &Path) -> PathBuf {
+    let name = path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
+    path.with_file_name(format!(".{name}.{}.tmp", std::process::id()))
+}

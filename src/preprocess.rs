@@ -1,0 +1,264 @@
+//! Preprocessing fitted on the training rows: dead-feature removal, then
+//! per-feature standardization or full PCA whitening. The map is affine and
+//! invertible on the live features, and its exact log-determinant is added
+//! to every log-likelihood so that they stay in the original input space.
+
+use crate::data::Matrix;
+use crate::linalg::{matmul, View};
+
+/// How live features are mapped to the flow's unit-scale inputs.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, serde::Serialize, serde::Deserialize, clap::ValueEnum)]
+#[serde(rename_all = "kebab-case")]
+pub enum Method {
+    /// Rotate onto principal components (by decreasing variance), then
+    /// scale each to unit variance.
+    Pca,
+    /// Subtract each feature's mean and divide by its standard deviation.
+    Standardize,
+}
+
+/// A feature is dead when its training standard deviation is at most this
+/// fraction of the largest feature standard deviation.
+pub const DEFAULT_DEAD_THRESHOLD: f64 = 1e-6;
+
+/// Principal-component variances below this fraction of the largest are
+/// raised to it, so that rank-deficient data never divides by zero.
+pub const EIGENVALUE_FLOOR: f64 = 1e-12;
+
+/// A fitted preprocessing map from input vectors to whitened vectors.
+#[derive(Clone, Debug)]
+pub struct Preprocessor {
+    pub method: Method,
+    pub input_dim: usize,
+    /// Input columns that vary (enter the model), in order.
+    pub live: Vec<usize>,
+    /// Input columns that do not vary (kept out of the model).
+    pub dead: Vec<usize>,
+    /// Training mean of each dead column.
+    pub dead_value: Vec<f64>,
+    /// Training mean of each live column.
+    pub mean: Vec<f64>,
+    /// PCA only: `d x d`, row i is the i-th principal direction.
+    pub components: Option<Vec<f32>>,
+    /// Per output dimension: the standard deviation it is divided by.
+    pub scale: Vec<f64>,
+    /// Principal-component variances that were raised to the floor.
+    pub floored: usize,
+}
+
+impl Preprocessor {
+    /// Fit on the training rows. Fails when no feature varies.
+    pub fn fit(x: &Matrix, method: Method, dead_threshold: f64) -> Result<Preprocessor, String> {
+        let (n, cols) = (x.rows, x.cols);
+        let mut mean = vec![0.0f64; cols];
+        for r in 0..n {
+            for (m, &v) in mean.iter_mut().zip(x.row(r)) {
+                *m += v as f64;
+            }
+        }
+        mean.iter_mut().for_each(|m| *m /= n as f64);
+        let mut var = vec![0.0f64; cols];
+        for r in 0..n {
+            for ((s, &v), m) in var.iter_mut().zip(x.row(r)).zip(&mean) {
+                *s += (v as f64 - m).powi(2);
+            }
+        }
+        let std: Vec<f64> = var.iter().map(|s| (s / n as f64).sqrt()).collect();
+        let top = std.iter().cloned().fold(0.0, f64::max);
+        let (live, dead): (Vec<usize>, Vec<usize>) = (0..cols).partition(|&j| std[j] > dead_threshold * top);
+        if live.is_empty() {
+            return Err("no feature varies across the training rows".into());
+        }
+        let dead_value = dead.iter().map(|&j| mean[j]).collect();
+        let live_mean: Vec<f64> = live.iter().map(|&j| mean[j]).collect();
+        let mut pre = Preprocessor {
+            method,
+            input_dim: cols,
+            live,
+            dead,
+            dead_value,
+            mean: live_mean,
+            components: None,
+            scale: vec![],
+            floored: 0,
+        };
+        match method {
+            Method::Standardize => pre.scale = pre.live.iter().map(|&j| std[j]).collect(),
+            Method::Pca => pre.fit_pca(x),
+        }
+        Ok(pre)
+    }
+
+    /// Number of whitened dimensions (live features).
+    pub fn dim(&self) -> usize {
+        self.live.len()
+    }
+
+    /// Covariance (maximum-likelihood, divided by n) of the live features,
+    /// accumulated in f64 over row blocks.
+    fn covariance(&self, x: &Matrix) -> Vec<f64> {
+        let d = self.dim();
+        let mut cov = vec![0.0f64; d * d];
+        let block = 2048;
+        let mut centered = vec![0.0f64; block * d];
+        for start in (0..x.rows).step_by(block) {
+            let n = block.min(x.rows - start);
+            for r in 0..n {
+                let row = x.row(start + r);
+                for (i, &j) in self.live.iter().enumerate() {
+                    centered[r * d + i] = row[j] as f64 - self.mean[i];
+                }
+            }
+            let c = &centered[..n * d];
+            matmul(&mut cov, d, true, View::transposed(c, n, d), View::rows(c, n, d, d));
+        }
+        cov.iter_mut().for_each(|v| *v /= x.rows as f64);
+        cov
+    }
+
+    fn fit_pca(&mut self, x: &Matrix) {
+        let d = self.dim();
+        let cov = nalgebra::DMatrix::from_row_slice(d, d, &self.covariance(x));
+        let eig = nalgebra::SymmetricEigen::new(cov);
+        let mut order: Vec<usize> = (0..d).collect();
+        order.sort_by(|&a, &b| eig.eigenvalues[b].total_cmp(&eig.eigenvalues[a]));
+        let top = eig.eigenvalues[order[0]].max(f64::MIN_POSITIVE);
+        let mut components = vec![0.0f32; d * d];
+        let mut scale = Vec::with_capacity(d);
+        for (i, &k) in order.iter().enumerate() {
+            let v = eig.eigenvectors.column(k);
+            // Sign convention: the entry of largest magnitude is positive.
+            let lead = v.iter().cloned().fold(0.0f64, |m, e| if e.abs() > m.abs() { e } else { m });
+            let sign = if lead < 0.0 { -1.0 } else { 1.0 };
+            for j in 0..d {
+                components[i * d + j] = (sign * v[j]) as f32;
+            }
+            let lambda = eig.eigenvalues[k];
+            if lambda < EIGENVALUE_FLOOR * top {
+                self.floored += 1;
+            }
+            scale.push(lambda.max(EIGENVALUE_FLOOR * top).sqrt());
+        }
+        self.components = Some(components);
+        self.scale = scale;
+    }
+
+    /// `ln |det|` of the map from live input features to whitened vectors.
+    pub fn log_det(&self) -> f64 {
+        -self.scale.iter().map(|s| s.ln()).sum::<f64>()
+    }
+
+    /// Whiten `rows` input rows (`rows x input_dim`) into `out` (`rows x dim`).
+    pub fn transform(&self, x: &[f32], rows: usize, out: &mut [f32]) {
+        let (d, cols) = (self.dim(), self.input_dim);
+        let mut centered = vec![0.0f32; rows * d];
+        for r in 0..rows {
+            let row = &x[r * cols..(r + 1) * cols];
+            for (i, &j) in self.live.iter().enumerate() {
+                // Subtract in f64: features with a large mean and a small
+                // spread would lose their digits in f32.
+                centered[r * d + i] = (row[j] as f64 - self.mean[i]) as f32;
+            }
+        }
+        if let Some(comp) = &self.components {
+            matmul(&mut out[..rows * d], d, false, View::rows(&centered, rows, d, d), View::transposed(comp, d, d));
+        } else {
+            out[..rows * d].copy_from_slice(&centered);
+        }
+        let inv: Vec<f32> = self.scale.iter().map(|s| (1.0 / s) as f32).collect();
+        for r in 0..rows {
+            for (v, s) in out[r * d..(r + 1) * d].iter_mut().zip(&inv) {
+                *v *= s;
+            }
+        }
+    }
+
+    /// Map whitened vectors (`rows x dim`) back to input space; dead
+    /// features take their training value.
+    pub fn inverse(&self, u: &[f32], rows: usize) -> Vec<f32> {
+        let (d, cols) = (self.dim(), self.input_dim);
+        let mut scaled = u[..rows * d].to_vec();
+        for r in 0..rows {
+            for (v, s) in scaled[r * d..(r + 1) * d].iter_mut().zip(&self.scale) {
+                *v *= *s as f32;
+            }
+        }
+        let centered = match &self.components {
+            Some(comp) => {
+                let mut c = vec![0.0f32; rows * d];
+                matmul(&mut c, d, false, View::rows(&scaled, rows, d, d), View::rows(comp, d, d, d));
+                c
+            }
+            None => scaled,
+        };
+        let mut out = vec![0.0f32; rows * cols];
+        for r in 0..rows {
+            for (i, &j) in self.live.iter().enumerate() {
+                out[r * cols + j] = (centered[r * d + i] as f64 + self.mean[i]) as f32;
+            }
+            for (&j, &v) in self.dead.iter().zip(&self.dead_value) {
+                out[r * cols + j] = v as f32;
+            }
+        }
+        out
+    }
+
+    /// Largest absolute deviation of a row's dead features from their
+    /// training values (0 when no feature is dead).
+    pub fn dead_deviation(&self, row: &[f32]) -> f64 {
+        self.dead.iter().zip(&self.dead_value).map(|(&j, &v)| (row[j] as f64 - v).abs()).fold(0.0, f64::max)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn correlated(n: usize) -> Matrix {
+        // Deterministic, correlated, non-centred 3-column data.
+        let data = (0..n)
+            .flat_map(|i| {
+                let (a, b) = ((i as f32 * 0.7).sin(), (i as f32 * 1.3).cos());
+                [5.0 + a, 2.0 * a + 0.3 * b, -b + 0.1 * a]
+            })
+            .collect();
+        Matrix::new(n, 3, data)
+    }
+
+    #[test]
+    fn whitened_data_has_identity_covariance_and_inverse_round_trips() {
+        let x = correlated(500);
+        for method in [Method::Pca, Method::Standardize] {
+            let pre = Preprocessor::fit(&x, method, DEFAULT_DEAD_THRESHOLD).unwrap();
+            let mut u = vec![0.0; 500 * 3];
+            pre.transform(&x.data, 500, &mut u);
+            let cov = |i: usize, j: usize| (0..500).map(|r| u[r * 3 + i] as f64 * u[r * 3 + j] as f64).sum::<f64>() / 500.0;
+            for i in 0..3 {
+                assert!((cov(i, i) - 1.0).abs() < 1e-4);
+                if method == Method::Pca {
+                    for j in 0..i {
+                        assert!(cov(i, j).abs() < 1e-4);
+                    }
+                }
+            }
+            let back = pre.inverse(&u, 500);
+            for (a, b) in back.iter().zip(&x.data) {
+                assert!((a - b).abs() < 1e-4);
+            }
+        }
+    }
+
+    #[test]
+    fn constant_columns_are_dead_and_never_divide_by_zero() {
+        let mut x = correlated(100);
+        for r in 0..100 {
+            x.data[r * 3 + 1] = 4.0;
+        }
+        let pre = Preprocessor::fit(&x, Method::Pca, DEFAULT_DEAD_THRESHOLD).unwrap();
+        assert_eq!((pre.live.clone(), pre.dead.clone()), (vec![0, 2], vec![1]));
+        assert!(pre.log_det().is_finite());
+        assert_eq!(pre.dead_deviation(&[0.0, 4.5, 0.0]), 0.5);
+        let all_constant = Matrix::new(3, 2, vec![1.0; 6]);
+        assert!(Preprocessor::fit(&all_constant, Method::Pca, DEFAULT_DEAD_THRESHOLD).is_err());
+    }
+}
