@@ -111,10 +111,10 @@ struct FitArgs {
     patience: Option<usize>,
     /// Dropout in the conditioner [default: by rows per dimension].
     #[arg(long)]
-    dropout: Option<f32>,
+    dropout: Option<f64>,
     /// Gaussian noise added to whitened training vectors [default: by rows per dimension].
     #[arg(long)]
-    noise: Option<f32>,
+    noise: Option<f64>,
     /// A feature is dead when its std is at most this fraction of the largest std [default: 1e-6].
     #[arg(long)]
     dead_threshold: Option<f64>,

@@ -31,8 +31,8 @@ pub struct FitOptions {
     pub lr: Option<f64>,
     pub val_fraction: Option<f64>,
     pub patience: Option<usize>,
-    pub dropout: Option<f32>,
-    pub noise: Option<f32>,
+    pub dropout: Option<f64>,
+    pub noise: Option<f64>,
     pub dead_threshold: Option<f64>,
     pub seed: u64,
     pub threads: usize,
@@ -55,8 +55,8 @@ pub struct Settings {
     pub grad_clip: f64,
     pub val_fraction: f64,
     pub patience: usize,
-    pub dropout: f32,
-    pub noise: f32,
+    pub dropout: f64,
+    pub noise: f64,
     pub dead_threshold: f64,
     pub seed: u64,
     pub threads: usize,
@@ -229,12 +229,13 @@ pub fn fit(x: &Matrix, labels: Option<&[i64]>, opts: &FitOptions) -> Result<Mode
             for (r, &i) in chunk.iter().enumerate() {
                 batch[r * k..(r + 1) * k].copy_from_slice(&h_train[i * k..(i + 1) * k]);
             }
-            if settings.noise > 0.0 {
+            let noise = settings.noise as f32;
+            if noise > 0.0 {
                 for v in &mut batch[..rows * k] {
-                    *v += settings.noise * <StandardNormal as Distribution<f32>>::sample(&StandardNormal, &mut rng);
+                    *v += noise * <StandardNormal as Distribution<f32>>::sample(&StandardNormal, &mut rng);
                 }
             }
-            let dropout = (settings.dropout > 0.0).then(|| (settings.dropout, settings.seed ^ (step as u64).wrapping_mul(0x9E37_79B9)));
+            let dropout = (settings.dropout > 0.0).then(|| (settings.dropout as f32, settings.seed ^ (step as u64).wrapping_mul(0x9E37_79B9)));
             let nll = workers.nll_and_grad(&flow, &batch, rows, dropout, &mut grad);
             if !nll.is_finite() || grad.iter().any(|g| !g.is_finite()) {
                 return Err(Error::Invalid(format!(
