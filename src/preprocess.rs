@@ -218,8 +218,8 @@ mod tests {
         // Deterministic, correlated, non-centred 3-column data.
         let data = (0..n)
             .flat_map(|i| {
-                let (a, b) = ((i as f32 * 0.7).sin(), (i as f32 * 1.3).cos());
-                [5.0 + a, 2.0 * a + 0.3 * b, -b + 0.1 * a]
+                let (a, b, c) = ((i as f32 * 0.7).sin(), (i as f32 * 1.3).cos(), (i as f32 * 2.9).sin());
+                [5.0 + a, 2.0 * a + 0.3 * b, -b + 0.1 * a + 0.5 * c]
             })
             .collect();
         Matrix::new(n, 3, data)
