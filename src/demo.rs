@@ -24,7 +24,7 @@ pub fn run(data_dir: &Path, out_dir: &Path, threads: usize) -> Result<()> {
     let labels = read_labels(&labels_path)?;
     check_label_count(&labels_path, labels.len(), x.rows)?;
     println!("fitting a flow to {} ({} vectors x {} features)...", train_path.display(), x.rows, x.cols);
-    let model = fit(&x, Some(&labels), &FitOptions { threads, quiet: true, ..FitOptions::default() })?;
+    let model = fit(&x, Some(&labels), &FitOptions { threads: Some(threads), quiet: true, ..FitOptions::default() })?;
     let model_path = out_dir.join("model.safetensors");
     model.save(&model_path)?;
     println!("{}", model.meta.fit_summary(&model_path));

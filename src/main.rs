@@ -4,7 +4,7 @@ use clap::{Args, Parser, Subcommand};
 use std::path::PathBuf;
 use std::process::ExitCode;
 use tidemark::preprocess::Method;
-use tidemark::train::FitOptions;
+use tidemark::train::{default_threads, FitOptions};
 use tidemark::{data, demo, model::Model, score, Result};
 
 #[derive(Parser)]
@@ -118,17 +118,18 @@ struct FitArgs {
     /// A feature is dead when its std is at most this fraction of the largest std [default: 1e-6].
     #[arg(long)]
     dead_threshold: Option<f64>,
-    #[arg(long, default_value_t = 0)]
-    seed: u64,
-    #[arg(long, default_value_t = default_threads())]
-    threads: usize,
+    /// Seed for the split, initialisation, shuffling, noise and dropout [default: 0].
+    #[arg(long)]
+    seed: Option<u64>,
+    /// Worker threads [default: all cores].
+    #[arg(long)]
+    threads: Option<usize>,
+    /// JSON file of training options (same names as the flags, with underscores); flags override it.
+    #[arg(long)]
+    config: Option<PathBuf>,
     /// No progress output.
     #[arg(long, short)]
     quiet: bool,
-}
-
-fn default_threads() -> usize {
-    std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1)
 }
 
 fn run(cli: Cli) -> Result<()> {
@@ -161,6 +162,10 @@ fn run(cli: Cli) -> Result<()> {
                 seed: a.seed,
                 threads: a.threads,
                 quiet: a.quiet,
+            };
+            let opts = match &a.config {
+                Some(path) => opts.or(FitOptions::from_json_file(path)?),
+                None => opts,
             };
             let model = tidemark::train::fit(&x, labels.as_deref(), &opts)?;
             model.save(&a.output)?;

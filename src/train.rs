@@ -17,8 +17,10 @@ use rand_distr::{Distribution, StandardNormal};
 use std::io::IsTerminal;
 use std::time::Instant;
 
-/// Training options as the user gives them; `None` means "choose by data size".
-#[derive(Clone, Debug, Default)]
+/// Training options as the user gives them, on the command line or in a JSON
+/// config file with the same field names; `None` means "choose by data size".
+#[derive(Clone, Debug, Default, serde::Deserialize)]
+#[serde(deny_unknown_fields)]
 pub struct FitOptions {
     pub method: Option<Method>,
     pub layers: Option<usize>,
@@ -34,9 +36,47 @@ pub struct FitOptions {
     pub dropout: Option<f64>,
     pub noise: Option<f64>,
     pub dead_threshold: Option<f64>,
-    pub seed: u64,
-    pub threads: usize,
+    pub seed: Option<u64>,
+    pub threads: Option<usize>,
+    #[serde(skip)]
     pub quiet: bool,
+}
+
+impl FitOptions {
+    /// Read options from a JSON config file; an unknown key is an error
+    /// that names it.
+    pub fn from_json_file(path: &std::path::Path) -> Result<FitOptions> {
+        let text = std::fs::read_to_string(path).map_err(|e| Error::Invalid(format!("{}: cannot read config: {e}", path.display())))?;
+        serde_json::from_str(&text).map_err(|e| Error::Invalid(format!("{}: {e}", path.display())))
+    }
+
+    /// Each option set here, else the one in `fallback`.
+    pub fn or(self, fallback: FitOptions) -> FitOptions {
+        FitOptions {
+            method: self.method.or(fallback.method),
+            layers: self.layers.or(fallback.layers),
+            hidden: self.hidden.or(fallback.hidden),
+            depth: self.depth.or(fallback.depth),
+            clamp: self.clamp.or(fallback.clamp),
+            flow_dims: self.flow_dims.or(fallback.flow_dims),
+            epochs: self.epochs.or(fallback.epochs),
+            batch_size: self.batch_size.or(fallback.batch_size),
+            lr: self.lr.or(fallback.lr),
+            val_fraction: self.val_fraction.or(fallback.val_fraction),
+            patience: self.patience.or(fallback.patience),
+            dropout: self.dropout.or(fallback.dropout),
+            noise: self.noise.or(fallback.noise),
+            dead_threshold: self.dead_threshold.or(fallback.dead_threshold),
+            seed: self.seed.or(fallback.seed),
+            threads: self.threads.or(fallback.threads),
+            quiet: self.quiet || fallback.quiet,
+        }
+    }
+}
+
+/// Threads used when none are asked for: every core.
+pub fn default_threads() -> usize {
+    std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1)
 }
 
 /// Every training setting, resolved; stored in the model's metadata.
@@ -97,8 +137,8 @@ impl Settings {
             dropout: o.dropout.unwrap_or(if few { 0.2 } else if per_dim < 500.0 { 0.1 } else { 0.0 }),
             noise: o.noise.unwrap_or(if few { 0.2 } else if per_dim < 200.0 { 0.1 } else { 0.0 }),
             dead_threshold: o.dead_threshold.unwrap_or(DEFAULT_DEAD_THRESHOLD),
-            seed: o.seed,
-            threads: o.threads.max(1),
+            seed: o.seed.unwrap_or(0),
+            threads: o.threads.unwrap_or_else(default_threads).max(1),
         };
         if s.depth == 0 || s.hidden == 0 || s.epochs == 0 {
             return Err(Error::Invalid("--depth, --hidden and --epochs must be at least 1".into()));
@@ -172,7 +212,7 @@ pub fn fit(x: &Matrix, labels: Option<&[i64]>, opts: &FitOptions) -> Result<Mode
     if !(0.0..0.9).contains(&val_fraction) {
         return Err(Error::Invalid("--val-fraction must be in [0, 0.9)".into()));
     }
-    let (train_idx, val_idx) = split_rows(x.rows, val_fraction, opts.seed);
+    let (train_idx, val_idx) = split_rows(x.rows, val_fraction, opts.seed.unwrap_or(0));
     let train_x = x.select_rows(&train_idx);
     let method = opts.method.unwrap_or(Method::Pca);
     let dead_threshold = opts.dead_threshold.unwrap_or(DEFAULT_DEAD_THRESHOLD);
@@ -180,6 +220,9 @@ pub fn fit(x: &Matrix, labels: Option<&[i64]>, opts: &FitOptions) -> Result<Mode
     let d = pre.dim();
     let settings = Settings::resolve(opts, train_idx.len(), d)?;
     let k = settings.flow_dims;
+    if !opts.quiet {
+        eprintln!("settings: {}", serde_json::to_string(&settings).map_err(|e| Error::Invalid(e.to_string()))?);
+    }
 
     let whiten = |m: &Matrix| {
         let mut u = vec![0.0f32; m.rows * d];

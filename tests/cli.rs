@@ -153,3 +153,29 @@ fn scoring_data_of_the_wrong_width_is_refused() {
         &scores,
     );
 }
+
+#[test]
+fn config_files_set_options_flags_override_and_unknown_keys_are_named() {
+    let dir = tempfile::tempdir().unwrap();
+    let train = dir.path().join("train.npy");
+    save(&train, &data(300, 0.0));
+    let model = dir.path().join("model.safetensors");
+    let config = dir.path().join("c.json");
+    std::fs::write(&config, r#"{"layers": 3, "hidden": 40, "epochs": 2, "seed": 9}"#).unwrap();
+    let (t, m, c) = (train.to_str().unwrap(), model.to_str().unwrap(), config.to_str().unwrap());
+    tidemark().args(["fit", t, "-o", m, "--config", c, "--hidden", "48", "-q"]).assert().success();
+    let out = tidemark().args(["inspect", m, "--json"]).assert().success();
+    let meta: serde_json::Value = serde_json::from_slice(&out.get_output().stdout).unwrap();
+    let s = &meta["training"]["settings"];
+    assert_eq!((s["layers"].as_u64(), s["hidden"].as_u64(), s["epochs"].as_u64(), s["seed"].as_u64()), (Some(3), Some(48), Some(2), Some(9)));
+
+    std::fs::write(&config, r#"{"layers": 3, "hiden": 40}"#).unwrap();
+    std::fs::remove_file(&model).unwrap();
+    refuses(&["fit", t, "-o", m, "--config", c], "unknown field `hiden`", &model);
+
+    // Every shipped config is valid.
+    for entry in std::fs::read_dir(PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("configs")).unwrap() {
+        let path = entry.unwrap().path();
+        tidemark::train::FitOptions::from_json_file(&path).unwrap_or_else(|e| panic!("{e}"));
+    }
+}

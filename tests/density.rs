@@ -7,7 +7,7 @@ use tidemark::data::Matrix;
 use tidemark::train::{fit, FitOptions};
 
 fn quiet() -> FitOptions {
-    FitOptions { quiet: true, threads: 2, seed: 3, ..Default::default() }
+    FitOptions { quiet: true, threads: Some(2), seed: Some(3), ..Default::default() }
 }
 
 fn mean(v: &[f64]) -> f64 {

@@ -66,7 +66,7 @@ fn identity_flow_log_likelihood_equals_scipy_gaussian_logpdf() {
             epochs: Some(1),
             flow_dims: Some(4),
             quiet: true,
-            threads: 1,
+            threads: Some(1),
             ..Default::default()
         };
         let mut model = tidemark::train::fit(&x, None, &opts).unwrap();
