@@ -15,7 +15,10 @@ pub struct DataError {
 }
 
 fn fail<T>(path: &Path, msg: impl fmt::Display) -> Result<T, DataError> {
-    Err(DataError { path: path.to_path_buf(), msg: msg.to_string() })
+    Err(DataError {
+        path: path.to_path_buf(),
+        msg: msg.to_string(),
+    })
 }
 
 /// A dense row-major matrix of f32: one embedding vector per row.
@@ -53,7 +56,12 @@ pub fn read_matrix(path: &Path, tensor: Option<&str>) -> Result<Matrix, DataErro
         "npy" => read_npy_matrix(path)?,
         "safetensors" => read_safetensors_matrix(path, tensor)?,
         "csv" => read_csv_matrix(path)?,
-        other => return fail(path, format!("unsupported file type '.{other}' (expected .npy, .safetensors or .csv)")),
+        other => {
+            return fail(
+                path,
+                format!("unsupported file type '.{other}' (expected .npy, .safetensors or .csv)"),
+            )
+        }
     };
     if m.rows == 0 {
         return fail(path, "has zero rows");
@@ -62,8 +70,19 @@ pub fn read_matrix(path: &Path, tensor: Option<&str>) -> Result<Matrix, DataErro
         return fail(path, "has zero columns");
     }
     if let Some(i) = m.data.iter().position(|v| !v.is_finite()) {
-        let what = if m.data[i].is_nan() { "NaN" } else { "infinite" };
-        return fail(path, format!("row {}, column {} (0-based) is {what}", i / m.cols, i % m.cols));
+        let what = if m.data[i].is_nan() {
+            "NaN"
+        } else {
+            "infinite"
+        };
+        return fail(
+            path,
+            format!(
+                "row {}, column {} (0-based) is {what}",
+                i / m.cols,
+                i % m.cols
+            ),
+        );
     }
     Ok(m)
 }
@@ -75,13 +94,24 @@ pub fn read_labels(path: &Path) -> Result<Vec<i64>, DataError> {
         "npy" => {
             let (header, bytes) = read_npy(path)?;
             if header.shape.len() > 2 || (header.shape.len() == 2 && header.shape[1] != 1) {
-                return fail(path, format!("labels must be 1-D (or one column), found shape {:?}", header.shape));
+                return fail(
+                    path,
+                    format!(
+                        "labels must be 1-D (or one column), found shape {:?}",
+                        header.shape
+                    ),
+                );
             }
             let n = header.shape.first().copied().unwrap_or(1);
             decode_ints(path, &header.descr, &bytes, n)?
         }
         "csv" => read_csv_labels(path)?,
-        other => return fail(path, format!("unsupported label file type '.{other}' (expected .npy or .csv)")),
+        other => {
+            return fail(
+                path,
+                format!("unsupported label file type '.{other}' (expected .npy or .csv)"),
+            )
+        }
     };
     if labels.is_empty() {
         return fail(path, "has zero labels");
@@ -92,13 +122,19 @@ pub fn read_labels(path: &Path) -> Result<Vec<i64>, DataError> {
 /// Labels must pair one to one with the data rows.
 pub fn check_label_count(path: &Path, labels: usize, rows: usize) -> Result<(), DataError> {
     if labels != rows {
-        return fail(path, format!("has {labels} labels but the data has {rows} rows"));
+        return fail(
+            path,
+            format!("has {labels} labels but the data has {rows} rows"),
+        );
     }
     Ok(())
 }
 
 fn extension(path: &Path) -> String {
-    path.extension().and_then(|e| e.to_str()).unwrap_or("").to_ascii_lowercase()
+    path.extension()
+        .and_then(|e| e.to_str())
+        .unwrap_or("")
+        .to_ascii_lowercase()
 }
 
 fn open(path: &Path) -> Result<std::fs::File, DataError> {
@@ -126,18 +162,26 @@ fn read_npy(path: &Path) -> Result<(NpyHeader, Vec<u8>), DataError> {
     let header_len = match magic[6] {
         1 => {
             let mut b = [0u8; 2];
-            f.read_exact(&mut b).or_else(|_| fail(path, "truncated .npy header"))?;
+            f.read_exact(&mut b)
+                .or_else(|_| fail(path, "truncated .npy header"))?;
             u16::from_le_bytes(b) as usize
         }
         2 | 3 => {
             let mut b = [0u8; 4];
-            f.read_exact(&mut b).or_else(|_| fail(path, "truncated .npy header"))?;
+            f.read_exact(&mut b)
+                .or_else(|_| fail(path, "truncated .npy header"))?;
             u32::from_le_bytes(b) as usize
         }
-        v => return fail(path, format!("unsupported .npy format version {v}.{}", magic[7])),
+        v => {
+            return fail(
+                path,
+                format!("unsupported .npy format version {v}.{}", magic[7]),
+            )
+        }
     };
     let mut text = vec![0u8; header_len];
-    f.read_exact(&mut text).or_else(|_| fail(path, "truncated .npy header"))?;
+    f.read_exact(&mut text)
+        .or_else(|_| fail(path, "truncated .npy header"))?;
     let text = String::from_utf8(text).or_else(|_| fail(path, ".npy header is not text"))?;
     let header = parse_npy_header(&text).ok_or_else(|| DataError {
         path: path.to_path_buf(),
@@ -149,11 +193,17 @@ fn read_npy(path: &Path) -> Result<(NpyHeader, Vec<u8>), DataError> {
     })?;
     let expected = header.shape.iter().product::<usize>() * width;
     let mut bytes = Vec::with_capacity(expected);
-    f.take(expected as u64).read_to_end(&mut bytes).or_else(|e| fail(path, format!("read error: {e}")))?;
+    f.take(expected as u64)
+        .read_to_end(&mut bytes)
+        .or_else(|e| fail(path, format!("read error: {e}")))?;
     if bytes.len() < expected {
         return fail(
             path,
-            format!("truncated: shape {:?} needs {expected} data bytes, file has {}", header.shape, bytes.len()),
+            format!(
+                "truncated: shape {:?} needs {expected} data bytes, file has {}",
+                header.shape,
+                bytes.len()
+            ),
         );
     }
     Ok((header, bytes))
@@ -163,7 +213,9 @@ fn read_npy(path: &Path) -> Result<(NpyHeader, Vec<u8>), DataError> {
 /// `{'descr': '<f4', 'fortran_order': False, 'shape': (3, 4), }`.
 fn parse_npy_header(text: &str) -> Option<NpyHeader> {
     let value_after = |key: &str| -> Option<&str> {
-        let at = text.find(&format!("'{key}'")).or_else(|| text.find(&format!("\"{key}\"")))?;
+        let at = text
+            .find(&format!("'{key}'"))
+            .or_else(|| text.find(&format!("\"{key}\"")))?;
         let rest = &text[at + key.len() + 2..];
         Some(rest[rest.find(':')? + 1..].trim_start())
     };
@@ -179,7 +231,11 @@ fn parse_npy_header(text: &str) -> Option<NpyHeader> {
         .filter(|s| !s.is_empty())
         .map(|s| s.trim_end_matches('L').parse().ok())
         .collect::<Option<Vec<usize>>>()?;
-    Some(NpyHeader { descr, fortran_order, shape })
+    Some(NpyHeader {
+        descr,
+        fortran_order,
+        shape,
+    })
 }
 
 /// Bytes per element of a numpy dtype string, for the dtypes we read.
@@ -216,11 +272,16 @@ fn decode_floats(path: &Path, descr: &str, bytes: &[u8], n: usize) -> Result<Vec
         "f4" => |b| f32::from_le_bytes([b[0], b[1], b[2], b[3]]),
         "f8" => |b| f64::from_le_bytes(b) as f32,
         "f2" => |b| f16::from_le_bytes([b[0], b[1]]).to_f32(),
-        _ => {
-            return fail(path, format!("unsupported dtype '{descr}' for embeddings (expected float32, float64 or float16)"))
-        }
+        _ => return fail(
+            path,
+            format!(
+                "unsupported dtype '{descr}' for embeddings (expected float32, float64 or float16)"
+            ),
+        ),
     };
-    Ok((0..n).map(|i| conv(element(bytes, i, width, big))).collect())
+    Ok((0..n)
+        .map(|i| conv(element(bytes, i, width, big)))
+        .collect())
 }
 
 fn decode_ints(path: &Path, descr: &str, bytes: &[u8], n: usize) -> Result<Vec<i64>, DataError> {
@@ -235,9 +296,16 @@ fn decode_ints(path: &Path, descr: &str, bytes: &[u8], n: usize) -> Result<Vec<i
         "u4" => |b| u32::from_le_bytes([b[0], b[1], b[2], b[3]]) as i64,
         "i8" => i64::from_le_bytes,
         "u8" => |b| u64::from_le_bytes(b).min(i64::MAX as u64) as i64,
-        _ => return fail(path, format!("unsupported dtype '{descr}' for labels (expected an integer dtype)")),
+        _ => {
+            return fail(
+                path,
+                format!("unsupported dtype '{descr}' for labels (expected an integer dtype)"),
+            )
+        }
     };
-    Ok((0..n).map(|i| conv(element(bytes, i, width, big))).collect())
+    Ok((0..n)
+        .map(|i| conv(element(bytes, i, width, big)))
+        .collect())
 }
 
 fn read_npy_matrix(path: &Path) -> Result<Matrix, DataError> {
@@ -245,12 +313,20 @@ fn read_npy_matrix(path: &Path) -> Result<Matrix, DataError> {
     if header.shape.len() != 2 {
         return fail(
             path,
-            format!("expected a 2-D array (rows x features), found {}-D shape {:?}", header.shape.len(), header.shape),
+            format!(
+                "expected a 2-D array (rows x features), found {}-D shape {:?}",
+                header.shape.len(),
+                header.shape
+            ),
         );
     }
     let (rows, cols) = (header.shape[0], header.shape[1]);
     let data = decode_floats(path, &header.descr, &bytes, rows * cols)?;
-    let data = if header.fortran_order { transpose(&data, cols, rows) } else { data };
+    let data = if header.fortran_order {
+        transpose(&data, cols, rows)
+    } else {
+        data
+    };
     Ok(Matrix::new(rows, cols, data))
 }
 
@@ -267,7 +343,10 @@ fn transpose(data: &[f32], rows: usize, cols: usize) -> Vec<f32> {
 
 /// Write a float32 2-D `.npy` file (format 1.0) to `w`.
 pub fn write_npy<W: std::io::Write + ?Sized>(w: &mut W, m: &Matrix) -> std::io::Result<()> {
-    let mut header = format!("{{'descr': '<f4', 'fortran_order': False, 'shape': ({}, {}), }}", m.rows, m.cols);
+    let mut header = format!(
+        "{{'descr': '<f4', 'fortran_order': False, 'shape': ({}, {}), }}",
+        m.rows, m.cols
+    );
     // Pad so that magic + length + header + newline is a multiple of 64.
     let unpadded = 10 + header.len() + 1;
     header.push_str(&" ".repeat(unpadded.next_multiple_of(64) - unpadded));
@@ -295,26 +374,56 @@ fn read_safetensors_matrix(path: &Path, tensor: Option<&str>) -> Result<Matrix, 
         (None, [only]) => only,
         (None, []) => return fail(path, "holds no tensors"),
         (None, _) => {
-            return fail(path, format!("holds several tensors; choose one with --tensor: {}", names.join(", ")))
+            return fail(
+                path,
+                format!(
+                    "holds several tensors; choose one with --tensor: {}",
+                    names.join(", ")
+                ),
+            )
         }
     };
-    let view = st
-        .tensor(name)
-        .or_else(|_| fail(path, format!("has no tensor '{name}' (it has: {})", names.join(", "))))?;
+    let view = st.tensor(name).or_else(|_| {
+        fail(
+            path,
+            format!("has no tensor '{name}' (it has: {})", names.join(", ")),
+        )
+    })?;
     let shape = view.shape();
     if shape.len() != 2 {
-        return fail(path, format!("tensor '{name}' is {}-D {shape:?}; expected 2-D (rows x features)", shape.len()));
+        return fail(
+            path,
+            format!(
+                "tensor '{name}' is {}-D {shape:?}; expected 2-D (rows x features)",
+                shape.len()
+            ),
+        );
     }
     let raw = view.data();
     use safetensors::Dtype;
     let data: Vec<f32> = match view.dtype() {
-        Dtype::F32 => raw.chunks_exact(4).map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]])).collect(),
-        Dtype::F64 => raw.chunks_exact(8).map(|b| f64::from_le_bytes(b.try_into().expect("8 bytes")) as f32).collect(),
-        Dtype::F16 => raw.chunks_exact(2).map(|b| f16::from_le_bytes([b[0], b[1]]).to_f32()).collect(),
-        Dtype::BF16 => raw.chunks_exact(2).map(|b| bf16::from_le_bytes([b[0], b[1]]).to_f32()).collect(),
-        other => {
-            return fail(path, format!("tensor '{name}' has unsupported dtype {other:?} (expected F32, F64, F16 or BF16)"))
-        }
+        Dtype::F32 => raw
+            .chunks_exact(4)
+            .map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]]))
+            .collect(),
+        Dtype::F64 => raw
+            .chunks_exact(8)
+            .map(|b| f64::from_le_bytes(b.try_into().expect("8 bytes")) as f32)
+            .collect(),
+        Dtype::F16 => raw
+            .chunks_exact(2)
+            .map(|b| f16::from_le_bytes([b[0], b[1]]).to_f32())
+            .collect(),
+        Dtype::BF16 => raw
+            .chunks_exact(2)
+            .map(|b| bf16::from_le_bytes([b[0], b[1]]).to_f32())
+            .collect(),
+        other => return fail(
+            path,
+            format!(
+                "tensor '{name}' has unsupported dtype {other:?} (expected F32, F64, F16 or BF16)"
+            ),
+        ),
     };
     Ok(Matrix::new(shape[0], shape[1], data))
 }
@@ -322,7 +431,11 @@ fn read_safetensors_matrix(path: &Path, tensor: Option<&str>) -> Result<Matrix, 
 // ---------------------------------------------------------------- .csv
 
 fn csv_records(path: &Path) -> Result<Vec<(u64, csv::StringRecord)>, DataError> {
-    let mut reader = csv::ReaderBuilder::new().has_headers(false).flexible(true).trim(csv::Trim::All).from_reader(open(path)?);
+    let mut reader = csv::ReaderBuilder::new()
+        .has_headers(false)
+        .flexible(true)
+        .trim(csv::Trim::All)
+        .from_reader(open(path)?);
     let mut out = Vec::new();
     for rec in reader.records() {
         let rec = rec.or_else(|e| fail(path, format!("CSV error: {e}")))?;
@@ -349,11 +462,18 @@ fn split_header(records: &mut Vec<(u64, csv::StringRecord)>) -> Option<Vec<Strin
 fn read_csv_matrix(path: &Path) -> Result<Matrix, DataError> {
     let mut records = csv_records(path)?;
     let header = split_header(&mut records);
-    let cols = header.as_ref().map(Vec::len).or_else(|| records.first().map(|r| r.1.len())).unwrap_or(0);
+    let cols = header
+        .as_ref()
+        .map(Vec::len)
+        .or_else(|| records.first().map(|r| r.1.len()))
+        .unwrap_or(0);
     let mut data = Vec::with_capacity(records.len() * cols);
     for (line, rec) in &records {
         if rec.len() != cols {
-            return fail(path, format!("line {line} has {} fields, expected {cols}", rec.len()));
+            return fail(
+                path,
+                format!("line {line} has {} fields, expected {cols}", rec.len()),
+            );
         }
         for (c, field) in rec.iter().enumerate() {
             let v: f64 = field.parse().or_else(|_| {
@@ -361,7 +481,10 @@ fn read_csv_matrix(path: &Path) -> Result<Matrix, DataError> {
                     Some(names) => format!("column {} ('{}')", c + 1, names[c]),
                     None => format!("column {}", c + 1),
                 };
-                fail(path, format!("line {line}, {col}: '{field}' is not a number"))
+                fail(
+                    path,
+                    format!("line {line}, {col}: '{field}' is not a number"),
+                )
             })?;
             data.push(v as f32);
         }
@@ -371,16 +494,30 @@ fn read_csv_matrix(path: &Path) -> Result<Matrix, DataError> {
 
 fn read_csv_labels(path: &Path) -> Result<Vec<i64>, DataError> {
     let mut records = csv_records(path)?;
-    if records.first().is_some_and(|(_, r)| r.len() == 1 && r[0].parse::<i64>().is_err()) {
+    if records
+        .first()
+        .is_some_and(|(_, r)| r.len() == 1 && r[0].parse::<i64>().is_err())
+    {
         records.remove(0);
     }
     records
         .iter()
         .map(|(line, rec)| {
             if rec.len() != 1 {
-                return fail(path, format!("line {line} has {} fields; a label file has one column", rec.len()));
+                return fail(
+                    path,
+                    format!(
+                        "line {line} has {} fields; a label file has one column",
+                        rec.len()
+                    ),
+                );
             }
-            rec[0].parse::<i64>().or_else(|_| fail(path, format!("line {line}: '{}' is not an integer label", &rec[0])))
+            rec[0].parse::<i64>().or_else(|_| {
+                fail(
+                    path,
+                    format!("line {line}: '{}' is not an integer label", &rec[0]),
+                )
+            })
         })
         .collect()
 }
@@ -391,9 +528,14 @@ mod tests {
 
     #[test]
     fn parses_header_variants() {
-        let h = parse_npy_header("{'descr': '<f8', 'fortran_order': True, 'shape': (3, 4), }").unwrap();
-        assert_eq!((h.descr.as_str(), h.fortran_order, h.shape), ("<f8", true, vec![3, 4]));
-        let h = parse_npy_header("{'descr': '|u1', 'fortran_order': False, 'shape': (7,), }").unwrap();
+        let h =
+            parse_npy_header("{'descr': '<f8', 'fortran_order': True, 'shape': (3, 4), }").unwrap();
+        assert_eq!(
+            (h.descr.as_str(), h.fortran_order, h.shape),
+            ("<f8", true, vec![3, 4])
+        );
+        let h =
+            parse_npy_header("{'descr': '|u1', 'fortran_order': False, 'shape': (7,), }").unwrap();
         assert_eq!(h.shape, vec![7]);
     }
 
