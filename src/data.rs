@@ -15,10 +15,7 @@ pub struct DataError {
 }
 
 fn fail<T>(path: &Path, msg: impl fmt::Display) -> Result<T, DataError> {
-    Err(DataError {
-        path: path.to_path_buf(),
-        msg: msg.to_string(),
-    })
+    Err(DataError { path: path.to_path_buf(), msg: msg.to_string() })
 }
 
 /// A dense row-major matrix of f32: one embedding vector per row.
@@ -49,6 +46,182 @@ impl Matrix {
     }
 }
 
+/// Element encodings a memory-mapped `.npy` may hold.
+#[derive(Clone, Copy, Debug)]
+enum Elem {
+    F16,
+    F32,
+    F64,
+}
+
+/// Rows of embeddings for the pipeline: in memory, or a `.npy` file
+/// memory-mapped so that a dump larger than memory is never copied whole.
+pub struct Dataset {
+    pub path: PathBuf,
+    pub rows: usize,
+    pub cols: usize,
+    storage: Storage,
+}
+
+enum Storage {
+    Owned(Vec<f32>),
+    Mapped { map: memmap2::Mmap, offset: usize, elem: Elem, big_endian: bool, fortran: bool },
+}
+
+impl Dataset {
+    /// Open embeddings for streaming: `.npy` is memory-mapped, other formats
+    /// are read into memory. Every value is checked, as in [`read_matrix`].
+    pub fn open(path: &Path, tensor: Option<&str>) -> Result<Dataset, DataError> {
+        if extension(path) != "npy" {
+            let m = read_matrix(path, tensor)?;
+            return Ok(Dataset::from_matrix(path, m));
+        }
+        let (header, offset) = npy_header(path)?;
+        check_matrix_shape(path, &header.shape)?;
+        let elem = match &header.descr[1..] {
+            "f2" => Elem::F16,
+            "f4" => Elem::F32,
+            "f8" => Elem::F64,
+            _ => {
+                return fail(
+                    path,
+                    format!(
+                        "unsupported dtype '{}' for embeddings (expected float32, float64 or float16)",
+                        header.descr
+                    ),
+                )
+            }
+        };
+        let file = open(path)?;
+        // SAFETY: the map is read-only; a file changed underneath by another
+        // process could change values, which the data checksum on resume catches.
+        let map = unsafe { memmap2::Mmap::map(&file) }.or_else(|e| fail(path, format!("cannot map: {e}")))?;
+        let (rows, cols) = (header.shape[0], header.shape[1]);
+        let width = dtype_width(&header.descr).unwrap_or(4);
+        let have = map.len().saturating_sub(offset);
+        if have < rows * cols * width {
+            return fail(
+                path,
+                format!(
+                    "truncated: shape {:?} needs {} data bytes, file has {have}",
+                    header.shape,
+                    rows * cols * width
+                ),
+            );
+        }
+        let ds = Dataset {
+            path: path.to_path_buf(),
+            rows,
+            cols,
+            storage: Storage::Mapped {
+                map,
+                offset,
+                elem,
+                big_endian: header.descr.starts_with('>'),
+                fortran: header.fortran_order,
+            },
+        };
+        ds.check_values()?;
+        Ok(ds)
+    }
+
+    pub fn from_matrix(path: &Path, m: Matrix) -> Dataset {
+        Dataset { path: path.to_path_buf(), rows: m.rows, cols: m.cols, storage: Storage::Owned(m.data) }
+    }
+
+    fn value(&self, r: usize, c: usize) -> f32 {
+        match &self.storage {
+            Storage::Owned(v) => v[r * self.cols + c],
+            Storage::Mapped { map, offset, elem, big_endian, fortran } => {
+                let i = if *fortran { c * self.rows + r } else { r * self.cols + c };
+                let width = match elem {
+                    Elem::F16 => 2,
+                    Elem::F32 => 4,
+                    Elem::F64 => 8,
+                };
+                let b = element(&map[*offset..], i, width, *big_endian);
+                match elem {
+                    Elem::F16 => f16::from_le_bytes([b[0], b[1]]).to_f32(),
+                    Elem::F32 => f32::from_le_bytes([b[0], b[1], b[2], b[3]]),
+                    Elem::F64 => f64::from_le_bytes(b) as f32,
+                }
+            }
+        }
+    }
+
+    /// Copy row `r` into `out` (`cols` values).
+    pub fn row_into(&self, r: usize, out: &mut [f32]) {
+        match &self.storage {
+            Storage::Owned(v) => out.copy_from_slice(&v[r * self.cols..(r + 1) * self.cols]),
+            Storage::Mapped { map, offset, elem: Elem::F32, big_endian: false, fortran: false } => {
+                let bytes = &map[offset + r * self.cols * 4..offset + (r + 1) * self.cols * 4];
+                for (o, b) in out.iter_mut().zip(bytes.chunks_exact(4)) {
+                    *o = f32::from_le_bytes([b[0], b[1], b[2], b[3]]);
+                }
+            }
+            Storage::Mapped { .. } => {
+                for (c, o) in out.iter_mut().enumerate() {
+                    *o = self.value(r, c);
+                }
+            }
+        }
+    }
+
+    /// The rows at `idx`, in that order, into `out` (resized).
+    pub fn gather(&self, idx: &[usize], out: &mut Vec<f32>) {
+        out.resize(idx.len() * self.cols, 0.0);
+        for (k, &r) in idx.iter().enumerate() {
+            self.row_into(r, &mut out[k * self.cols..(k + 1) * self.cols]);
+        }
+    }
+
+    /// All rows as an in-memory matrix (for small data and tests).
+    pub fn to_matrix(&self) -> Matrix {
+        let idx: Vec<usize> = (0..self.rows).collect();
+        let mut data = Vec::new();
+        self.gather(&idx, &mut data);
+        Matrix::new(self.rows, self.cols, data)
+    }
+
+    /// A 64-bit fingerprint of shape and values, to recognise the same data on resume.
+    pub fn checksum(&self) -> u64 {
+        let mut h = mix64(self.rows as u64 ^ mix64(self.cols as u64));
+        let mut row = vec![0.0f32; self.cols];
+        for r in 0..self.rows {
+            self.row_into(r, &mut row);
+            for v in &row {
+                h = mix64(h ^ v.to_bits() as u64);
+            }
+        }
+        h
+    }
+
+    fn check_values(&self) -> Result<(), DataError> {
+        if self.rows == 0 {
+            return fail(&self.path, "has zero rows");
+        }
+        if self.cols == 0 {
+            return fail(&self.path, "has zero columns");
+        }
+        let mut row = vec![0.0f32; self.cols];
+        for r in 0..self.rows {
+            self.row_into(r, &mut row);
+            if let Some(c) = row.iter().position(|v| !v.is_finite()) {
+                let what = if row[c].is_nan() { "NaN" } else { "infinite" };
+                return fail(&self.path, format!("row {r}, column {c} (0-based) is {what}"));
+            }
+        }
+        Ok(())
+    }
+}
+
+/// A cheap, well-mixed 64-bit step (splitmix64 finaliser) for checksums.
+fn mix64(mut z: u64) -> u64 {
+    z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
+    z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
+    z ^ (z >> 31)
+}
+
 /// Read an embedding matrix, choosing the format by extension. `tensor`
 /// names the tensor inside a `.safetensors` file holding several.
 pub fn read_matrix(path: &Path, tensor: Option<&str>) -> Result<Matrix, DataError> {
@@ -56,12 +229,7 @@ pub fn read_matrix(path: &Path, tensor: Option<&str>) -> Result<Matrix, DataErro
         "npy" => read_npy_matrix(path)?,
         "safetensors" => read_safetensors_matrix(path, tensor)?,
         "csv" => read_csv_matrix(path)?,
-        other => {
-            return fail(
-                path,
-                format!("unsupported file type '.{other}' (expected .npy, .safetensors or .csv)"),
-            )
-        }
+        other => return fail(path, format!("unsupported file type '.{other}' (expected .npy, .safetensors or .csv)")),
     };
     if m.rows == 0 {
         return fail(path, "has zero rows");
@@ -70,19 +238,8 @@ pub fn read_matrix(path: &Path, tensor: Option<&str>) -> Result<Matrix, DataErro
         return fail(path, "has zero columns");
     }
     if let Some(i) = m.data.iter().position(|v| !v.is_finite()) {
-        let what = if m.data[i].is_nan() {
-            "NaN"
-        } else {
-            "infinite"
-        };
-        return fail(
-            path,
-            format!(
-                "row {}, column {} (0-based) is {what}",
-                i / m.cols,
-                i % m.cols
-            ),
-        );
+        let what = if m.data[i].is_nan() { "NaN" } else { "infinite" };
+        return fail(path, format!("row {}, column {} (0-based) is {what}", i / m.cols, i % m.cols));
     }
     Ok(m)
 }
@@ -94,24 +251,13 @@ pub fn read_labels(path: &Path) -> Result<Vec<i64>, DataError> {
         "npy" => {
             let (header, bytes) = read_npy(path)?;
             if header.shape.len() > 2 || (header.shape.len() == 2 && header.shape[1] != 1) {
-                return fail(
-                    path,
-                    format!(
-                        "labels must be 1-D (or one column), found shape {:?}",
-                        header.shape
-                    ),
-                );
+                return fail(path, format!("labels must be 1-D (or one column), found shape {:?}", header.shape));
             }
             let n = header.shape.first().copied().unwrap_or(1);
             decode_ints(path, &header.descr, &bytes, n)?
         }
         "csv" => read_csv_labels(path)?,
-        other => {
-            return fail(
-                path,
-                format!("unsupported label file type '.{other}' (expected .npy or .csv)"),
-            )
-        }
+        other => return fail(path, format!("unsupported label file type '.{other}' (expected .npy or .csv)")),
     };
     if labels.is_empty() {
         return fail(path, "has zero labels");
@@ -122,19 +268,13 @@ pub fn read_labels(path: &Path) -> Result<Vec<i64>, DataError> {
 /// Labels must pair one to one with the data rows.
 pub fn check_label_count(path: &Path, labels: usize, rows: usize) -> Result<(), DataError> {
     if labels != rows {
-        return fail(
-            path,
-            format!("has {labels} labels but the data has {rows} rows"),
-        );
+        return fail(path, format!("has {labels} labels but the data has {rows} rows"));
     }
     Ok(())
 }
 
 fn extension(path: &Path) -> String {
-    path.extension()
-        .and_then(|e| e.to_str())
-        .unwrap_or("")
-        .to_ascii_lowercase()
+    path.extension().and_then(|e| e.to_str()).unwrap_or("").to_ascii_lowercase()
 }
 
 fn open(path: &Path) -> Result<std::fs::File, DataError> {
@@ -151,9 +291,9 @@ struct NpyHeader {
     shape: Vec<usize>,
 }
 
-/// Parse the header and read the raw data bytes of a `.npy` file
-/// (format versions 1.0, 2.0 and 3.0).
-fn read_npy(path: &Path) -> Result<(NpyHeader, Vec<u8>), DataError> {
+/// Parse the header of a `.npy` file (format versions 1.0, 2.0 and 3.0);
+/// returns it with the byte offset where the data starts.
+fn npy_header(path: &Path) -> Result<(NpyHeader, usize), DataError> {
     let mut f = std::io::BufReader::new(open(path)?);
     let mut magic = [0u8; 8];
     if f.read_exact(&mut magic).is_err() || &magic[..6] != b"\x93NUMPY" {
@@ -162,48 +302,43 @@ fn read_npy(path: &Path) -> Result<(NpyHeader, Vec<u8>), DataError> {
     let header_len = match magic[6] {
         1 => {
             let mut b = [0u8; 2];
-            f.read_exact(&mut b)
-                .or_else(|_| fail(path, "truncated .npy header"))?;
+            f.read_exact(&mut b).or_else(|_| fail(path, "truncated .npy header"))?;
             u16::from_le_bytes(b) as usize
         }
         2 | 3 => {
             let mut b = [0u8; 4];
-            f.read_exact(&mut b)
-                .or_else(|_| fail(path, "truncated .npy header"))?;
+            f.read_exact(&mut b).or_else(|_| fail(path, "truncated .npy header"))?;
             u32::from_le_bytes(b) as usize
         }
-        v => {
-            return fail(
-                path,
-                format!("unsupported .npy format version {v}.{}", magic[7]),
-            )
-        }
+        v => return fail(path, format!("unsupported .npy format version {v}.{}", magic[7])),
     };
     let mut text = vec![0u8; header_len];
-    f.read_exact(&mut text)
-        .or_else(|_| fail(path, "truncated .npy header"))?;
+    f.read_exact(&mut text).or_else(|_| fail(path, "truncated .npy header"))?;
     let text = String::from_utf8(text).or_else(|_| fail(path, ".npy header is not text"))?;
     let header = parse_npy_header(&text).ok_or_else(|| DataError {
         path: path.to_path_buf(),
         msg: format!("cannot parse .npy header {}", text.trim()),
     })?;
-    let width = dtype_width(&header.descr).ok_or_else(|| DataError {
-        path: path.to_path_buf(),
-        msg: format!("unsupported dtype '{}'", header.descr),
-    })?;
-    let expected = header.shape.iter().product::<usize>() * width;
-    let mut bytes = Vec::with_capacity(expected);
-    f.take(expected as u64)
-        .read_to_end(&mut bytes)
+    if dtype_width(&header.descr).is_none() {
+        return fail(path, format!("unsupported dtype '{}'", header.descr));
+    }
+    let prefix = if magic[6] == 1 { 10 } else { 12 };
+    Ok((header, prefix + header_len))
+}
+
+/// Parse the header and read the raw data bytes of a `.npy` file.
+fn read_npy(path: &Path) -> Result<(NpyHeader, Vec<u8>), DataError> {
+    let (header, offset) = npy_header(path)?;
+    let mut f = std::io::BufReader::new(open(path)?);
+    std::io::copy(&mut (&mut f).take(offset as u64), &mut std::io::sink())
         .or_else(|e| fail(path, format!("read error: {e}")))?;
+    let expected = header.shape.iter().product::<usize>() * dtype_width(&header.descr).unwrap_or(0);
+    let mut bytes = Vec::with_capacity(expected);
+    f.take(expected as u64).read_to_end(&mut bytes).or_else(|e| fail(path, format!("read error: {e}")))?;
     if bytes.len() < expected {
         return fail(
             path,
-            format!(
-                "truncated: shape {:?} needs {expected} data bytes, file has {}",
-                header.shape,
-                bytes.len()
-            ),
+            format!("truncated: shape {:?} needs {expected} data bytes, file has {}", header.shape, bytes.len()),
         );
     }
     Ok((header, bytes))
@@ -213,9 +348,7 @@ fn read_npy(path: &Path) -> Result<(NpyHeader, Vec<u8>), DataError> {
 /// `{'descr': '<f4', 'fortran_order': False, 'shape': (3, 4), }`.
 fn parse_npy_header(text: &str) -> Option<NpyHeader> {
     let value_after = |key: &str| -> Option<&str> {
-        let at = text
-            .find(&format!("'{key}'"))
-            .or_else(|| text.find(&format!("\"{key}\"")))?;
+        let at = text.find(&format!("'{key}'")).or_else(|| text.find(&format!("\"{key}\"")))?;
         let rest = &text[at + key.len() + 2..];
         Some(rest[rest.find(':')? + 1..].trim_start())
     };
@@ -231,11 +364,7 @@ fn parse_npy_header(text: &str) -> Option<NpyHeader> {
         .filter(|s| !s.is_empty())
         .map(|s| s.trim_end_matches('L').parse().ok())
         .collect::<Option<Vec<usize>>>()?;
-    Some(NpyHeader {
-        descr,
-        fortran_order,
-        shape,
-    })
+    Some(NpyHeader { descr, fortran_order, shape })
 }
 
 /// Bytes per element of a numpy dtype string, for the dtypes we read.
@@ -272,16 +401,14 @@ fn decode_floats(path: &Path, descr: &str, bytes: &[u8], n: usize) -> Result<Vec
         "f4" => |b| f32::from_le_bytes([b[0], b[1], b[2], b[3]]),
         "f8" => |b| f64::from_le_bytes(b) as f32,
         "f2" => |b| f16::from_le_bytes([b[0], b[1]]).to_f32(),
-        _ => return fail(
-            path,
-            format!(
-                "unsupported dtype '{descr}' for embeddings (expected float32, float64 or float16)"
-            ),
-        ),
+        _ => {
+            return fail(
+                path,
+                format!("unsupported dtype '{descr}' for embeddings (expected float32, float64 or float16)"),
+            )
+        }
     };
-    Ok((0..n)
-        .map(|i| conv(element(bytes, i, width, big)))
-        .collect())
+    Ok((0..n).map(|i| conv(element(bytes, i, width, big))).collect())
 }
 
 fn decode_ints(path: &Path, descr: &str, bytes: &[u8], n: usize) -> Result<Vec<i64>, DataError> {
@@ -296,37 +423,24 @@ fn decode_ints(path: &Path, descr: &str, bytes: &[u8], n: usize) -> Result<Vec<i
         "u4" => |b| u32::from_le_bytes([b[0], b[1], b[2], b[3]]) as i64,
         "i8" => i64::from_le_bytes,
         "u8" => |b| u64::from_le_bytes(b).min(i64::MAX as u64) as i64,
-        _ => {
-            return fail(
-                path,
-                format!("unsupported dtype '{descr}' for labels (expected an integer dtype)"),
-            )
-        }
+        _ => return fail(path, format!("unsupported dtype '{descr}' for labels (expected an integer dtype)")),
     };
-    Ok((0..n)
-        .map(|i| conv(element(bytes, i, width, big)))
-        .collect())
+    Ok((0..n).map(|i| conv(element(bytes, i, width, big))).collect())
+}
+
+fn check_matrix_shape(path: &Path, shape: &[usize]) -> Result<(), DataError> {
+    if shape.len() != 2 {
+        return fail(path, format!("expected a 2-D array (rows x features), found {}-D shape {shape:?}", shape.len()));
+    }
+    Ok(())
 }
 
 fn read_npy_matrix(path: &Path) -> Result<Matrix, DataError> {
     let (header, bytes) = read_npy(path)?;
-    if header.shape.len() != 2 {
-        return fail(
-            path,
-            format!(
-                "expected a 2-D array (rows x features), found {}-D shape {:?}",
-                header.shape.len(),
-                header.shape
-            ),
-        );
-    }
+    check_matrix_shape(path, &header.shape)?;
     let (rows, cols) = (header.shape[0], header.shape[1]);
     let data = decode_floats(path, &header.descr, &bytes, rows * cols)?;
-    let data = if header.fortran_order {
-        transpose(&data, cols, rows)
-    } else {
-        data
-    };
+    let data = if header.fortran_order { transpose(&data, cols, rows) } else { data };
     Ok(Matrix::new(rows, cols, data))
 }
 
@@ -343,10 +457,7 @@ fn transpose(data: &[f32], rows: usize, cols: usize) -> Vec<f32> {
 
 /// Write a float32 2-D `.npy` file (format 1.0) to `w`.
 pub fn write_npy<W: std::io::Write + ?Sized>(w: &mut W, m: &Matrix) -> std::io::Result<()> {
-    let mut header = format!(
-        "{{'descr': '<f4', 'fortran_order': False, 'shape': ({}, {}), }}",
-        m.rows, m.cols
-    );
+    let mut header = format!("{{'descr': '<f4', 'fortran_order': False, 'shape': ({}, {}), }}", m.rows, m.cols);
     // Pad so that magic + length + header + newline is a multiple of 64.
     let unpadded = 10 + header.len() + 1;
     header.push_str(&" ".repeat(unpadded.next_multiple_of(64) - unpadded));
@@ -374,56 +485,28 @@ fn read_safetensors_matrix(path: &Path, tensor: Option<&str>) -> Result<Matrix, 
         (None, [only]) => only,
         (None, []) => return fail(path, "holds no tensors"),
         (None, _) => {
-            return fail(
-                path,
-                format!(
-                    "holds several tensors; choose one with --tensor: {}",
-                    names.join(", ")
-                ),
-            )
+            return fail(path, format!("holds several tensors; choose one with --tensor: {}", names.join(", ")))
         }
     };
-    let view = st.tensor(name).or_else(|_| {
-        fail(
-            path,
-            format!("has no tensor '{name}' (it has: {})", names.join(", ")),
-        )
-    })?;
+    let view =
+        st.tensor(name).or_else(|_| fail(path, format!("has no tensor '{name}' (it has: {})", names.join(", "))))?;
     let shape = view.shape();
     if shape.len() != 2 {
-        return fail(
-            path,
-            format!(
-                "tensor '{name}' is {}-D {shape:?}; expected 2-D (rows x features)",
-                shape.len()
-            ),
-        );
+        return fail(path, format!("tensor '{name}' is {}-D {shape:?}; expected 2-D (rows x features)", shape.len()));
     }
     let raw = view.data();
     use safetensors::Dtype;
     let data: Vec<f32> = match view.dtype() {
-        Dtype::F32 => raw
-            .chunks_exact(4)
-            .map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]]))
-            .collect(),
-        Dtype::F64 => raw
-            .chunks_exact(8)
-            .map(|b| f64::from_le_bytes(b.try_into().expect("8 bytes")) as f32)
-            .collect(),
-        Dtype::F16 => raw
-            .chunks_exact(2)
-            .map(|b| f16::from_le_bytes([b[0], b[1]]).to_f32())
-            .collect(),
-        Dtype::BF16 => raw
-            .chunks_exact(2)
-            .map(|b| bf16::from_le_bytes([b[0], b[1]]).to_f32())
-            .collect(),
-        other => return fail(
-            path,
-            format!(
-                "tensor '{name}' has unsupported dtype {other:?} (expected F32, F64, F16 or BF16)"
-            ),
-        ),
+        Dtype::F32 => raw.chunks_exact(4).map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]])).collect(),
+        Dtype::F64 => raw.chunks_exact(8).map(|b| f64::from_le_bytes(b.try_into().expect("8 bytes")) as f32).collect(),
+        Dtype::F16 => raw.chunks_exact(2).map(|b| f16::from_le_bytes([b[0], b[1]]).to_f32()).collect(),
+        Dtype::BF16 => raw.chunks_exact(2).map(|b| bf16::from_le_bytes([b[0], b[1]]).to_f32()).collect(),
+        other => {
+            return fail(
+                path,
+                format!("tensor '{name}' has unsupported dtype {other:?} (expected F32, F64, F16 or BF16)"),
+            )
+        }
     };
     Ok(Matrix::new(shape[0], shape[1], data))
 }
@@ -431,11 +514,8 @@ fn read_safetensors_matrix(path: &Path, tensor: Option<&str>) -> Result<Matrix, 
 // ---------------------------------------------------------------- .csv
 
 fn csv_records(path: &Path) -> Result<Vec<(u64, csv::StringRecord)>, DataError> {
-    let mut reader = csv::ReaderBuilder::new()
-        .has_headers(false)
-        .flexible(true)
-        .trim(csv::Trim::All)
-        .from_reader(open(path)?);
+    let mut reader =
+        csv::ReaderBuilder::new().has_headers(false).flexible(true).trim(csv::Trim::All).from_reader(open(path)?);
     let mut out = Vec::new();
     for rec in reader.records() {
         let rec = rec.or_else(|e| fail(path, format!("CSV error: {e}")))?;
@@ -462,18 +542,11 @@ fn split_header(records: &mut Vec<(u64, csv::StringRecord)>) -> Option<Vec<Strin
 fn read_csv_matrix(path: &Path) -> Result<Matrix, DataError> {
     let mut records = csv_records(path)?;
     let header = split_header(&mut records);
-    let cols = header
-        .as_ref()
-        .map(Vec::len)
-        .or_else(|| records.first().map(|r| r.1.len()))
-        .unwrap_or(0);
+    let cols = header.as_ref().map(Vec::len).or_else(|| records.first().map(|r| r.1.len())).unwrap_or(0);
     let mut data = Vec::with_capacity(records.len() * cols);
     for (line, rec) in &records {
         if rec.len() != cols {
-            return fail(
-                path,
-                format!("line {line} has {} fields, expected {cols}", rec.len()),
-            );
+            return fail(path, format!("line {line} has {} fields, expected {cols}", rec.len()));
         }
         for (c, field) in rec.iter().enumerate() {
             let v: f64 = field.parse().or_else(|_| {
@@ -481,10 +554,7 @@ fn read_csv_matrix(path: &Path) -> Result<Matrix, DataError> {
                     Some(names) => format!("column {} ('{}')", c + 1, names[c]),
                     None => format!("column {}", c + 1),
                 };
-                fail(
-                    path,
-                    format!("line {line}, {col}: '{field}' is not a number"),
-                )
+                fail(path, format!("line {line}, {col}: '{field}' is not a number"))
             })?;
             data.push(v as f32);
         }
@@ -494,30 +564,16 @@ fn read_csv_matrix(path: &Path) -> Result<Matrix, DataError> {
 
 fn read_csv_labels(path: &Path) -> Result<Vec<i64>, DataError> {
     let mut records = csv_records(path)?;
-    if records
-        .first()
-        .is_some_and(|(_, r)| r.len() == 1 && r[0].parse::<i64>().is_err())
-    {
+    if records.first().is_some_and(|(_, r)| r.len() == 1 && r[0].parse::<i64>().is_err()) {
         records.remove(0);
     }
     records
         .iter()
         .map(|(line, rec)| {
             if rec.len() != 1 {
-                return fail(
-                    path,
-                    format!(
-                        "line {line} has {} fields; a label file has one column",
-                        rec.len()
-                    ),
-                );
+                return fail(path, format!("line {line} has {} fields; a label file has one column", rec.len()));
             }
-            rec[0].parse::<i64>().or_else(|_| {
-                fail(
-                    path,
-                    format!("line {line}: '{}' is not an integer label", &rec[0]),
-                )
-            })
+            rec[0].parse::<i64>().or_else(|_| fail(path, format!("line {line}: '{}' is not an integer label", &rec[0])))
         })
         .collect()
 }
@@ -528,14 +584,9 @@ mod tests {
 
     #[test]
     fn parses_header_variants() {
-        let h =
-            parse_npy_header("{'descr': '<f8', 'fortran_order': True, 'shape': (3, 4), }").unwrap();
-        assert_eq!(
-            (h.descr.as_str(), h.fortran_order, h.shape),
-            ("<f8", true, vec![3, 4])
-        );
-        let h =
-            parse_npy_header("{'descr': '|u1', 'fortran_order': False, 'shape': (7,), }").unwrap();
+        let h = parse_npy_header("{'descr': '<f8', 'fortran_order': True, 'shape': (3, 4), }").unwrap();
+        assert_eq!((h.descr.as_str(), h.fortran_order, h.shape), ("<f8", true, vec![3, 4]));
+        let h = parse_npy_header("{'descr': '|u1', 'fortran_order': False, 'shape': (7,), }").unwrap();
         assert_eq!(h.shape, vec![7]);
     }
 

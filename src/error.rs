@@ -17,19 +17,13 @@ pub enum Error {
     Invalid(String),
     /// Writing an output file failed.
     #[error("{}: {source}", path.display())]
-    Io {
-        path: PathBuf,
-        source: std::io::Error,
-    },
+    Io { path: PathBuf, source: std::io::Error },
 }
 
 pub type Result<T> = std::result::Result<T, Error>;
 
 impl Error {
     pub fn model(path: impl Into<PathBuf>, msg: impl std::fmt::Display) -> Error {
-        Error::Model {
-            path: path.into(),
-            msg: msg.to_string(),
-        }
+        Error::Model { path: path.into(), msg: msg.to_string() }
     }
 }

@@ -77,25 +77,13 @@ impl FlowSpec {
             let log_scale = take(self.dim);
             let bias = take(self.dim);
             let mut shapes = vec![(self.hidden, d1)];
-            shapes.extend(std::iter::repeat_n(
-                (self.hidden, self.hidden),
-                self.depth - 1,
-            ));
+            shapes.extend(std::iter::repeat_n((self.hidden, self.hidden), self.depth - 1));
             shapes.push((2 * d2, self.hidden));
             let linears = shapes
                 .into_iter()
-                .map(|(out, inp)| LinearSlot {
-                    weight: take(out * inp),
-                    bias: take(out),
-                    out,
-                    inp,
-                })
+                .map(|(out, inp)| LinearSlot { weight: take(out * inp), bias: take(out), out, inp })
                 .collect();
-            layers.push(LayerSlots {
-                log_scale,
-                bias,
-                linears,
-            });
+            layers.push(LayerSlots { log_scale, bias, linears });
         }
         (layers, next)
     }
@@ -117,14 +105,8 @@ impl Flow {
     /// and every conditioner's last layer zero, so `s = t = 0`. Hidden layers
     /// start uniform in +-1/sqrt(fan_in) so that training can break symmetry.
     pub fn new(spec: FlowSpec, seed: u64) -> Flow {
-        assert!(
-            spec.depth >= 1,
-            "a conditioner needs at least one hidden layer"
-        );
-        assert!(
-            spec.layers == 0 || spec.dim >= 2,
-            "coupling needs at least two features"
-        );
+        assert!(spec.depth >= 1, "a conditioner needs at least one hidden layer");
+        assert!(spec.layers == 0 || spec.dim >= 2, "coupling needs at least two features");
         let (slots, total) = spec.layout();
         let mut rng = StdRng::seed_from_u64(seed);
         let mut params = vec![0.0f32; total];
@@ -144,12 +126,7 @@ impl Flow {
                 p
             })
             .collect();
-        Flow {
-            spec,
-            slots,
-            params,
-            perms,
-        }
+        Flow { spec, slots, params, perms }
     }
 
     /// Reset ActNorm to the identity and zero every conditioner's output
@@ -175,10 +152,7 @@ impl Flow {
             let slot = &self.slots[k];
             for j in 0..dim {
                 let mean = (0..rows).map(|r| input[r * dim + j] as f64).sum::<f64>() / rows as f64;
-                let var = (0..rows)
-                    .map(|r| (input[r * dim + j] as f64 - mean).powi(2))
-                    .sum::<f64>()
-                    / rows as f64;
+                let var = (0..rows).map(|r| (input[r * dim + j] as f64 - mean).powi(2)).sum::<f64>() / rows as f64;
                 let log_scale = -0.5 * (var + 1e-6).ln();
                 self.params[slot.log_scale + j] = log_scale as f32;
                 self.params[slot.bias + j] = (-mean * log_scale.exp()) as f32;
@@ -272,11 +246,7 @@ fn linear_forward(params: &[f32], lin: &LinearSlot, inp: View<'_, f32>, out: &mu
     for r in 0..rows {
         out[r * lin.out..(r + 1) * lin.out].copy_from_slice(bias);
     }
-    let w = View::transposed(
-        &params[lin.weight..lin.weight + lin.out * lin.inp],
-        lin.out,
-        lin.inp,
-    );
+    let w = View::transposed(&params[lin.weight..lin.weight + lin.out * lin.inp], lin.out, lin.inp);
     matmul(out, lin.out, true, inp, w);
 }
 
@@ -296,11 +266,7 @@ fn run_conditioner(
     for i in 0..spec.depth {
         let (prev, cur) = hidden.split_at_mut(i * block);
         let cur = &mut cur[..rows * hid];
-        let layer_in = if i == 0 {
-            inp
-        } else {
-            View::rows(&prev[(i - 1) * block..], rows, hid, hid)
-        };
+        let layer_in = if i == 0 { inp } else { View::rows(&prev[(i - 1) * block..], rows, hid, hid) };
         linear_forward(params, &slot.linears[i], layer_in, cur);
         match dropout {
             Some((d, layer)) if d.rate > 0.0 => {
@@ -311,11 +277,7 @@ fn run_conditioner(
                     let mut state = mix(d.seed ^ mix(unit ^ (d.row_offset + r) as u64));
                     for v in &mut cur[r * hid..(r + 1) * hid] {
                         state = mix(state);
-                        *v = if state < threshold {
-                            0.0
-                        } else {
-                            v.max(0.0) * scale
-                        };
+                        *v = if state < threshold { 0.0 } else { v.max(0.0) * scale };
                     }
                 }
             }
@@ -343,10 +305,7 @@ fn forward_layer(flow: &Flow, k: usize, ws: &mut Workspace, rows: usize, dropout
     let output = &mut after[..rows * dim];
     let p = &mut ws.perm[k * cap * dim..k * cap * dim + rows * dim];
     for r in 0..rows {
-        let (xi, pr) = (
-            &input[r * dim..(r + 1) * dim],
-            &mut p[r * dim..(r + 1) * dim],
-        );
+        let (xi, pr) = (&input[r * dim..(r + 1) * dim], &mut p[r * dim..(r + 1) * dim]);
         for (j, &src) in perm.iter().enumerate() {
             let src = src as usize;
             pr[j] = xi[src] * log_scale[src].exp() + shift[src];
@@ -356,19 +315,10 @@ fn forward_layer(flow: &Flow, k: usize, ws: &mut Workspace, rows: usize, dropout
 
     // Conditioner MLP on p1 = p[:, ..d1].
     let hidden_block = cap * hid;
-    let layer_hidden =
-        &mut ws.hidden[k * spec.depth * hidden_block..(k + 1) * spec.depth * hidden_block];
+    let layer_hidden = &mut ws.hidden[k * spec.depth * hidden_block..(k + 1) * spec.depth * hidden_block];
     let out = &mut ws.out[..rows * 2 * d2];
     let masks = dropout.map(|d| (d, k));
-    run_conditioner(
-        flow,
-        k,
-        View::rows(&p[..], rows, d1, dim),
-        layer_hidden,
-        hidden_block,
-        out,
-        masks,
-    );
+    run_conditioner(flow, k, View::rows(&p[..], rows, d1, dim), layer_hidden, hidden_block, out, masks);
 
     let c = spec.clamp;
     let s = &mut ws.s[k * cap * d2..k * cap * d2 + rows * d2];
@@ -413,10 +363,7 @@ pub fn nll_rows(flow: &Flow, ws: &Workspace, rows: usize, out: &mut [f64]) {
 fn row_nll(flow: &Flow, ws: &Workspace, r: usize) -> f64 {
     let dim = flow.spec.dim;
     let at = flow.spec.layers * ws.cap * dim + r * dim;
-    let sq: f64 = ws.acts[at..at + dim]
-        .iter()
-        .map(|&v| (v as f64) * (v as f64))
-        .sum();
+    let sq: f64 = ws.acts[at..at + dim].iter().map(|&v| (v as f64) * (v as f64)).sum();
     0.5 * sq + dim as f64 * HALF_LN_2PI - ws.logdet[r]
 }
 
@@ -428,21 +375,7 @@ pub fn backward_nll(flow: &Flow, ws: &mut Workspace, rows: usize, scale: f32, gr
     let (d1, d2) = spec.split();
     let c = spec.clamp;
     let params = &flow.params;
-    let Workspace {
-        acts,
-        perm,
-        hidden,
-        s,
-        es,
-        g,
-        gp,
-        gout,
-        gh_a,
-        gh_b,
-        gx1,
-        keep_inv,
-        ..
-    } = ws;
+    let Workspace { acts, perm, hidden, s, es, g, gp, gout, gh_a, gh_b, gx1, keep_inv, .. } = ws;
     let keep_inv = *keep_inv;
     // dL/dz = scale * z.
     let z = &acts[spec.layers * cap * dim..spec.layers * cap * dim + rows * dim];
@@ -469,8 +402,7 @@ pub fn backward_nll(flow: &Flow, ws: &mut Workspace, rows: usize, scale: f32, gr
         }
         // Through the conditioner MLP, last layer first; the running gradient
         // ping-pongs between the two hidden scratch buffers.
-        let layer_hidden =
-            &hidden[k * spec.depth * hidden_block..(k + 1) * spec.depth * hidden_block];
+        let layer_hidden = &hidden[k * spec.depth * hidden_block..(k + 1) * spec.depth * hidden_block];
         let mut src_is_a: Option<bool> = None;
         for i in (0..=spec.depth).rev() {
             let lin = &slot.linears[i];
@@ -482,33 +414,17 @@ pub fn backward_nll(flow: &Flow, ws: &mut Workspace, rows: usize, scale: f32, gr
             let inp = if i == 0 {
                 View::rows(p, rows, d1, dim)
             } else {
-                View::rows(
-                    &layer_hidden[(i - 1) * hidden_block..(i - 1) * hidden_block + rows * hid],
-                    rows,
-                    hid,
-                    hid,
-                )
+                View::rows(&layer_hidden[(i - 1) * hidden_block..(i - 1) * hidden_block + rows * hid], rows, hid, hid)
             };
             // gW += g_cur^T * inp ; gb += column sums of g_cur.
             let (gw, gb) = grad[lin.weight..lin.bias + lin.out].split_at_mut(lin.out * lin.inp);
-            matmul(
-                gw,
-                lin.inp,
-                true,
-                View::transposed(g_cur, rows, lin.out),
-                inp,
-            );
+            matmul(gw, lin.inp, true, View::transposed(g_cur, rows, lin.out), inp);
             for r in 0..rows {
                 for (b, &gv) in gb.iter_mut().zip(&g_cur[r * lin.out..(r + 1) * lin.out]) {
                     *b += gv;
                 }
             }
-            let w = View::rows(
-                &params[lin.weight..lin.weight + lin.out * lin.inp],
-                lin.out,
-                lin.inp,
-                lin.inp,
-            );
+            let w = View::rows(&params[lin.weight..lin.weight + lin.out * lin.inp], lin.out, lin.inp, lin.inp);
             let g_cur = View::rows(g_cur, rows, lin.out, lin.out);
             if i == 0 {
                 matmul(&mut gx1[..rows * d1], d1, false, g_cur, w);
@@ -560,15 +476,7 @@ pub fn inverse(flow: &Flow, z: &[f32], rows: usize) -> Vec<f32> {
     let mut hidden = vec![0.0f32; spec.depth * rows * hid];
     let mut out = vec![0.0f32; rows * 2 * d2];
     for k in (0..spec.layers).rev() {
-        run_conditioner(
-            flow,
-            k,
-            View::rows(&y, rows, d1, dim),
-            &mut hidden,
-            rows * hid,
-            &mut out,
-            None,
-        );
+        run_conditioner(flow, k, View::rows(&y, rows, d1, dim), &mut hidden, rows * hid, &mut out, None);
         for r in 0..rows {
             p[r * dim..r * dim + d1].copy_from_slice(&y[r * dim..r * dim + d1]);
             for j in 0..d2 {
@@ -605,22 +513,14 @@ impl Workers {
     pub fn new(flow: &Flow, threads: usize, batch_cap: usize) -> Workers {
         let threads = threads.max(1);
         let chunk_cap = batch_cap.div_ceil(threads).max(1);
-        let pool = (0..threads)
-            .map(|_| {
-                (
-                    Workspace::new(&flow.spec, chunk_cap),
-                    vec![0.0f32; flow.param_count()],
-                )
-            })
-            .collect();
+        let pool =
+            (0..threads).map(|_| (Workspace::new(&flow.spec, chunk_cap), vec![0.0f32; flow.param_count()])).collect();
         Workers { chunk_cap, pool }
     }
 
     fn chunks(&self, rows: usize) -> usize {
         let useful = rows.div_ceil(MIN_ROWS_PER_THREAD).max(1);
-        useful
-            .min(self.pool.len())
-            .max(rows.div_ceil(self.chunk_cap))
+        useful.min(self.pool.len()).max(rows.div_ceil(self.chunk_cap))
     }
 
     /// Mean NLL over `rows` rows of `x` and its gradient (written to `grad`).
@@ -634,10 +534,7 @@ impl Workers {
     ) -> f64 {
         let dim = flow.spec.dim;
         let parts = self.chunks(rows);
-        assert!(
-            parts <= self.pool.len(),
-            "batch larger than the workers were sized for"
-        );
+        assert!(parts <= self.pool.len(), "batch larger than the workers were sized for");
         let per = rows.div_ceil(parts);
         let scale = 1.0 / rows as f32;
         let job = |(idx, (ws, g)): (usize, &mut (Workspace, Vec<f32>))| -> f64 {
@@ -647,11 +544,7 @@ impl Workers {
             if n == 0 {
                 return 0.0;
             }
-            let d = dropout.map(|(rate, seed)| Dropout {
-                rate,
-                seed,
-                row_offset: start,
-            });
+            let d = dropout.map(|(rate, seed)| Dropout { rate, seed, row_offset: start });
             forward(flow, ws, &x[start * dim..(start + n) * dim], n, d);
             let total = (0..n).map(|r| row_nll(flow, ws, r)).sum();
             backward_nll(flow, ws, n, scale, g);
@@ -662,15 +555,8 @@ impl Workers {
             pool.iter_mut().enumerate().map(job).collect()
         } else {
             std::thread::scope(|sc| {
-                let handles: Vec<_> = pool
-                    .iter_mut()
-                    .enumerate()
-                    .map(|item| sc.spawn(move || job(item)))
-                    .collect();
-                handles
-                    .into_iter()
-                    .map(|h| h.join().expect("worker thread panicked"))
-                    .collect()
+                let handles: Vec<_> = pool.iter_mut().enumerate().map(|item| sc.spawn(move || job(item))).collect();
+                handles.into_iter().map(|h| h.join().expect("worker thread panicked")).collect()
             })
         };
         grad.copy_from_slice(&pool[0].1);
@@ -695,10 +581,7 @@ impl Workers {
             let outs = &mut out[start..start + n];
             let pool = &mut self.pool[..parts];
             std::thread::scope(|sc| {
-                for ((ws, _), (xc, oc)) in pool
-                    .iter_mut()
-                    .zip(xs.chunks(per * dim).zip(outs.chunks_mut(per)))
-                {
+                for ((ws, _), (xc, oc)) in pool.iter_mut().zip(xs.chunks(per * dim).zip(outs.chunks_mut(per))) {
                     let m = oc.len();
                     let mut run = move || {
                         forward(flow, ws, xc, m, None);
@@ -725,13 +608,7 @@ mod tests {
     use rand_distr::{Distribution, StandardNormal};
 
     fn spec(dim: usize, layers: usize, hidden: usize, depth: usize) -> FlowSpec {
-        FlowSpec {
-            dim,
-            layers,
-            hidden,
-            depth,
-            clamp: 3.0,
-        }
+        FlowSpec { dim, layers, hidden, depth, clamp: 3.0 }
     }
 
     /// A flow with every parameter random (non-identity ActNorm, non-zero
@@ -747,9 +624,7 @@ mod tests {
 
     fn normal(rows: usize, dim: usize, seed: u64) -> Vec<f32> {
         let mut rng = StdRng::seed_from_u64(seed);
-        (0..rows * dim)
-            .map(|_| StandardNormal.sample(&mut rng))
-            .collect()
+        (0..rows * dim).map(|_| StandardNormal.sample(&mut rng)).collect()
     }
 
     fn fast(flow: &Flow, x: &[f32], rows: usize, dropout: Option<(f32, u64)>) -> (f64, Vec<f32>) {
@@ -776,11 +651,7 @@ mod tests {
             let x = normal(rows, dim, 5);
             let (nll, grad) = fast(&flow, &x, rows, None);
             let r = reference::evaluate(&flow, &x, rows).unwrap();
-            assert!(
-                (nll - r.mean_nll).abs() <= 1e-5 * r.mean_nll.abs().max(1.0),
-                "{nll} vs {}",
-                r.mean_nll
-            );
+            assert!((nll - r.mean_nll).abs() <= 1e-5 * r.mean_nll.abs().max(1.0), "{nll} vs {}", r.mean_nll);
             for layer in &flow.slots {
                 let mut tensors = vec![(layer.log_scale, dim), (layer.bias, dim)];
                 for lin in &layer.linears {
@@ -791,11 +662,7 @@ mod tests {
                     let want = &r.grad[at..at + n];
                     let top = want.iter().fold(0.0f64, |m, v| m.max(v.abs())).max(1e-3);
                     for (i, (&g, &w)) in grad[at..at + n].iter().zip(want).enumerate() {
-                        assert!(
-                            (g as f64 - w).abs() <= 1e-4 * top,
-                            "dim {dim}: param {} grad {g} vs {w}",
-                            at + i
-                        );
+                        assert!((g as f64 - w).abs() <= 1e-4 * top, "dim {dim}: param {} grad {g} vs {w}", at + i);
                     }
                 }
             }
@@ -838,30 +705,20 @@ mod tests {
                 let (mut hi, mut lo) = (x64.clone(), x64.clone());
                 hi[j] += eps;
                 lo[j] -= eps;
-                let (fh, fl) = (
-                    reference::map_row(&flow, &hi).unwrap(),
-                    reference::map_row(&flow, &lo).unwrap(),
-                );
+                let (fh, fl) = (reference::map_row(&flow, &hi).unwrap(), reference::map_row(&flow, &lo).unwrap());
                 for i in 0..dim {
                     jac[(i, j)] = (fh[i] - fl[i]) / (2.0 * eps);
                 }
             }
             let fd = jac.determinant().abs().ln();
-            assert!(
-                (fd - ws.logdet[0]).abs() < 1e-3,
-                "dim {dim}: fd {fd} vs analytic {}",
-                ws.logdet[0]
-            );
+            assert!((fd - ws.logdet[0]).abs() < 1e-3, "dim {dim}: fd {fd} vs analytic {}", ws.logdet[0]);
         }
     }
 
     /// inverse(forward(x)) = x, for a random flow, an identity flow and odd D.
     #[test]
     fn inverse_undoes_forward() {
-        for (flow, dim) in [
-            (random_flow(spec(9, 5, 32, 2), 4), 9),
-            (Flow::new(spec(6, 3, 8, 1), 4), 6),
-        ] {
+        for (flow, dim) in [(random_flow(spec(9, 5, 32, 2), 4), 9), (Flow::new(spec(6, 3, 8, 1), 4), 6)] {
             let rows = 100;
             let x = normal(rows, dim, 1);
             let mut ws = Workspace::new(&flow.spec, rows);
@@ -885,10 +742,7 @@ mod tests {
         let mut nll = vec![0.0; rows];
         workers.nll(&flow, &x, rows, &mut nll);
         for r in 0..rows {
-            let sq: f64 = x[r * dim..(r + 1) * dim]
-                .iter()
-                .map(|&v| (v as f64).powi(2))
-                .sum();
+            let sq: f64 = x[r * dim..(r + 1) * dim].iter().map(|&v| (v as f64).powi(2)).sum();
             let want = 0.5 * sq + 0.5 * dim as f64 * (2.0 * std::f64::consts::PI).ln();
             assert!((nll[r] - want).abs() < 1e-4, "{} vs {want}", nll[r]);
         }
@@ -904,14 +758,8 @@ mod tests {
         let drop = Some((0.3, 1234));
         let (_, grad) = fast(&flow, &x, rows, drop);
         let mut rng = StdRng::seed_from_u64(9);
-        let dir: Vec<f32> = (0..flow.param_count())
-            .map(|_| rng.random_range(-1.0f32..1.0))
-            .collect();
-        let slope: f64 = grad
-            .iter()
-            .zip(&dir)
-            .map(|(g, d)| (*g as f64) * (*d as f64))
-            .sum();
+        let dir: Vec<f32> = (0..flow.param_count()).map(|_| rng.random_range(-1.0f32..1.0)).collect();
+        let slope: f64 = grad.iter().zip(&dir).map(|(g, d)| (*g as f64) * (*d as f64)).sum();
         let eps = 1e-3f32;
         let base = flow.params.clone();
         let at = |flow: &mut Flow, sign: f32| {
@@ -921,10 +769,7 @@ mod tests {
             fast(flow, &x, rows, drop).0
         };
         let fd = (at(&mut flow, 1.0) - at(&mut flow, -1.0)) / (2.0 * eps as f64);
-        assert!(
-            (fd - slope).abs() < 2e-2 * slope.abs().max(1.0),
-            "fd {fd} vs analytic {slope}"
-        );
+        assert!((fd - slope).abs() < 2e-2 * slope.abs().max(1.0), "fd {fd} vs analytic {slope}");
     }
 
     /// Splitting a batch across threads changes nothing but summation order.

@@ -21,24 +21,12 @@ pub struct View<'a, T> {
 impl<'a, T> View<'a, T> {
     /// A row-major matrix whose rows are `row_stride` apart (>= cols).
     pub fn rows(data: &'a [T], rows: usize, cols: usize, row_stride: usize) -> Self {
-        View {
-            data,
-            rows,
-            cols,
-            row_stride,
-            col_stride: 1,
-        }
+        View { data, rows, cols, row_stride, col_stride: 1 }
     }
 
     /// The transpose of a contiguous row-major `rows x cols` matrix.
     pub fn transposed(data: &'a [T], rows: usize, cols: usize) -> Self {
-        View {
-            data,
-            rows: cols,
-            cols: rows,
-            row_stride: 1,
-            col_stride: cols,
-        }
+        View { data, rows: cols, cols: rows, row_stride: 1, col_stride: cols }
     }
 
     fn check(&self) {
@@ -63,10 +51,7 @@ pub fn matmul<T: Copy + 'static + From<f32>>(
     if m == 0 || n == 0 {
         return;
     }
-    assert!(
-        (m - 1) * dst_stride + n <= dst.len(),
-        "destination too small"
-    );
+    assert!((m - 1) * dst_stride + n <= dst.len(), "destination too small");
     a.check();
     b.check();
     if k == 0 {
@@ -126,13 +111,7 @@ mod tests {
         let b: Vec<f64> = (0..k * n).map(|i| (i as f64 * 0.11).cos()).collect();
         let want = naive(&a, &b, m, k, n);
         let mut c = vec![0.0; m * n];
-        matmul(
-            &mut c,
-            n,
-            false,
-            View::rows(&a, m, k, k),
-            View::rows(&b, k, n, n),
-        );
+        matmul(&mut c, n, false, View::rows(&a, m, k, k), View::rows(&b, k, n, n));
         for (x, y) in c.iter().zip(&want) {
             assert!((x - y).abs() < 1e-12);
         }
@@ -144,13 +123,7 @@ mod tests {
             }
         }
         let mut c2 = vec![1.0; m * n];
-        matmul(
-            &mut c2,
-            n,
-            true,
-            View::rows(&a, m, k, k),
-            View::transposed(&bt, n, k),
-        );
+        matmul(&mut c2, n, true, View::rows(&a, m, k, k), View::transposed(&bt, n, k));
         for (x, y) in c2.iter().zip(&want) {
             assert!((x - (y + 1.0)).abs() < 1e-12);
         }

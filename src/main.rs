@@ -178,13 +178,7 @@ fn run(cli: Cli) -> Result<()> {
             }
             Ok(())
         }
-        Command::Score {
-            model,
-            data: path,
-            output,
-            input,
-            threads,
-        } => {
+        Command::Score { model, data: path, output, input, threads } => {
             let m = Model::load(&model)?;
             let x = data::read_matrix(&path, input.tensor.as_deref())?;
             m.check_width(&path, x.cols)?;
@@ -193,35 +187,20 @@ fn run(cli: Cli) -> Result<()> {
         Command::Inspect { model, json } => {
             let m = Model::load(&model)?;
             if json {
-                println!(
-                    "{}",
-                    serde_json::to_string_pretty(&m.meta).expect("metadata serializes")
-                );
+                println!("{}", serde_json::to_string_pretty(&m.meta).expect("metadata serializes"));
             } else {
                 print!("{}", m.meta.describe());
             }
             Ok(())
         }
-        Command::Sample {
-            model,
-            count,
-            output,
-            seed,
-        } => {
+        Command::Sample { model, count, output, seed } => {
             let m = Model::load(&model)?;
             let samples = m.sample(count, seed);
             tidemark::output::write_atomic(&output, |w| {
-                data::write_npy(w, &samples).map_err(|source| tidemark::Error::Io {
-                    path: output.clone(),
-                    source,
-                })
+                data::write_npy(w, &samples).map_err(|source| tidemark::Error::Io { path: output.clone(), source })
             })
         }
-        Command::Demo {
-            data_dir,
-            out_dir,
-            threads,
-        } => demo::run(&data_dir, &out_dir, threads),
+        Command::Demo { data_dir, out_dir, threads } => demo::run(&data_dir, &out_dir, threads),
     }
 }
 

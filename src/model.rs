@@ -88,25 +88,13 @@ impl Meta {
         };
         let mut s = String::new();
         let mut line = |k: &str, v: String| s.push_str(&format!("{k:<28}{v}\n"));
-        line(
-            "model",
-            format!(
-                "{} v{} ({})",
-                self.format, self.format_version, self.created_by
-            ),
-        );
+        line("model", format!("{} v{} ({})", self.format, self.format_version, self.created_by));
         line("input features", self.input_dim.to_string());
-        line(
-            "dead features",
-            format!("{dead} (std <= {:e} x largest std)", p.dead_threshold),
-        );
+        line("dead features", format!("{dead} (std <= {:e} x largest std)", p.dead_threshold));
         line(
             "preprocessing",
-            format!(
-                "{:?}, log-det {:.4}, floored components {}",
-                p.method, p.log_det, p.floored_components
-            )
-            .to_lowercase(),
+            format!("{:?}, log-det {:.4}, floored components {}", p.method, p.log_det, p.floored_components)
+                .to_lowercase(),
         );
         line(
             "flow",
@@ -116,51 +104,21 @@ impl Meta {
             ),
         );
         line("seed", self.seed.to_string());
-        line(
-            "rows",
-            format!("{} train, {} validation", t.train_rows, t.validation_rows),
-        );
-        line(
-            "epochs",
-            format!(
-                "{} run, best {} (0 = untrained flow, i.e. Gaussian)",
-                t.epochs_run, t.best_epoch
-            ),
-        );
+        line("rows", format!("{} train, {} validation", t.train_rows, t.validation_rows));
+        line("epochs", format!("{} run, best {} (0 = untrained flow, i.e. Gaussian)", t.epochs_run, t.best_epoch));
         let per_dim = |v: f64| v / p.live_features as f64;
-        line(
-            "train NLL",
-            format!(
-                "{:.4} nats/vector ({:.4} nats/dim)",
-                t.best_train_nll,
-                per_dim(t.best_train_nll)
-            ),
-        );
+        line("train NLL", format!("{:.4} nats/vector ({:.4} nats/dim)", t.best_train_nll, per_dim(t.best_train_nll)));
         line(
             "validation NLL",
-            format!(
-                "{:.4} nats/vector ({:.4} nats/dim)",
-                t.best_validation_nll,
-                per_dim(t.best_validation_nll)
-            ),
+            format!("{:.4} nats/vector ({:.4} nats/dim)", t.best_validation_nll, per_dim(t.best_validation_nll)),
         );
-        line(
-            "Gaussian validation NLL",
-            format!("{:.4} nats/vector", t.gaussian_validation_nll),
-        );
+        line("Gaussian validation NLL", format!("{:.4} nats/vector", t.gaussian_validation_nll));
         line(
             "train log-likelihood",
-            format!(
-                "mean {:.4}, std {:.4}",
-                self.train_log_likelihood.mean, self.train_log_likelihood.std
-            ),
+            format!("mean {:.4}, std {:.4}", self.train_log_likelihood.mean, self.train_log_likelihood.std),
         );
         if !self.classes.is_empty() {
-            let c: Vec<String> = self
-                .classes
-                .iter()
-                .map(|c| format!("{}: {}", c.label, c.rows))
-                .collect();
+            let c: Vec<String> = self.classes.iter().map(|c| format!("{}: {}", c.label, c.rows)).collect();
             line("classes (rows)", c.join(", "));
         }
         line("training time", format!("{:.1} s", t.seconds));
@@ -225,10 +183,7 @@ impl Model {
         if cols != self.meta.input_dim {
             return Err(Error::Data(crate::data::DataError {
                 path: path.to_path_buf(),
-                msg: format!(
-                    "has {cols} features per row but the model was fitted on {}",
-                    self.meta.input_dim
-                ),
+                msg: format!("has {cols} features per row but the model was fitted on {}", self.meta.input_dim),
             }));
         }
         Ok(())
@@ -243,24 +198,14 @@ impl Model {
             let n = CHUNK_ROWS.min(x.rows - start);
             let rows = &x.data[start * x.cols..(start + n) * x.cols];
             self.pre.transform(rows, n, &mut whitened);
-            out.log_likelihood.extend(self.log_likelihood_whitened(
-                &whitened[..n * self.dim()],
-                n,
-                &mut workers,
-            ));
-            out.dead_deviation
-                .extend((0..n).map(|r| self.pre.dead_deviation(x.row(start + r))));
+            out.log_likelihood.extend(self.log_likelihood_whitened(&whitened[..n * self.dim()], n, &mut workers));
+            out.dead_deviation.extend((0..n).map(|r| self.pre.dead_deviation(x.row(start + r))));
         }
         out
     }
 
     /// log p(x) from whitened rows (`rows x dim`).
-    pub fn log_likelihood_whitened(
-        &self,
-        u: &[f32],
-        rows: usize,
-        workers: &mut Workers,
-    ) -> Vec<f64> {
+    pub fn log_likelihood_whitened(&self, u: &[f32], rows: usize, workers: &mut Workers) -> Vec<f64> {
         let (d, k) = (self.dim(), self.meta.flow_dims);
         let head = leading_columns(u, rows, d, k);
         let mut nll = vec![0.0f64; rows];
@@ -268,10 +213,7 @@ impl Model {
         let log_det = self.pre.log_det();
         (0..rows)
             .map(|r| {
-                let tail: f64 = u[r * d + k..(r + 1) * d]
-                    .iter()
-                    .map(|&v| 0.5 * (v as f64).powi(2) + HALF_LN_2PI)
-                    .sum();
+                let tail: f64 = u[r * d + k..(r + 1) * d].iter().map(|&v| 0.5 * (v as f64).powi(2) + HALF_LN_2PI).sum();
                 -nll[r] - tail + log_det
             })
             .collect()
@@ -281,9 +223,7 @@ impl Model {
     pub fn sample(&self, n: usize, seed: u64) -> Matrix {
         let (d, k) = (self.dim(), self.meta.flow_dims);
         let mut rng = rand::rngs::StdRng::seed_from_u64(seed);
-        let z: Vec<f32> = (0..n * d)
-            .map(|_| StandardNormal.sample(&mut rng))
-            .collect();
+        let z: Vec<f32> = (0..n * d).map(|_| StandardNormal.sample(&mut rng)).collect();
         let head = flow::inverse(&self.flow, &leading_columns(&z, n, d, k), n);
         let mut u = z;
         for r in 0..n {
@@ -300,39 +240,14 @@ impl Model {
         };
         let pre = &self.pre;
         let d = pre.dim();
-        put(
-            "preprocess.mean",
-            Dtype::F64,
-            vec![d],
-            le_bytes_f64(&pre.mean),
-        );
-        put(
-            "preprocess.scale",
-            Dtype::F64,
-            vec![d],
-            le_bytes_f64(&pre.scale),
-        );
-        put(
-            "preprocess.live_features",
-            Dtype::I64,
-            vec![d],
-            le_bytes_i64(&pre.live),
-        );
+        put("preprocess.mean", Dtype::F64, vec![d], le_bytes_f64(&pre.mean));
+        put("preprocess.scale", Dtype::F64, vec![d], le_bytes_f64(&pre.scale));
+        put("preprocess.live_features", Dtype::I64, vec![d], le_bytes_i64(&pre.live));
         if let Some(c) = &pre.components {
-            put(
-                "preprocess.components",
-                Dtype::F32,
-                vec![d, d],
-                le_bytes_f32(c),
-            );
+            put("preprocess.components", Dtype::F32, vec![d, d], le_bytes_f32(c));
         }
         if !pre.dead.is_empty() {
-            put(
-                "preprocess.dead_values",
-                Dtype::F64,
-                vec![pre.dead.len()],
-                le_bytes_f64(&pre.dead_value),
-            );
+            put("preprocess.dead_values", Dtype::F64, vec![pre.dead.len()], le_bytes_f64(&pre.dead_value));
         }
         for (k, slot) in self.flow.slots.iter().enumerate() {
             let p = &self.flow.params;
@@ -343,27 +258,12 @@ impl Model {
                 vec![dim],
                 le_bytes_f32(&p[slot.log_scale..slot.log_scale + dim]),
             );
-            put(
-                &format!("flow.{k}.actnorm.bias"),
-                Dtype::F32,
-                vec![dim],
-                le_bytes_f32(&p[slot.bias..slot.bias + dim]),
-            );
+            put(&format!("flow.{k}.actnorm.bias"), Dtype::F32, vec![dim], le_bytes_f32(&p[slot.bias..slot.bias + dim]));
             let perm: Vec<usize> = self.flow.perms[k].iter().map(|&v| v as usize).collect();
-            put(
-                &format!("flow.{k}.permutation"),
-                Dtype::I64,
-                vec![dim],
-                le_bytes_i64(&perm),
-            );
+            put(&format!("flow.{k}.permutation"), Dtype::I64, vec![dim], le_bytes_i64(&perm));
             for (i, lin) in slot.linears.iter().enumerate() {
                 let w = &p[lin.weight..lin.weight + lin.out * lin.inp];
-                put(
-                    &format!("flow.{k}.net.{i}.weight"),
-                    Dtype::F32,
-                    vec![lin.out, lin.inp],
-                    le_bytes_f32(w),
-                );
+                put(&format!("flow.{k}.net.{i}.weight"), Dtype::F32, vec![lin.out, lin.inp], le_bytes_f32(w));
                 put(
                     &format!("flow.{k}.net.{i}.bias"),
                     Dtype::F32,
@@ -382,20 +282,15 @@ impl Model {
                 Ok((name.clone(), view))
             })
             .collect::<Result<Vec<_>>>()?;
-        let bytes =
-            safetensors::serialize(views, Some(metadata)).map_err(|e| Error::model(path, e))?;
+        let bytes = safetensors::serialize(views, Some(metadata)).map_err(|e| Error::model(path, e))?;
         crate::output::write_atomic(path, |w| {
-            w.write_all(&bytes).map_err(|source| Error::Io {
-                path: path.into(),
-                source,
-            })
+            w.write_all(&bytes).map_err(|source| Error::Io { path: path.into(), source })
         })
     }
 
     /// Read a model file written by [`Model::save`].
     pub fn load(path: &Path) -> Result<Model> {
-        let bytes = std::fs::read(path)
-            .map_err(|e| Error::model(path, format!("cannot read model: {e}")))?;
+        let bytes = std::fs::read(path).map_err(|e| Error::model(path, format!("cannot read model: {e}")))?;
         let st = SafeTensors::deserialize(&bytes)
             .map_err(|e| Error::model(path, format!("not a safetensors file ({e})")))?;
         let (_, header) = SafeTensors::read_metadata(&bytes).map_err(|e| Error::model(path, e))?;
@@ -404,8 +299,8 @@ impl Model {
             .as_ref()
             .and_then(|m| m.get(META_KEY))
             .ok_or_else(|| Error::model(path, "is not a tidemark model (no tidemark metadata)"))?;
-        let meta: Meta = serde_json::from_str(json)
-            .map_err(|e| Error::model(path, format!("bad model metadata: {e}")))?;
+        let meta: Meta =
+            serde_json::from_str(json).map_err(|e| Error::model(path, format!("bad model metadata: {e}")))?;
         if meta.format_version != FORMAT_VERSION {
             return Err(Error::model(
                 path,
@@ -416,12 +311,13 @@ impl Model {
             ));
         }
         let get = |name: &str, dtype: Dtype, len: usize| -> Result<Vec<u8>> {
-            let t = st
-                .tensor(name)
-                .map_err(|_| Error::model(path, format!("missing tensor '{name}'")))?;
+            let t = st.tensor(name).map_err(|_| Error::model(path, format!("missing tensor '{name}'")))?;
             let n: usize = t.shape().iter().product();
             if t.dtype() != dtype || n != len {
-                return Err(Error::model(path, format!("tensor '{name}' has dtype {:?} and {n} values, expected {dtype:?} and {len}", t.dtype())));
+                return Err(Error::model(
+                    path,
+                    format!("tensor '{name}' has dtype {:?} and {n} values, expected {dtype:?} and {len}", t.dtype()),
+                ));
             }
             Ok(t.data().to_vec())
         };
@@ -437,10 +333,7 @@ impl Model {
         }
         let dead: Vec<usize> = (0..meta.input_dim).filter(|&j| !is_live[j]).collect();
         if dead != pm.dead_features {
-            return Err(Error::model(
-                path,
-                "dead feature list does not match the live features",
-            ));
+            return Err(Error::model(path, "dead feature list does not match the live features"));
         }
         let pre = Preprocessor {
             method: pm.method,
@@ -461,10 +354,7 @@ impl Model {
             floored: pm.floored_components,
         };
         if meta.flow.dim != meta.flow_dims || meta.flow_dims > d || meta.flow.depth == 0 {
-            return Err(Error::model(
-                path,
-                "flow dimensions do not match the preprocessing",
-            ));
+            return Err(Error::model(path, "flow dimensions do not match the preprocessing"));
         }
         let mut flow = Flow::new(meta.flow.clone(), 0);
         let dim = flow.spec.dim;
@@ -478,22 +368,14 @@ impl Model {
             fill(format!("flow.{k}.actnorm.log_scale"), slot.log_scale, dim)?;
             fill(format!("flow.{k}.actnorm.bias"), slot.bias, dim)?;
             for (i, lin) in slot.linears.iter().enumerate() {
-                fill(
-                    format!("flow.{k}.net.{i}.weight"),
-                    lin.weight,
-                    lin.out * lin.inp,
-                )?;
+                fill(format!("flow.{k}.net.{i}.weight"), lin.weight, lin.out * lin.inp)?;
                 fill(format!("flow.{k}.net.{i}.bias"), lin.bias, lin.out)?;
             }
-            let perm: Vec<usize> =
-                from_i64(&get(&format!("flow.{k}.permutation"), Dtype::I64, dim)?);
+            let perm: Vec<usize> = from_i64(&get(&format!("flow.{k}.permutation"), Dtype::I64, dim)?);
             let mut seen = vec![false; dim];
             for &p in &perm {
                 if p >= dim || std::mem::replace(&mut seen[p], true) {
-                    return Err(Error::model(
-                        path,
-                        format!("flow.{k}.permutation is not a permutation"),
-                    ));
+                    return Err(Error::model(path, format!("flow.{k}.permutation is not a permutation")));
                 }
             }
             flow.perms[k] = perm.iter().map(|&p| p as u32).collect();
@@ -521,17 +403,11 @@ fn le_bytes_i64(v: &[usize]) -> Vec<u8> {
     v.iter().flat_map(|&x| (x as i64).to_le_bytes()).collect()
 }
 fn from_f32(b: &[u8]) -> Vec<f32> {
-    b.chunks_exact(4)
-        .map(|c| f32::from_le_bytes(c.try_into().expect("4 bytes")))
-        .collect()
+    b.chunks_exact(4).map(|c| f32::from_le_bytes(c.try_into().expect("4 bytes"))).collect()
 }
 fn from_f64(b: &[u8]) -> Vec<f64> {
-    b.chunks_exact(8)
-        .map(|c| f64::from_le_bytes(c.try_into().expect("8 bytes")))
-        .collect()
+    b.chunks_exact(8).map(|c| f64::from_le_bytes(c.try_into().expect("8 bytes"))).collect()
 }
 fn from_i64(b: &[u8]) -> Vec<usize> {
-    b.chunks_exact(8)
-        .map(|c| i64::from_le_bytes(c.try_into().expect("8 bytes")).max(0) as usize)
-        .collect()
+    b.chunks_exact(8).map(|c| i64::from_le_bytes(c.try_into().expect("8 bytes")).max(0) as usize).collect()
 }

@@ -21,16 +21,10 @@ where
         let stdout = std::io::stdout();
         let mut w = BufWriter::new(stdout.lock());
         body(&mut w)?;
-        return w.flush().map_err(|source| Error::Io {
-            path: path.into(),
-            source,
-        });
+        return w.flush().map_err(|source| Error::Io { path: path.into(), source });
     }
     let tmp = temp_path(path);
-    let io = |source| Error::Io {
-        path: path.to_path_buf(),
-        source,
-    };
+    let io = |source| Error::Io { path: path.to_path_buf(), source };
     let result = (|| {
         let file = std::fs::File::create(&tmp).map_err(io)?;
         let mut w = BufWriter::new(file);
@@ -46,9 +40,6 @@ where
 }
 
 fn temp_path(path: &Path) -> PathBuf {
-    let name = path
-        .file_name()
-        .map(|n| n.to_string_lossy().into_owned())
-        .unwrap_or_default();
+    let name = path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
     path.with_file_name(format!(".{name}.{}.tmp", std::process::id()))
 }

@@ -7,9 +7,7 @@ use crate::data::Matrix;
 use crate::linalg::{matmul, View};
 
 /// How live features are mapped to the flow's unit-scale inputs.
-#[derive(
-    Clone, Copy, Debug, PartialEq, Eq, serde::Serialize, serde::Deserialize, clap::ValueEnum,
-)]
+#[derive(Clone, Copy, Debug, PartialEq, Eq, serde::Serialize, serde::Deserialize, clap::ValueEnum)]
 #[serde(rename_all = "kebab-case")]
 pub enum Method {
     /// Rotate onto principal components (by decreasing variance), then
@@ -67,8 +65,7 @@ impl Preprocessor {
         }
         let std: Vec<f64> = var.iter().map(|s| (s / n as f64).sqrt()).collect();
         let top = std.iter().cloned().fold(0.0, f64::max);
-        let (live, dead): (Vec<usize>, Vec<usize>) =
-            (0..cols).partition(|&j| std[j] > dead_threshold * top);
+        let (live, dead): (Vec<usize>, Vec<usize>) = (0..cols).partition(|&j| std[j] > dead_threshold * top);
         if live.is_empty() {
             return Err("no feature varies across the training rows".into());
         }
@@ -113,13 +110,7 @@ impl Preprocessor {
                 }
             }
             let c = &centered[..n * d];
-            matmul(
-                &mut cov,
-                d,
-                true,
-                View::transposed(c, n, d),
-                View::rows(c, n, d, d),
-            );
+            matmul(&mut cov, d, true, View::transposed(c, n, d), View::rows(c, n, d, d));
         }
         cov.iter_mut().for_each(|v| *v /= x.rows as f64);
         cov
@@ -137,10 +128,7 @@ impl Preprocessor {
         for (i, &k) in order.iter().enumerate() {
             let v = eig.eigenvectors.column(k);
             // Sign convention: the entry of largest magnitude is positive.
-            let lead = v
-                .iter()
-                .cloned()
-                .fold(0.0f64, |m, e| if e.abs() > m.abs() { e } else { m });
+            let lead = v.iter().cloned().fold(0.0f64, |m, e| if e.abs() > m.abs() { e } else { m });
             let sign = if lead < 0.0 { -1.0 } else { 1.0 };
             for j in 0..d {
                 components[i * d + j] = (sign * v[j]) as f32;
@@ -173,13 +161,7 @@ impl Preprocessor {
             }
         }
         if let Some(comp) = &self.components {
-            matmul(
-                &mut out[..rows * d],
-                d,
-                false,
-                View::rows(&centered, rows, d, d),
-                View::transposed(comp, d, d),
-            );
+            matmul(&mut out[..rows * d], d, false, View::rows(&centered, rows, d, d), View::transposed(comp, d, d));
         } else {
             out[..rows * d].copy_from_slice(&centered);
         }
@@ -204,13 +186,7 @@ impl Preprocessor {
         let centered = match &self.components {
             Some(comp) => {
                 let mut c = vec![0.0f32; rows * d];
-                matmul(
-                    &mut c,
-                    d,
-                    false,
-                    View::rows(&scaled, rows, d, d),
-                    View::rows(comp, d, d, d),
-                );
+                matmul(&mut c, d, false, View::rows(&scaled, rows, d, d), View::rows(comp, d, d, d));
                 c
             }
             None => scaled,
@@ -230,11 +206,7 @@ impl Preprocessor {
     /// Largest absolute deviation of a row's dead features from their
     /// training values (0 when no feature is dead).
     pub fn dead_deviation(&self, row: &[f32]) -> f64 {
-        self.dead
-            .iter()
-            .zip(&self.dead_value)
-            .map(|(&j, &v)| (row[j] as f64 - v).abs())
-            .fold(0.0, f64::max)
+        self.dead.iter().zip(&self.dead_value).map(|(&j, &v)| (row[j] as f64 - v).abs()).fold(0.0, f64::max)
     }
 }
 
@@ -246,11 +218,7 @@ mod tests {
         // Deterministic, correlated, non-centred 3-column data.
         let data = (0..n)
             .flat_map(|i| {
-                let (a, b, c) = (
-                    (i as f32 * 0.7).sin(),
-                    (i as f32 * 1.3).cos(),
-                    (i as f32 * 2.9).sin(),
-                );
+                let (a, b, c) = ((i as f32 * 0.7).sin(), (i as f32 * 1.3).cos(), (i as f32 * 2.9).sin());
                 [5.0 + a, 2.0 * a + 0.3 * b, -b + 0.1 * a + 0.5 * c]
             })
             .collect();
@@ -264,12 +232,8 @@ mod tests {
             let pre = Preprocessor::fit(&x, method, DEFAULT_DEAD_THRESHOLD).unwrap();
             let mut u = vec![0.0; 500 * 3];
             pre.transform(&x.data, 500, &mut u);
-            let cov = |i: usize, j: usize| {
-                (0..500)
-                    .map(|r| u[r * 3 + i] as f64 * u[r * 3 + j] as f64)
-                    .sum::<f64>()
-                    / 500.0
-            };
+            let cov =
+                |i: usize, j: usize| (0..500).map(|r| u[r * 3 + i] as f64 * u[r * 3 + j] as f64).sum::<f64>() / 500.0;
             for i in 0..3 {
                 assert!((cov(i, i) - 1.0).abs() < 1e-4);
                 if method == Method::Pca {

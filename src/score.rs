@@ -52,16 +52,10 @@ pub fn score(model: &Model, x: &Matrix, threads: usize) -> Scores {
 /// Write scores as CSV (header row, full f64 precision) to `path` (`-` = stdout).
 pub fn write_csv(path: &Path, scores: &Scores) -> Result<()> {
     crate::output::write_atomic(path, |w| {
-        let io = |source| Error::Io {
-            path: path.to_path_buf(),
-            source,
-        };
+        let io = |source| Error::Io { path: path.to_path_buf(), source };
         writeln!(w, "{}", COLUMNS.join(",")).map_err(io)?;
         for r in 0..scores.len() {
-            let row: Vec<String> = COLUMNS
-                .iter()
-                .map(|c| scores.column(c)[r].to_string())
-                .collect();
+            let row: Vec<String> = COLUMNS.iter().map(|c| scores.column(c)[r].to_string()).collect();
             writeln!(w, "{}", row.join(",")).map_err(io)?;
         }
         Ok(())

@@ -7,9 +7,7 @@
 use crate::data::Matrix;
 use crate::error::{Error, Result};
 use crate::flow::{Flow, FlowSpec, Workers};
-use crate::model::{
-    ClassCount, Meta, Model, PreprocessingMeta, Spread, TrainingSummary, FORMAT_VERSION,
-};
+use crate::model::{ClassCount, Meta, Model, PreprocessingMeta, Spread, TrainingSummary, FORMAT_VERSION};
 use crate::preprocess::{Method, Preprocessor, DEFAULT_DEAD_THRESHOLD};
 use indicatif::{ProgressBar, ProgressStyle};
 use rand::rngs::StdRng;
@@ -79,9 +77,7 @@ impl FitOptions {
 
 /// Threads used when none are asked for: every core.
 pub fn default_threads() -> usize {
-    std::thread::available_parallelism()
-        .map(|n| n.get())
-        .unwrap_or(1)
+    std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1)
 }
 
 /// Every training setting, resolved; stored in the model's metadata.
@@ -118,38 +114,21 @@ impl Settings {
         let method = o.method.unwrap_or(Method::Pca);
         let per_dim = n as f64 / d as f64;
         let few = per_dim < FEW_ROWS_PER_DIM;
-        let default_dims = if few && method == Method::Pca {
-            d.div_ceil(3).max(2.min(d))
-        } else {
-            d
-        };
+        let default_dims = if few && method == Method::Pca { d.div_ceil(3).max(2.min(d)) } else { d };
         let flow_dims = o.flow_dims.unwrap_or(default_dims);
         if flow_dims == 0 || flow_dims > d {
-            return Err(Error::Invalid(format!(
-                "--flow-dims must be between 1 and {d} (the live features)"
-            )));
+            return Err(Error::Invalid(format!("--flow-dims must be between 1 and {d} (the live features)")));
         }
-        let batch_size = o
-            .batch_size
-            .unwrap_or(if n >= 20_000 { 256 } else { 128 })
-            .clamp(1, n);
+        let batch_size = o.batch_size.unwrap_or(if n >= 20_000 { 256 } else { 128 }).clamp(1, n);
         let steps_per_epoch = n.div_ceil(batch_size);
         let s = Settings {
             method,
-            layers: if flow_dims < 2 {
-                0
-            } else {
-                o.layers.unwrap_or(6)
-            },
-            hidden: o
-                .hidden
-                .unwrap_or((2 * flow_dims).clamp(64, 512).next_multiple_of(32)),
+            layers: if flow_dims < 2 { 0 } else { o.layers.unwrap_or(6) },
+            hidden: o.hidden.unwrap_or((2 * flow_dims).clamp(64, 512).next_multiple_of(32)),
             depth: o.depth.unwrap_or(2),
             clamp: o.clamp.unwrap_or(3.0),
             flow_dims,
-            epochs: o
-                .epochs
-                .unwrap_or((20_000usize.div_ceil(steps_per_epoch)).clamp(20, 200)),
+            epochs: o.epochs.unwrap_or((20_000usize.div_ceil(steps_per_epoch)).clamp(20, 200)),
             batch_size,
             lr: o.lr.unwrap_or(1e-3),
             warmup_fraction: 0.02,
@@ -175,14 +154,10 @@ impl Settings {
             threads: o.threads.unwrap_or_else(default_threads).max(1),
         };
         if s.depth == 0 || s.hidden == 0 || s.epochs == 0 {
-            return Err(Error::Invalid(
-                "--depth, --hidden and --epochs must be at least 1".into(),
-            ));
+            return Err(Error::Invalid("--depth, --hidden and --epochs must be at least 1".into()));
         }
         if !(0.0..1.0).contains(&s.dropout) || s.noise < 0.0 || s.clamp <= 0.0 || s.lr <= 0.0 {
-            return Err(Error::Invalid(
-                "--dropout must be in [0, 1); --noise >= 0; --clamp and --lr > 0".into(),
-            ));
+            return Err(Error::Invalid("--dropout must be in [0, 1); --noise >= 0; --clamp and --lr > 0".into()));
         }
         Ok(s)
     }
@@ -201,11 +176,7 @@ impl Adam {
     const EPS: f32 = 1e-8;
 
     pub fn new(n: usize) -> Adam {
-        Adam {
-            m: vec![0.0; n],
-            v: vec![0.0; n],
-            t: 0,
-        }
+        Adam { m: vec![0.0; n], v: vec![0.0; n], t: 0 }
     }
 
     pub fn step(&mut self, params: &mut [f32], grad: &[f32], lr: f64) {
@@ -214,12 +185,7 @@ impl Adam {
         let c2 = 1.0 - (Self::BETA2 as f64).powi(self.t as i32);
         let step = (lr * c2.sqrt() / c1) as f32;
         let eps = Self::EPS * c2.sqrt() as f32;
-        for (((p, &g), m), v) in params
-            .iter_mut()
-            .zip(grad)
-            .zip(&mut self.m)
-            .zip(&mut self.v)
-        {
+        for (((p, &g), m), v) in params.iter_mut().zip(grad).zip(&mut self.m).zip(&mut self.v) {
             *m = Self::BETA1 * *m + (1.0 - Self::BETA1) * g;
             *v = Self::BETA2 * *v + (1.0 - Self::BETA2) * g * g;
             *p -= step * *m / (v.sqrt() + eps);
@@ -241,11 +207,7 @@ pub fn learning_rate(base: f64, step: usize, total: usize, warmup_fraction: f64)
 fn split_rows(n: usize, val_fraction: f64, seed: u64) -> (Vec<usize>, Vec<usize>) {
     let mut idx: Vec<usize> = (0..n).collect();
     idx.shuffle(&mut StdRng::seed_from_u64(seed ^ 0x5EED_5917));
-    let n_val = if val_fraction > 0.0 {
-        ((n as f64 * val_fraction).round() as usize).clamp(1, n - 1)
-    } else {
-        0
-    };
+    let n_val = if val_fraction > 0.0 { ((n as f64 * val_fraction).round() as usize).clamp(1, n - 1) } else { 0 };
     let val = idx.split_off(n - n_val);
     (idx, val)
 }
@@ -257,10 +219,7 @@ pub const MIN_ROWS: usize = 10;
 pub fn fit(x: &Matrix, labels: Option<&[i64]>, opts: &FitOptions) -> Result<Model> {
     let started = Instant::now();
     if x.rows < MIN_ROWS {
-        return Err(Error::Invalid(format!(
-            "need at least {MIN_ROWS} rows to fit, got {}",
-            x.rows
-        )));
+        return Err(Error::Invalid(format!("need at least {MIN_ROWS} rows to fit, got {}", x.rows)));
     }
     let val_fraction = opts.val_fraction.unwrap_or(0.1);
     if !(0.0..0.9).contains(&val_fraction) {
@@ -275,10 +234,7 @@ pub fn fit(x: &Matrix, labels: Option<&[i64]>, opts: &FitOptions) -> Result<Mode
     let settings = Settings::resolve(opts, train_idx.len(), d)?;
     let k = settings.flow_dims;
     if !opts.quiet {
-        eprintln!(
-            "settings: {}",
-            serde_json::to_string(&settings).map_err(|e| Error::Invalid(e.to_string()))?
-        );
+        eprintln!("settings: {}", serde_json::to_string(&settings).map_err(|e| Error::Invalid(e.to_string()))?);
     }
 
     let whiten = |m: &Matrix| {
@@ -289,11 +245,8 @@ pub fn fit(x: &Matrix, labels: Option<&[i64]>, opts: &FitOptions) -> Result<Mode
     let u_train = whiten(&train_x);
     drop(train_x);
     let u_val = whiten(&x.select_rows(&val_idx));
-    let head = |u: &[f32], rows: usize| -> Vec<f32> {
-        (0..rows)
-            .flat_map(|r| u[r * d..r * d + k].iter().copied())
-            .collect()
-    };
+    let head =
+        |u: &[f32], rows: usize| -> Vec<f32> { (0..rows).flat_map(|r| u[r * d..r * d + k].iter().copied()).collect() };
     let (n_train, n_val) = (train_idx.len(), val_idx.len());
     let h_train = head(&u_train, n_train);
     let h_val = head(&u_val, n_val);
@@ -313,11 +266,7 @@ pub fn fit(x: &Matrix, labels: Option<&[i64]>, opts: &FitOptions) -> Result<Mode
         workers.nll(flow, h, rows, &mut out);
         out.iter().sum::<f64>() / rows.max(1) as f64
     };
-    let (eval_h, eval_n) = if n_val > 0 {
-        (&h_val, n_val)
-    } else {
-        (&h_train, n_train)
-    };
+    let (eval_h, eval_n) = if n_val > 0 { (&h_val, n_val) } else { (&h_train, n_train) };
     let gaussian_nll = mean_nll(&flow, &mut workers, eval_h, eval_n);
     let mut best = (gaussian_nll, flow.params.clone(), 0usize);
     flow.init_actnorm(&h_train, n_train.min(4096));
@@ -346,16 +295,11 @@ pub fn fit(x: &Matrix, labels: Option<&[i64]>, opts: &FitOptions) -> Result<Mode
             let noise = settings.noise as f32;
             if noise > 0.0 {
                 for v in &mut batch[..rows * k] {
-                    *v += noise
-                        * <StandardNormal as Distribution<f32>>::sample(&StandardNormal, &mut rng);
+                    *v += noise * <StandardNormal as Distribution<f32>>::sample(&StandardNormal, &mut rng);
                 }
             }
-            let dropout = (settings.dropout > 0.0).then(|| {
-                (
-                    settings.dropout as f32,
-                    settings.seed ^ (step as u64).wrapping_mul(0x9E37_79B9),
-                )
-            });
+            let dropout = (settings.dropout > 0.0)
+                .then(|| (settings.dropout as f32, settings.seed ^ (step as u64).wrapping_mul(0x9E37_79B9)));
             let nll = workers.nll_and_grad(&flow, &batch, rows, dropout, &mut grad);
             if !nll.is_finite() || grad.iter().any(|g| !g.is_finite()) {
                 return Err(Error::Invalid(format!(
@@ -363,11 +307,7 @@ pub fn fit(x: &Matrix, labels: Option<&[i64]>, opts: &FitOptions) -> Result<Mode
                 )));
             }
             clip_norm(&mut grad, settings.grad_clip);
-            adam.step(
-                &mut flow.params,
-                &grad,
-                learning_rate(settings.lr, step, total_steps, settings.warmup_fraction),
-            );
+            adam.step(&mut flow.params, &grad, learning_rate(settings.lr, step, total_steps, settings.warmup_fraction));
             train_sum += nll * rows as f64;
             step += 1;
         }
@@ -381,12 +321,7 @@ pub fn fit(x: &Matrix, labels: Option<&[i64]>, opts: &FitOptions) -> Result<Mode
         } else {
             since_best += 1;
         }
-        progress.epoch(
-            epoch,
-            train_nll / d as f64,
-            (val_nll + offset) / d as f64,
-            improved,
-        );
+        progress.epoch(epoch, train_nll / d as f64, (val_nll + offset) / d as f64, improved);
         if since_best >= settings.patience {
             break;
         }
@@ -436,10 +371,7 @@ pub fn fit(x: &Matrix, labels: Option<&[i64]>, opts: &FitOptions) -> Result<Mode
             gaussian_validation_nll: gaussian_nll + offset,
             seconds: started.elapsed().as_secs_f64(),
         },
-        train_log_likelihood: Spread {
-            mean: ll_mean,
-            std: ll_std,
-        },
+        train_log_likelihood: Spread { mean: ll_mean, std: ll_std },
         classes: class_counts(labels.unwrap_or(&[])),
     };
     Ok(Model { meta, pre, flow })
@@ -450,19 +382,12 @@ fn class_counts(labels: &[i64]) -> Vec<ClassCount> {
     for &l in labels {
         *counts.entry(l).or_insert(0usize) += 1;
     }
-    counts
-        .into_iter()
-        .map(|(label, rows)| ClassCount { label, rows })
-        .collect()
+    counts.into_iter().map(|(label, rows)| ClassCount { label, rows }).collect()
 }
 
 /// Scale `g` down to global norm `max` when it is longer.
 fn clip_norm(g: &mut [f32], max: f64) {
-    let norm = g
-        .iter()
-        .map(|&v| (v as f64) * (v as f64))
-        .sum::<f64>()
-        .sqrt();
+    let norm = g.iter().map(|&v| (v as f64) * (v as f64)).sum::<f64>().sqrt();
     if norm > max {
         let s = (max / norm) as f32;
         g.iter_mut().for_each(|v| *v *= s);
@@ -481,18 +406,12 @@ impl Progress {
         let bar = (!quiet && std::io::stderr().is_terminal()).then(|| {
             let bar = ProgressBar::new(epochs as u64);
             bar.set_style(
-                ProgressStyle::with_template(
-                    "{bar:30} epoch {pos}/{len} {msg} [{elapsed_precise} < {eta_precise}]",
-                )
-                .expect("valid template"),
+                ProgressStyle::with_template("{bar:30} epoch {pos}/{len} {msg} [{elapsed_precise} < {eta_precise}]")
+                    .expect("valid template"),
             );
             bar
         });
-        Progress {
-            bar,
-            quiet,
-            started: Instant::now(),
-        }
+        Progress { bar, quiet, started: Instant::now() }
     }
 
     fn epoch(&self, epoch: usize, train: f64, val: f64, improved: bool) {
@@ -503,10 +422,7 @@ impl Progress {
                 bar.set_position(epoch as u64);
                 bar.set_message(msg);
             }
-            None if !self.quiet => eprintln!(
-                "epoch {epoch:>4}  {msg}  ({:.1}s)",
-                self.started.elapsed().as_secs_f64()
-            ),
+            None if !self.quiet => eprintln!("epoch {epoch:>4}  {msg}  ({:.1}s)", self.started.elapsed().as_secs_f64()),
             None => {}
         }
     }

@@ -10,9 +10,7 @@ fn tidemark() -> Command {
 }
 
 fn fixture(name: &str) -> PathBuf {
-    PathBuf::from(env!("CARGO_MANIFEST_DIR"))
-        .join("tests/fixtures")
-        .join(name)
+    PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures").join(name)
 }
 
 fn save(path: &Path, m: &Matrix) {
@@ -24,11 +22,7 @@ fn save(path: &Path, m: &Matrix) {
 fn data(n: usize, shift: f32) -> Matrix {
     let mut v = Vec::with_capacity(n * 4);
     for i in 0..n {
-        let (a, b, c) = (
-            (i as f32 * 0.61).sin(),
-            (i as f32 * 1.37).cos(),
-            (i as f32 * 0.23).sin(),
-        );
+        let (a, b, c) = ((i as f32 * 0.61).sin(), (i as f32 * 1.37).cos(), (i as f32 * 0.23).sin());
         v.extend([a + shift, 0.5 * a + b + shift, a * b + 0.3 * c, c - 0.2 * b]);
     }
     Matrix::new(n, 4, v)
@@ -38,9 +32,7 @@ fn column(csv: &str, name: &str) -> Vec<f64> {
     let mut lines = csv.lines();
     let header: Vec<&str> = lines.next().unwrap().split(',').collect();
     let at = header.iter().position(|h| *h == name).unwrap();
-    lines
-        .map(|l| l.split(',').nth(at).unwrap().parse().unwrap())
-        .collect()
+    lines.map(|l| l.split(',').nth(at).unwrap().parse().unwrap()).collect()
 }
 
 fn mean(v: &[f64]) -> f64 {
@@ -55,83 +47,36 @@ fn fit_score_inspect_sample_end_to_end() {
     save(&shifted, &data(200, 1.5));
     let model = dir.path().join("model.safetensors");
     tidemark()
-        .args([
-            "fit",
-            train.to_str().unwrap(),
-            "-o",
-            model.to_str().unwrap(),
-            "--epochs",
-            "8",
-            "--seed",
-            "4",
-        ])
+        .args(["fit", train.to_str().unwrap(), "-o", model.to_str().unwrap(), "--epochs", "8", "--seed", "4"])
         .assert()
         .success();
 
     let scores = dir.path().join("scores.csv");
     tidemark()
-        .args([
-            "score",
-            model.to_str().unwrap(),
-            train.to_str().unwrap(),
-            "-o",
-            scores.to_str().unwrap(),
-        ])
+        .args(["score", model.to_str().unwrap(), train.to_str().unwrap(), "-o", scores.to_str().unwrap()])
         .assert()
         .success();
     let csv = std::fs::read_to_string(&scores).unwrap();
-    assert_eq!(
-        csv.lines().next().unwrap(),
-        "log_likelihood,bits_per_dim,dead_feature_deviation"
-    );
+    assert_eq!(csv.lines().next().unwrap(), "log_likelihood,bits_per_dim,dead_feature_deviation");
     let ll_train = column(&csv, "log_likelihood");
     assert_eq!(ll_train.len(), 800);
     // bits per dimension = -log_likelihood / (D ln 2)
     for (ll, bpd) in ll_train.iter().zip(column(&csv, "bits_per_dim")) {
         assert!((bpd + ll / (4.0 * std::f64::consts::LN_2)).abs() < 1e-9);
     }
-    let out = tidemark()
-        .args([
-            "score",
-            model.to_str().unwrap(),
-            shifted.to_str().unwrap(),
-            "-o",
-            "-",
-        ])
-        .assert()
-        .success();
-    let ll_shifted = column(
-        &String::from_utf8(out.get_output().stdout.clone()).unwrap(),
-        "log_likelihood",
-    );
+    let out =
+        tidemark().args(["score", model.to_str().unwrap(), shifted.to_str().unwrap(), "-o", "-"]).assert().success();
+    let ll_shifted = column(&String::from_utf8(out.get_output().stdout.clone()).unwrap(), "log_likelihood");
     assert_eq!(ll_shifted.len(), 200);
-    assert!(
-        mean(&ll_train) > mean(&ll_shifted) + 1.0,
-        "{} vs {}",
-        mean(&ll_train),
-        mean(&ll_shifted)
-    );
+    assert!(mean(&ll_train) > mean(&ll_shifted) + 1.0, "{} vs {}", mean(&ll_train), mean(&ll_shifted));
 
-    let out = tidemark()
-        .args(["inspect", model.to_str().unwrap()])
-        .assert()
-        .success();
+    let out = tidemark().args(["inspect", model.to_str().unwrap()]).assert().success();
     let text = String::from_utf8(out.get_output().stdout.clone()).unwrap();
-    assert!(
-        text.contains("validation NLL") && text.contains("input features              4"),
-        "{text}"
-    );
+    assert!(text.contains("validation NLL") && text.contains("input features              4"), "{text}");
 
     let samples = dir.path().join("samples.npy");
     tidemark()
-        .args([
-            "sample",
-            model.to_str().unwrap(),
-            "-n",
-            "50",
-            "-o",
-            samples.to_str().unwrap(),
-        ])
+        .args(["sample", model.to_str().unwrap(), "-n", "50", "-o", samples.to_str().unwrap()])
         .assert()
         .success();
     let s = tidemark::data::read_matrix(&samples, None).unwrap();
@@ -172,10 +117,7 @@ fn same_seed_same_threads_gives_an_identical_model_file() {
 fn refuses(args: &[&str], message: &str, output: &Path) {
     let out = tidemark().args(args).assert().failure();
     let stderr = String::from_utf8(out.get_output().stderr.clone()).unwrap();
-    assert!(
-        stderr.contains(message),
-        "expected '{message}' in: {stderr}"
-    );
+    assert!(stderr.contains(message), "expected '{message}' in: {stderr}");
     assert_eq!(stderr.trim_end().lines().count(), 1, "one line: {stderr}");
     assert!(!output.exists(), "{} was left behind", output.display());
     let dir = output.parent().unwrap();
@@ -195,41 +137,20 @@ fn bad_inputs_fail_with_one_clear_line_and_no_output() {
     let f = |name: &str| fixture(name).to_str().unwrap().to_string();
     let cases: Vec<(Vec<String>, &str)> = vec![
         (vec![f("with_nan.npy")], "row 2, column 1 (0-based) is NaN"),
-        (
-            vec![f("with_inf.npy")],
-            "row 3, column 0 (0-based) is infinite",
-        ),
+        (vec![f("with_inf.npy")], "row 3, column 0 (0-based) is infinite"),
         (vec![f("zero_rows.npy")], "zero_rows.npy: has zero rows"),
-        (
-            vec![f("one_d.npy")],
-            "expected a 2-D array (rows x features), found 1-D shape [5]",
-        ),
+        (vec![f("one_d.npy")], "expected a 2-D array (rows x features), found 1-D shape [5]"),
         (vec![f("three_d.npy")], "found 3-D shape [2, 3, 4]"),
         (vec![f("complex.npy")], "unsupported dtype '<c8'"),
-        (
-            vec![f("truncated.npy")],
-            "truncated: shape [4, 3] needs 48 data bytes, file has 38",
-        ),
-        (
-            vec![f("bad_cell.csv")],
-            "bad_cell.csv: line 3, column 2 ('f1'): 'abc' is not a number",
-        ),
-        (
-            vec![f("several.safetensors")],
-            "holds several tensors; choose one with --tensor: embeddings, other",
-        ),
+        (vec![f("truncated.npy")], "truncated: shape [4, 3] needs 48 data bytes, file has 38"),
+        (vec![f("bad_cell.csv")], "bad_cell.csv: line 3, column 2 ('f1'): 'abc' is not a number"),
+        (vec![f("several.safetensors")], "holds several tensors; choose one with --tensor: embeddings, other"),
         (
             vec![f("several.safetensors"), "--tensor".into(), "nope".into()],
             "has no tensor 'nope' (it has: embeddings, other)",
         ),
-        (
-            vec![f("one_d.safetensors")],
-            "tensor 'x' is 1-D [12]; expected 2-D",
-        ),
-        (
-            vec![f("small_f32.npy")],
-            "need at least 10 rows to fit, got 4",
-        ),
+        (vec![f("one_d.safetensors")], "tensor 'x' is 1-D [12]; expected 2-D"),
+        (vec![f("small_f32.npy")], "need at least 10 rows to fit, got 4"),
         (
             vec![f("whitening.npy"), "--labels".into(), f("labels_i32.npy")],
             "labels_i32.npy: has 4 labels but the data has 300 rows",
@@ -253,37 +174,17 @@ fn scoring_data_of_the_wrong_width_is_refused() {
     save(&train, &data(300, 0.0));
     let model = dir.path().join("model.safetensors");
     tidemark()
-        .args([
-            "fit",
-            train.to_str().unwrap(),
-            "-o",
-            model.to_str().unwrap(),
-            "--epochs",
-            "1",
-            "-q",
-        ])
+        .args(["fit", train.to_str().unwrap(), "-o", model.to_str().unwrap(), "--epochs", "1", "-q"])
         .assert()
         .success();
     let scores = dir.path().join("scores.csv");
     refuses(
-        &[
-            "score",
-            model.to_str().unwrap(),
-            fixture("small_f32.npy").to_str().unwrap(),
-            "-o",
-            scores.to_str().unwrap(),
-        ],
+        &["score", model.to_str().unwrap(), fixture("small_f32.npy").to_str().unwrap(), "-o", scores.to_str().unwrap()],
         "small_f32.npy: has 3 features per row but the model was fitted on 4",
         &scores,
     );
     refuses(
-        &[
-            "score",
-            train.to_str().unwrap(),
-            train.to_str().unwrap(),
-            "-o",
-            scores.to_str().unwrap(),
-        ],
+        &["score", train.to_str().unwrap(), train.to_str().unwrap(), "-o", scores.to_str().unwrap()],
         "train.npy: not a safetensors file",
         &scores,
     );
@@ -296,45 +197,23 @@ fn config_files_set_options_flags_override_and_unknown_keys_are_named() {
     save(&train, &data(300, 0.0));
     let model = dir.path().join("model.safetensors");
     let config = dir.path().join("c.json");
-    std::fs::write(
-        &config,
-        r#"{"layers": 3, "hidden": 40, "epochs": 2, "seed": 9}"#,
-    )
-    .unwrap();
-    let (t, m, c) = (
-        train.to_str().unwrap(),
-        model.to_str().unwrap(),
-        config.to_str().unwrap(),
-    );
-    tidemark()
-        .args(["fit", t, "-o", m, "--config", c, "--hidden", "48", "-q"])
-        .assert()
-        .success();
+    std::fs::write(&config, r#"{"layers": 3, "hidden": 40, "epochs": 2, "seed": 9}"#).unwrap();
+    let (t, m, c) = (train.to_str().unwrap(), model.to_str().unwrap(), config.to_str().unwrap());
+    tidemark().args(["fit", t, "-o", m, "--config", c, "--hidden", "48", "-q"]).assert().success();
     let out = tidemark().args(["inspect", m, "--json"]).assert().success();
     let meta: serde_json::Value = serde_json::from_slice(&out.get_output().stdout).unwrap();
     let s = &meta["training"]["settings"];
     assert_eq!(
-        (
-            s["layers"].as_u64(),
-            s["hidden"].as_u64(),
-            s["epochs"].as_u64(),
-            s["seed"].as_u64()
-        ),
+        (s["layers"].as_u64(), s["hidden"].as_u64(), s["epochs"].as_u64(), s["seed"].as_u64()),
         (Some(3), Some(48), Some(2), Some(9))
     );
 
     std::fs::write(&config, r#"{"layers": 3, "hiden": 40}"#).unwrap();
     std::fs::remove_file(&model).unwrap();
-    refuses(
-        &["fit", t, "-o", m, "--config", c],
-        "unknown field `hiden`",
-        &model,
-    );
+    refuses(&["fit", t, "-o", m, "--config", c], "unknown field `hiden`", &model);
 
     // Every shipped config is valid.
-    for entry in
-        std::fs::read_dir(PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("configs")).unwrap()
-    {
+    for entry in std::fs::read_dir(PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("configs")).unwrap() {
         let path = entry.unwrap().path();
         tidemark::train::FitOptions::from_json_file(&path).unwrap_or_else(|e| panic!("{e}"));
     }

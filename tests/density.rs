@@ -7,12 +7,7 @@ use tidemark::data::Matrix;
 use tidemark::train::{fit, FitOptions};
 
 fn quiet() -> FitOptions {
-    FitOptions {
-        quiet: true,
-        threads: Some(2),
-        seed: Some(3),
-        ..Default::default()
-    }
+    FitOptions { quiet: true, threads: Some(2), seed: Some(3), ..Default::default() }
 }
 
 fn mean(v: &[f64]) -> f64 {
@@ -50,13 +45,9 @@ fn held_out_nll_of_a_correlated_gaussian_matches_its_entropy() {
     let model = fit(&train, None, &quiet()).unwrap();
     let nll = -mean(&model.evaluate(&test, 2).log_likelihood);
     let ln_det: f64 = (0..d).map(|i| 2.0 * a[i * d + i].ln()).sum();
-    let entropy =
-        0.5 * (d as f64 * (2.0 * std::f64::consts::PI * std::f64::consts::E).ln() + ln_det);
+    let entropy = 0.5 * (d as f64 * (2.0 * std::f64::consts::PI * std::f64::consts::E).ln() + ln_det);
     let per_dim = (nll - entropy) / d as f64;
-    assert!(
-        per_dim.abs() < 0.03,
-        "held-out NLL {nll:.4} vs entropy {entropy:.4} ({per_dim:.4} nats/dim)"
-    );
+    assert!(per_dim.abs() < 0.03, "held-out NLL {nll:.4} vs entropy {entropy:.4} ({per_dim:.4} nats/dim)");
 }
 
 /// Change of variables: scaling every input by c shifts every
@@ -65,10 +56,7 @@ fn held_out_nll_of_a_correlated_gaussian_matches_its_entropy() {
 #[test]
 fn scaling_the_data_shifts_log_likelihood_by_d_ln_c() {
     let x = banana(3000, 5);
-    let opts = FitOptions {
-        epochs: Some(5),
-        ..quiet()
-    };
+    let opts = FitOptions { epochs: Some(5), ..quiet() };
     let base = fit(&x, None, &opts).unwrap();
     let ll = base.evaluate(&x, 2).log_likelihood;
     for c in [4.0f32, 0.25] {
@@ -98,14 +86,9 @@ fn banana(n: usize, seed: u64) -> Matrix {
 /// (closed form: mean, covariance, 2x2 inverse and determinant).
 fn gaussian_log_density(train: &Matrix, test: &Matrix) -> Vec<f64> {
     let n = train.rows as f64;
-    let m: Vec<f64> = (0..2)
-        .map(|j| (0..train.rows).map(|r| train.row(r)[j] as f64).sum::<f64>() / n)
-        .collect();
+    let m: Vec<f64> = (0..2).map(|j| (0..train.rows).map(|r| train.row(r)[j] as f64).sum::<f64>() / n).collect();
     let c = |i: usize, j: usize| {
-        (0..train.rows)
-            .map(|r| (train.row(r)[i] as f64 - m[i]) * (train.row(r)[j] as f64 - m[j]))
-            .sum::<f64>()
-            / n
+        (0..train.rows).map(|r| (train.row(r)[i] as f64 - m[i]) * (train.row(r)[j] as f64 - m[j])).sum::<f64>() / n
     };
     let (s00, s01, s11) = (c(0, 0), c(0, 1), c(1, 1));
     let det = s00 * s11 - s01 * s01;
@@ -122,20 +105,9 @@ fn gaussian_log_density(train: &Matrix, test: &Matrix) -> Vec<f64> {
 fn flow_beats_a_full_covariance_gaussian_on_a_curved_density() {
     let train = banana(8000, 1);
     let test = banana(2000, 2);
-    let model = fit(
-        &train,
-        None,
-        &FitOptions {
-            epochs: Some(40),
-            ..quiet()
-        },
-    )
-    .unwrap();
+    let model = fit(&train, None, &FitOptions { epochs: Some(40), ..quiet() }).unwrap();
     let flow_ll = mean(&model.evaluate(&test, 2).log_likelihood);
     let gauss_ll = mean(&gaussian_log_density(&train, &test));
     // The banana's true entropy is well below the Gaussian's: expect a clear gap.
-    assert!(
-        flow_ll > gauss_ll + 0.3,
-        "flow {flow_ll:.4} vs Gaussian {gauss_ll:.4} nats/vector"
-    );
+    assert!(flow_ll > gauss_ll + 0.3, "flow {flow_ll:.4} vs Gaussian {gauss_ll:.4} nats/vector");
 }

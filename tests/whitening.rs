@@ -25,12 +25,7 @@ fn whitening_matches_numpy_and_handles_dead_columns() {
     let pre = Preprocessor::fit(&x, Method::Pca, DEFAULT_DEAD_THRESHOLD).unwrap();
 
     // Column 1 is constant and column 4 has std 1e-9: both dead, as documented.
-    let live: Vec<usize> = want["live"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .map(|v| v.as_u64().unwrap() as usize)
-        .collect();
+    let live: Vec<usize> = want["live"].as_array().unwrap().iter().map(|v| v.as_u64().unwrap() as usize).collect();
     assert_eq!(pre.live, live);
     assert_eq!(pre.dead, vec![1, 4]);
     assert_eq!(pre.dead_value.len(), 2);
@@ -39,11 +34,7 @@ fn whitening_matches_numpy_and_handles_dead_columns() {
         assert!((a - b).abs() < 1e-9 * b.abs().max(1.0), "mean {a} vs {b}");
     }
     for (s, lambda) in pre.scale.iter().zip(floats(&want["eigenvalues"])) {
-        assert!(
-            (s * s - lambda).abs() < 1e-9 * lambda,
-            "eigenvalue {} vs {lambda}",
-            s * s
-        );
+        assert!((s * s - lambda).abs() < 1e-9 * lambda, "eigenvalue {} vs {lambda}", s * s);
     }
     let comps = pre.components.as_ref().unwrap();
     for (a, b) in comps.iter().zip(floats(&want["components"])) {
@@ -68,10 +59,9 @@ fn identity_flow_log_likelihood_equals_scipy_gaussian_logpdf() {
     let x = read_matrix(&fixtures().join("whitening.npy"), None).unwrap();
     let text = std::fs::read_to_string(fixtures().join("expected.json")).unwrap();
     let want: serde_json::Value = serde_json::from_str(&text).unwrap();
-    for (method, key) in [
-        (Method::Pca, "gaussian_logpdf_first_rows"),
-        (Method::Standardize, "diagonal_gaussian_logpdf_first_rows"),
-    ] {
+    for (method, key) in
+        [(Method::Pca, "gaussian_logpdf_first_rows"), (Method::Standardize, "diagonal_gaussian_logpdf_first_rows")]
+    {
         let opts = tidemark::train::FitOptions {
             method: Some(method),
             val_fraction: Some(0.0),
@@ -86,10 +76,7 @@ fn identity_flow_log_likelihood_equals_scipy_gaussian_logpdf() {
         let first = tidemark::data::Matrix::new(5, x.cols, x.data[..5 * x.cols].to_vec());
         let got = model.evaluate(&first, 1).log_likelihood;
         for (a, b) in got.iter().zip(floats(&want["whitening"][key])) {
-            assert!(
-                (a - b).abs() < 1e-4 * b.abs().max(1.0),
-                "{method:?}: {a} vs scipy {b}"
-            );
+            assert!((a - b).abs() < 1e-4 * b.abs().max(1.0), "{method:?}: {a} vs scipy {b}");
         }
     }
 }

@@ -33,9 +33,7 @@ fn forward(flow: &Flow, x: &Tensor) -> candle_core::Result<(Tensor, Tensor, Vec<
     for (k, slot) in flow.slots.iter().enumerate() {
         let ls = var(flow, slot.log_scale, &[spec.dim], dev)?;
         let b = var(flow, slot.bias, &[spec.dim], dev)?;
-        let a = h
-            .broadcast_mul(&ls.as_tensor().exp()?)?
-            .broadcast_add(b.as_tensor())?;
+        let a = h.broadcast_mul(&ls.as_tensor().exp()?)?.broadcast_add(b.as_tensor())?;
         logdet = logdet.broadcast_add(&ls.as_tensor().sum_all()?)?;
         vars.push((slot.log_scale, ls));
         vars.push((slot.bias, b));
@@ -47,9 +45,7 @@ fn forward(flow: &Flow, x: &Tensor) -> candle_core::Result<(Tensor, Tensor, Vec<
         for (i, lin) in slot.linears.iter().enumerate() {
             let w = var(flow, lin.weight, &[lin.out, lin.inp], dev)?;
             let bias = var(flow, lin.bias, &[lin.out], dev)?;
-            net = net
-                .matmul(&w.as_tensor().t()?)?
-                .broadcast_add(bias.as_tensor())?;
+            net = net.matmul(&w.as_tensor().t()?)?.broadcast_add(bias.as_tensor())?;
             if i + 1 < slot.linears.len() {
                 net = net.relu()?;
             }
@@ -78,9 +74,7 @@ pub fn evaluate(flow: &Flow, x: &[f32], rows: usize) -> candle_core::Result<Refe
     let grads = loss.backward()?;
     let mut grad = vec![0.0f64; flow.params.len()];
     for (at, v) in &vars {
-        let g = grads
-            .get(v.as_tensor())
-            .expect("every parameter reaches the loss");
+        let g = grads.get(v.as_tensor()).expect("every parameter reaches the loss");
         for (i, val) in g.flatten_all()?.to_vec1::<f64>()?.into_iter().enumerate() {
             grad[at + i] = val;
         }
