@@ -125,6 +125,11 @@ impl Dataset {
         Ok(ds)
     }
 
+    /// Rows already in memory (no file behind them).
+    pub fn in_memory(m: Matrix) -> Dataset {
+        Dataset::from_matrix(Path::new("<memory>"), m)
+    }
+
     pub fn from_matrix(path: &Path, m: Matrix) -> Dataset {
         Dataset { path: path.to_path_buf(), rows: m.rows, cols: m.cols, storage: Storage::Owned(m.data) }
     }

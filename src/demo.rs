@@ -1,7 +1,7 @@
 //! `tidemark demo`: the main job end to end on the shipped demo data — fit
 //! on the training set, save the model, score every set, and summarise.
 
-use crate::data::{check_label_count, read_labels, read_matrix};
+use crate::data::{check_label_count, read_labels, Dataset};
 use crate::error::{Error, Result};
 use crate::score::{score, write_csv};
 use crate::train::{fit, FitOptions};
@@ -19,7 +19,7 @@ pub fn run(data_dir: &Path, out_dir: &Path, threads: usize) -> Result<()> {
         )));
     }
     std::fs::create_dir_all(out_dir).map_err(|source| Error::Io { path: out_dir.to_path_buf(), source })?;
-    let x = read_matrix(&train_path, None)?;
+    let x = Dataset::open(&train_path, None)?;
     let labels_path = data_dir.join("train_labels.npy");
     let labels = read_labels(&labels_path)?;
     check_label_count(&labels_path, labels.len(), x.rows)?;
@@ -32,7 +32,7 @@ pub fn run(data_dir: &Path, out_dir: &Path, threads: usize) -> Result<()> {
     let mut rows = Vec::new();
     for set in SETS {
         let path = data_dir.join(format!("{set}.npy"));
-        let x = read_matrix(&path, None)?;
+        let x = Dataset::open(&path, None)?;
         model.check_width(&path, x.cols)?;
         let s = score(&model, &x, threads);
         let out = out_dir.join(format!("scores_{set}.csv"));

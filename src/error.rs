@@ -15,6 +15,9 @@ pub enum Error {
     /// Settings or inputs that cannot work together.
     #[error("{0}")]
     Invalid(String),
+    /// Training stopped on request; the message says how to continue.
+    #[error("{0}")]
+    Interrupted(String),
     /// Writing an output file failed.
     #[error("{}: {source}", path.display())]
     Io { path: PathBuf, source: std::io::Error },

@@ -4,7 +4,11 @@ use clap::{Args, Parser, Subcommand};
 use std::path::PathBuf;
 use std::process::ExitCode;
 use tidemark::preprocess::Method;
-use tidemark::train::{default_threads, FitOptions};
+use signal_hook::consts::{SIGINT, SIGTERM};
+use signal_hook::flag;
+use std::sync::atomic::AtomicBool;
+use std::sync::Arc;
+use tidemark::train::{default_threads, FitOptions, Run};
 use tidemark::{data, demo, model::Model, score, Result};
 
 #[derive(Parser)]
@@ -128,6 +132,36 @@ struct FitArgs {
     /// Worker threads [default: all cores].
     #[arg(long)]
     threads: Option<usize>,
+    /// Held-out in-distribution rows for validation and early stopping (instead of a split).
+    #[arg(long)]
+    val: Option<PathBuf>,
+    /// Decoupled weight decay on conditioner weights [default: 0].
+    #[arg(long)]
+    weight_decay: Option<f64>,
+    /// Clip the gradient to this global norm [default: 5].
+    #[arg(long)]
+    grad_clip: Option<f64>,
+    /// Roll back and halve the learning rate this many times on a non-finite loss before giving up [default: 3].
+    #[arg(long)]
+    max_retries: Option<usize>,
+    /// Checkpoint every N epochs, and at every new best [default: 1].
+    #[arg(long)]
+    checkpoint_every: Option<usize>,
+    /// ... and at least every M minutes within an epoch [default: 10].
+    #[arg(long)]
+    checkpoint_minutes: Option<f64>,
+    /// Where the latest checkpoint is kept [default: MODEL with .checkpoint.safetensors].
+    #[arg(long)]
+    checkpoint: Option<PathBuf>,
+    /// Continue an interrupted run from its checkpoint (give the same data again).
+    #[arg(long)]
+    resume: Option<PathBuf>,
+    /// Write a JSON-lines training log, one object per epoch.
+    #[arg(long)]
+    log: Option<PathBuf>,
+    /// Test hook: make the gradient at this step non-finite once.
+    #[arg(long, hide = true)]
+    inject_nan_at_step: Option<usize>,
     /// JSON file of training options (same names as the flags, with underscores); flags override it.
     #[arg(long)]
     config: Option<PathBuf>,
@@ -139,7 +173,7 @@ struct FitArgs {
 fn run(cli: Cli) -> Result<()> {
     match cli.command {
         Command::Fit(a) => {
-            let x = data::read_matrix(&a.data, a.input.tensor.as_deref())?;
+            let x = data::Dataset::open(&a.data, a.input.tensor.as_deref())?;
             let labels = match &a.labels {
                 Some(p) => {
                     let l = data::read_labels(p)?;
@@ -163,16 +197,39 @@ fn run(cli: Cli) -> Result<()> {
                 dropout: a.dropout,
                 noise: a.noise,
                 dead_threshold: a.dead_threshold,
+                weight_decay: a.weight_decay,
+                grad_clip: a.grad_clip,
+                max_retries: a.max_retries,
+                checkpoint_every: a.checkpoint_every,
+                checkpoint_minutes: a.checkpoint_minutes,
                 seed: a.seed,
                 threads: a.threads,
                 quiet: a.quiet,
+                inject_nan_at_step: a.inject_nan_at_step,
             };
             let opts = match &a.config {
                 Some(path) => opts.or(FitOptions::from_json_file(path)?),
                 None => opts,
             };
-            let model = tidemark::train::fit(&x, labels.as_deref(), &opts)?;
+            let val = a.val.as_deref().map(|p| data::Dataset::open(p, a.input.tensor.as_deref())).transpose()?;
+            let stop = stop_on_signals();
+            let checkpoint = a.checkpoint.clone().or_else(|| a.resume.clone()).unwrap_or_else(|| a.output.with_extension("checkpoint.safetensors"));
+            let run = Run {
+                data: &x,
+                val: val.as_ref(),
+                labels: labels.as_deref(),
+                output: Some(&a.output),
+                checkpoint: Some(checkpoint),
+                resume: a.resume.as_deref(),
+                log: a.log.as_deref(),
+                stop: Some(&stop),
+            };
+            let model = tidemark::train::fit_run(&run, &opts)?;
             model.save(&a.output)?;
+            // The run is complete: its checkpoint has nothing left to resume.
+            if let Some(ck) = &run.checkpoint {
+                let _ = std::fs::remove_file(ck);
+            }
             if !a.quiet {
                 eprintln!("{}", model.meta.fit_summary(&a.output));
             }
@@ -180,7 +237,7 @@ fn run(cli: Cli) -> Result<()> {
         }
         Command::Score { model, data: path, output, input, threads } => {
             let m = Model::load(&model)?;
-            let x = data::read_matrix(&path, input.tensor.as_deref())?;
+            let x = data::Dataset::open(&path, input.tensor.as_deref())?;
             m.check_width(&path, x.cols)?;
             score::write_csv(&output, &score::score(&m, &x, threads))
         }
@@ -204,9 +261,26 @@ fn run(cli: Cli) -> Result<()> {
     }
 }
 
+/// SIGINT and SIGTERM set the returned flag, so training stops after its
+/// current step and checkpoints; a second signal exits at once (files are
+/// only ever renamed into place, so nothing is left half-written).
+fn stop_on_signals() -> Arc<AtomicBool> {
+    let stop = Arc::new(AtomicBool::new(false));
+    for sig in [SIGINT, SIGTERM] {
+        // Registration fails only for forbidden signals; these two are allowed.
+        let _ = flag::register_conditional_shutdown(sig, 130, Arc::clone(&stop));
+        let _ = flag::register(sig, Arc::clone(&stop));
+    }
+    stop
+}
+
 fn main() -> ExitCode {
     match run(Cli::parse()) {
         Ok(()) => ExitCode::SUCCESS,
+        Err(e @ tidemark::Error::Interrupted(_)) => {
+            eprintln!("{e}");
+            ExitCode::from(130)
+        }
         Err(e) => {
             eprintln!("error: {e}");
             ExitCode::FAILURE

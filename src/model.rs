@@ -7,7 +7,7 @@
 //!   flow on u[..k], standard normal on u[k..]
 //!   log p(x) = -NLL_flow(u[..k]) - sum_{i>=k} (u_i^2/2 + ln(2 pi)/2) + log-det
 
-use crate::data::Matrix;
+use crate::data::{Dataset, Matrix};
 use crate::error::{Error, Result};
 use crate::flow::{self, Flow, FlowSpec, Workers, HALF_LN_2PI};
 use crate::preprocess::{Method, Preprocessor};
@@ -37,7 +37,6 @@ pub struct TrainingSummary {
     pub best_validation_nll: f64,
     /// Validation NLL of the untrained flow (the whitened Gaussian).
     pub gaussian_validation_nll: f64,
-    pub seconds: f64,
 }
 
 /// Mean and standard deviation of a statistic over the training rows.
@@ -121,7 +120,6 @@ impl Meta {
             let c: Vec<String> = self.classes.iter().map(|c| format!("{}: {}", c.label, c.rows)).collect();
             line("classes (rows)", c.join(", "));
         }
-        line("training time", format!("{:.1} s", t.seconds));
         line("settings", t.settings.to_string());
         s
     }
@@ -190,16 +188,24 @@ impl Model {
     }
 
     /// log p(x) for every row, in chunks of bounded size.
-    pub fn evaluate(&self, x: &Matrix, threads: usize) -> Evaluation {
+    pub fn evaluate(&self, x: &Dataset, threads: usize) -> Evaluation {
+        let idx: Vec<usize> = (0..x.rows).collect();
+        self.evaluate_rows(x, &idx, threads)
+    }
+
+    /// log p(x) for the rows `idx` of `x`, in chunks of bounded size.
+    pub fn evaluate_rows(&self, x: &Dataset, idx: &[usize], threads: usize) -> Evaluation {
         let mut out = Evaluation::default();
-        let mut workers = Workers::new(&self.flow, threads, CHUNK_ROWS.min(x.rows));
-        let mut whitened = vec![0.0f32; CHUNK_ROWS.min(x.rows) * self.dim()];
-        for start in (0..x.rows).step_by(CHUNK_ROWS) {
-            let n = CHUNK_ROWS.min(x.rows - start);
-            let rows = &x.data[start * x.cols..(start + n) * x.cols];
-            self.pre.transform(rows, n, &mut whitened);
+        let cap = CHUNK_ROWS.min(idx.len()).max(1);
+        let mut workers = Workers::new(&self.flow, threads, cap);
+        let mut whitened = vec![0.0f32; cap * self.dim()];
+        let mut rows = Vec::new();
+        for chunk in idx.chunks(CHUNK_ROWS) {
+            let n = chunk.len();
+            x.gather(chunk, &mut rows);
+            self.pre.transform(&rows, n, &mut whitened);
             out.log_likelihood.extend(self.log_likelihood_whitened(&whitened[..n * self.dim()], n, &mut workers));
-            out.dead_deviation.extend((0..n).map(|r| self.pre.dead_deviation(x.row(start + r))));
+            out.dead_deviation.extend(rows.chunks(x.cols).map(|r| self.pre.dead_deviation(r)));
         }
         out
     }
@@ -234,7 +240,21 @@ impl Model {
 
     /// Write the model as one `.safetensors` file (atomically).
     pub fn save(&self, path: &Path) -> Result<()> {
+        self.save_with(path, Vec::new(), None)
+    }
+
+    /// Write the model plus extra f32 tensors and one extra metadata entry
+    /// (used by checkpoints).
+    pub(crate) fn save_with(
+        &self,
+        path: &Path,
+        extra: Vec<(String, &[f32])>,
+        extra_meta: Option<(&str, String)>,
+    ) -> Result<()> {
         let mut tensors: Vec<(String, Dtype, Vec<usize>, Vec<u8>)> = Vec::new();
+        for (name, values) in extra {
+            tensors.push((name, Dtype::F32, vec![values.len()], le_bytes_f32(values)));
+        }
         let mut put = |name: &str, dtype: Dtype, shape: Vec<usize>, bytes: Vec<u8>| {
             tensors.push((name.to_string(), dtype, shape, bytes));
         };
@@ -273,7 +293,10 @@ impl Model {
             }
         }
         let meta_json = serde_json::to_string(&self.meta).map_err(|e| Error::model(path, e))?;
-        let metadata = HashMap::from([(META_KEY.to_string(), meta_json)]);
+        let mut metadata = HashMap::from([(META_KEY.to_string(), meta_json)]);
+        if let Some((key, value)) = extra_meta {
+            metadata.insert(key.to_string(), value);
+        }
         let views = tensors
             .iter()
             .map(|(name, dtype, shape, bytes)| {
@@ -290,10 +313,20 @@ impl Model {
 
     /// Read a model file written by [`Model::save`].
     pub fn load(path: &Path) -> Result<Model> {
+        Ok(Model::load_with(path)?.0)
+    }
+
+    /// Read a model file and give access to what [`Model::save_with`] added.
+    pub(crate) fn load_with(path: &Path) -> Result<(Model, Extras)> {
         let bytes = std::fs::read(path).map_err(|e| Error::model(path, format!("cannot read model: {e}")))?;
-        let st = SafeTensors::deserialize(&bytes)
+        let model = Model::from_bytes(path, &bytes)?;
+        Ok((model, Extras { path: path.to_path_buf(), bytes }))
+    }
+
+    fn from_bytes(path: &Path, bytes: &[u8]) -> Result<Model> {
+        let st = SafeTensors::deserialize(bytes)
             .map_err(|e| Error::model(path, format!("not a safetensors file ({e})")))?;
-        let (_, header) = SafeTensors::read_metadata(&bytes).map_err(|e| Error::model(path, e))?;
+        let (_, header) = SafeTensors::read_metadata(bytes).map_err(|e| Error::model(path, e))?;
         let json = header
             .metadata()
             .as_ref()
@@ -381,6 +414,34 @@ impl Model {
             flow.perms[k] = perm.iter().map(|&p| p as u32).collect();
         }
         Ok(Model { meta, pre, flow })
+    }
+}
+
+/// The raw file behind a loaded model, for the extras a checkpoint adds.
+pub(crate) struct Extras {
+    path: std::path::PathBuf,
+    bytes: Vec<u8>,
+}
+
+impl Extras {
+    /// A 1-D f32 tensor of `len` values added by [`Model::save_with`].
+    pub fn tensor(&self, name: &str, len: usize) -> Result<Vec<f32>> {
+        let st = SafeTensors::deserialize(&self.bytes).map_err(|e| Error::model(&self.path, e))?;
+        let t = st.tensor(name).map_err(|_| Error::model(&self.path, format!("missing tensor '{name}'")))?;
+        if t.dtype() != Dtype::F32 || t.shape() != [len] {
+            return Err(Error::model(&self.path, format!("tensor '{name}' has the wrong dtype or shape")));
+        }
+        Ok(from_f32(t.data()))
+    }
+
+    /// A metadata entry added by [`Model::save_with`].
+    pub fn metadata(&self, key: &str) -> Result<String> {
+        let (_, header) = SafeTensors::read_metadata(&self.bytes).map_err(|e| Error::model(&self.path, e))?;
+        header
+            .metadata()
+            .as_ref()
+            .and_then(|m| m.get(key).cloned())
+            .ok_or_else(|| Error::model(&self.path, format!("has no '{key}' metadata (not a checkpoint?)")))
     }
 }
 

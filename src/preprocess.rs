@@ -3,7 +3,7 @@
 //! invertible on the live features, and its exact log-determinant is added
 //! to every log-likelihood so that they stay in the original input space.
 
-use crate::data::Matrix;
+use crate::data::Dataset;
 use crate::linalg::{matmul, View};
 
 /// How live features are mapped to the flow's unit-scale inputs.
@@ -24,6 +24,56 @@ pub const DEFAULT_DEAD_THRESHOLD: f64 = 1e-6;
 /// Principal-component variances below this fraction of the largest are
 /// raised to it, so that rank-deficient data never divides by zero.
 pub const EIGENVALUE_FLOOR: f64 = 1e-12;
+
+/// Rows per block when streaming over the data.
+const BLOCK: usize = 2048;
+
+/// Per-column mean and sum of squared deviations, in one streaming pass:
+/// each block's statistics are computed about the block mean in f64 and
+/// merged with the pairwise update of Chan, Golub & LeVeque (1979), which
+/// stays accurate when values sit far from zero (unlike sum / sum-of-squares).
+pub struct ColumnStats {
+    pub n: f64,
+    pub mean: Vec<f64>,
+    pub m2: Vec<f64>,
+}
+
+impl ColumnStats {
+    pub fn of(x: &Dataset, idx: &[usize]) -> ColumnStats {
+        let cols = x.cols;
+        let mut total = ColumnStats { n: 0.0, mean: vec![0.0; cols], m2: vec![0.0; cols] };
+        let mut rows = Vec::new();
+        for chunk in idx.chunks(BLOCK) {
+            x.gather(chunk, &mut rows);
+            let nb = chunk.len() as f64;
+            let mut mean = vec![0.0f64; cols];
+            for row in rows.chunks(cols) {
+                for (m, &v) in mean.iter_mut().zip(row) {
+                    *m += v as f64;
+                }
+            }
+            mean.iter_mut().for_each(|m| *m /= nb);
+            let mut m2 = vec![0.0f64; cols];
+            for row in rows.chunks(cols) {
+                for ((s, &v), m) in m2.iter_mut().zip(row).zip(&mean) {
+                    *s += (v as f64 - m).powi(2);
+                }
+            }
+            total.merge(nb, &mean, &m2);
+        }
+        total
+    }
+
+    fn merge(&mut self, nb: f64, mean_b: &[f64], m2_b: &[f64]) {
+        let n = self.n + nb;
+        for j in 0..self.mean.len() {
+            let delta = mean_b[j] - self.mean[j];
+            self.mean[j] += delta * nb / n;
+            self.m2[j] += m2_b[j] + delta * delta * self.n * nb / n;
+        }
+        self.n = n;
+    }
+}
 
 /// A fitted preprocessing map from input vectors to whitened vectors.
 #[derive(Clone, Debug)]
@@ -47,44 +97,30 @@ pub struct Preprocessor {
 }
 
 impl Preprocessor {
-    /// Fit on the training rows. Fails when no feature varies.
-    pub fn fit(x: &Matrix, method: Method, dead_threshold: f64) -> Result<Preprocessor, String> {
-        let (n, cols) = (x.rows, x.cols);
-        let mut mean = vec![0.0f64; cols];
-        for r in 0..n {
-            for (m, &v) in mean.iter_mut().zip(x.row(r)) {
-                *m += v as f64;
-            }
-        }
-        mean.iter_mut().for_each(|m| *m /= n as f64);
-        let mut var = vec![0.0f64; cols];
-        for r in 0..n {
-            for ((s, &v), m) in var.iter_mut().zip(x.row(r)).zip(&mean) {
-                *s += (v as f64 - m).powi(2);
-            }
-        }
-        let std: Vec<f64> = var.iter().map(|s| (s / n as f64).sqrt()).collect();
+    /// Fit on the rows `idx` of `x`, streaming over them in blocks. Fails
+    /// when no feature varies.
+    pub fn fit(x: &Dataset, idx: &[usize], method: Method, dead_threshold: f64) -> Result<Preprocessor, String> {
+        let stats = ColumnStats::of(x, idx);
+        let std: Vec<f64> = stats.m2.iter().map(|s| (s / stats.n).sqrt()).collect();
         let top = std.iter().cloned().fold(0.0, f64::max);
-        let (live, dead): (Vec<usize>, Vec<usize>) = (0..cols).partition(|&j| std[j] > dead_threshold * top);
+        let (live, dead): (Vec<usize>, Vec<usize>) = (0..x.cols).partition(|&j| std[j] > dead_threshold * top);
         if live.is_empty() {
             return Err("no feature varies across the training rows".into());
         }
-        let dead_value = dead.iter().map(|&j| mean[j]).collect();
-        let live_mean: Vec<f64> = live.iter().map(|&j| mean[j]).collect();
         let mut pre = Preprocessor {
             method,
-            input_dim: cols,
+            input_dim: x.cols,
+            dead_value: dead.iter().map(|&j| stats.mean[j]).collect(),
+            mean: live.iter().map(|&j| stats.mean[j]).collect(),
             live,
             dead,
-            dead_value,
-            mean: live_mean,
             components: None,
             scale: vec![],
             floored: 0,
         };
         match method {
             Method::Standardize => pre.scale = pre.live.iter().map(|&j| std[j]).collect(),
-            Method::Pca => pre.fit_pca(x),
+            Method::Pca => pre.fit_pca(x, idx),
         }
         Ok(pre)
     }
@@ -94,17 +130,17 @@ impl Preprocessor {
         self.live.len()
     }
 
-    /// Covariance (maximum-likelihood, divided by n) of the live features,
-    /// accumulated in f64 over row blocks.
-    fn covariance(&self, x: &Matrix) -> Vec<f64> {
+    /// Covariance (maximum-likelihood, divided by n) of the live features
+    /// about the already exact mean, accumulated in f64 over row blocks.
+    fn covariance(&self, x: &Dataset, idx: &[usize]) -> Vec<f64> {
         let d = self.dim();
         let mut cov = vec![0.0f64; d * d];
-        let block = 2048;
-        let mut centered = vec![0.0f64; block * d];
-        for start in (0..x.rows).step_by(block) {
-            let n = block.min(x.rows - start);
-            for r in 0..n {
-                let row = x.row(start + r);
+        let mut rows = Vec::new();
+        let mut centered = vec![0.0f64; BLOCK * d];
+        for chunk in idx.chunks(BLOCK) {
+            let n = chunk.len();
+            x.gather(chunk, &mut rows);
+            for (r, row) in rows.chunks(x.cols).enumerate() {
                 for (i, &j) in self.live.iter().enumerate() {
                     centered[r * d + i] = row[j] as f64 - self.mean[i];
                 }
@@ -112,13 +148,13 @@ impl Preprocessor {
             let c = &centered[..n * d];
             matmul(&mut cov, d, true, View::transposed(c, n, d), View::rows(c, n, d, d));
         }
-        cov.iter_mut().for_each(|v| *v /= x.rows as f64);
+        cov.iter_mut().for_each(|v| *v /= idx.len() as f64);
         cov
     }
 
-    fn fit_pca(&mut self, x: &Matrix) {
+    fn fit_pca(&mut self, x: &Dataset, idx: &[usize]) {
         let d = self.dim();
-        let cov = nalgebra::DMatrix::from_row_slice(d, d, &self.covariance(x));
+        let cov = nalgebra::DMatrix::from_row_slice(d, d, &self.covariance(x, idx));
         let eig = nalgebra::SymmetricEigen::new(cov);
         let mut order: Vec<usize> = (0..d).collect();
         order.sort_by(|&a, &b| eig.eigenvalues[b].total_cmp(&eig.eigenvalues[a]));
@@ -214,6 +250,12 @@ impl Preprocessor {
 mod tests {
     use super::*;
 
+    use crate::data::Matrix;
+
+    fn all(x: &Matrix) -> (Dataset, Vec<usize>) {
+        (Dataset::in_memory(x.clone()), (0..x.rows).collect())
+    }
+
     fn correlated(n: usize) -> Matrix {
         // Deterministic, correlated, non-centred 3-column data.
         let data = (0..n)
@@ -229,7 +271,8 @@ mod tests {
     fn whitened_data_has_identity_covariance_and_inverse_round_trips() {
         let x = correlated(500);
         for method in [Method::Pca, Method::Standardize] {
-            let pre = Preprocessor::fit(&x, method, DEFAULT_DEAD_THRESHOLD).unwrap();
+            let (ds, idx) = all(&x);
+            let pre = Preprocessor::fit(&ds, &idx, method, DEFAULT_DEAD_THRESHOLD).unwrap();
             let mut u = vec![0.0; 500 * 3];
             pre.transform(&x.data, 500, &mut u);
             let cov =
@@ -255,11 +298,31 @@ mod tests {
         for r in 0..100 {
             x.data[r * 3 + 1] = 4.0;
         }
-        let pre = Preprocessor::fit(&x, Method::Pca, DEFAULT_DEAD_THRESHOLD).unwrap();
+        let (ds, idx) = all(&x);
+        let pre = Preprocessor::fit(&ds, &idx, Method::Pca, DEFAULT_DEAD_THRESHOLD).unwrap();
         assert_eq!((pre.live.clone(), pre.dead.clone()), (vec![0, 2], vec![1]));
         assert!(pre.log_det().is_finite());
         assert_eq!(pre.dead_deviation(&[0.0, 4.5, 0.0]), 0.5);
-        let all_constant = Matrix::new(3, 2, vec![1.0; 6]);
-        assert!(Preprocessor::fit(&all_constant, Method::Pca, DEFAULT_DEAD_THRESHOLD).is_err());
+        let (ds, idx) = all(&Matrix::new(3, 2, vec![1.0; 6]));
+        assert!(Preprocessor::fit(&ds, &idx, Method::Pca, DEFAULT_DEAD_THRESHOLD).is_err());
+    }
+
+    /// Streaming statistics equal a two-pass float64 computation on values
+    /// near 1e4 with unit spread, where the one-pass sum / sum-of-squares
+    /// formula in f32 loses the variance entirely.
+    #[test]
+    fn streaming_statistics_survive_a_large_offset() {
+        let n = 5000;
+        let data: Vec<f32> = (0..n).map(|i| 1.0e4 + (i as f32 * 0.37).sin() * 1.5).collect();
+        let x = Matrix::new(n, 1, data.clone());
+        let (ds, idx) = all(&x);
+        let stats = ColumnStats::of(&ds, &idx);
+        let mean = data.iter().map(|&v| v as f64).sum::<f64>() / n as f64;
+        let var = data.iter().map(|&v| (v as f64 - mean).powi(2)).sum::<f64>() / n as f64;
+        assert!((stats.mean[0] - mean).abs() < 1e-9 * mean);
+        assert!((stats.m2[0] / n as f64 - var).abs() < 1e-9 * var, "{} vs {var}", stats.m2[0] / n as f64);
+        let (s, sq) = data.iter().fold((0.0f32, 0.0f32), |(s, q), &v| (s + v, q + v * v));
+        let naive = sq / n as f32 - (s / n as f32).powi(2);
+        assert!((naive as f64 - var).abs() > 0.1 * var, "the naive formula should fail here: {naive} vs {var}");
     }
 }

@@ -1,7 +1,7 @@
 //! Scoring: per-vector scores from a fitted model, written as CSV with a
 //! header row (one row per input vector, in input order).
 
-use crate::data::Matrix;
+use crate::data::Dataset;
 use crate::error::{Error, Result};
 use crate::model::Model;
 use std::path::Path;
@@ -39,7 +39,7 @@ impl Scores {
 }
 
 /// Score every row of `x` with `model`.
-pub fn score(model: &Model, x: &Matrix, threads: usize) -> Scores {
+pub fn score(model: &Model, x: &Dataset, threads: usize) -> Scores {
     let eval = model.evaluate(x, threads);
     let per_bit = model.dim() as f64 * std::f64::consts::LN_2;
     Scores {

@@ -4,9 +4,9 @@
 //! is the first candidate, so a fitted flow never ends worse than a Gaussian
 //! on the validation rows.
 
-use crate::data::Matrix;
+use crate::data::Dataset;
 use crate::error::{Error, Result};
-use crate::flow::{Flow, FlowSpec, Workers};
+use crate::flow::{Flow, FlowSpec, Workers, HALF_LN_2PI};
 use crate::model::{ClassCount, Meta, Model, PreprocessingMeta, Spread, TrainingSummary, FORMAT_VERSION};
 use crate::preprocess::{Method, Preprocessor, DEFAULT_DEAD_THRESHOLD};
 use indicatif::{ProgressBar, ProgressStyle};
@@ -15,6 +15,8 @@ use rand::seq::SliceRandom;
 use rand::SeedableRng;
 use rand_distr::{Distribution, StandardNormal};
 use std::io::IsTerminal;
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::Instant;
 
 /// Training options as the user gives them, on the command line or in a JSON
@@ -36,10 +38,18 @@ pub struct FitOptions {
     pub dropout: Option<f64>,
     pub noise: Option<f64>,
     pub dead_threshold: Option<f64>,
+    pub weight_decay: Option<f64>,
+    pub grad_clip: Option<f64>,
+    pub max_retries: Option<usize>,
+    pub checkpoint_every: Option<usize>,
+    pub checkpoint_minutes: Option<f64>,
     pub seed: Option<u64>,
     pub threads: Option<usize>,
     #[serde(skip)]
     pub quiet: bool,
+    /// Test hook: make the gradient of this step non-finite once.
+    #[serde(skip)]
+    pub inject_nan_at_step: Option<usize>,
 }
 
 impl FitOptions {
@@ -68,9 +78,15 @@ impl FitOptions {
             dropout: self.dropout.or(fallback.dropout),
             noise: self.noise.or(fallback.noise),
             dead_threshold: self.dead_threshold.or(fallback.dead_threshold),
+            weight_decay: self.weight_decay.or(fallback.weight_decay),
+            grad_clip: self.grad_clip.or(fallback.grad_clip),
+            max_retries: self.max_retries.or(fallback.max_retries),
+            checkpoint_every: self.checkpoint_every.or(fallback.checkpoint_every),
+            checkpoint_minutes: self.checkpoint_minutes.or(fallback.checkpoint_minutes),
             seed: self.seed.or(fallback.seed),
             threads: self.threads.or(fallback.threads),
             quiet: self.quiet || fallback.quiet,
+            inject_nan_at_step: self.inject_nan_at_step.or(fallback.inject_nan_at_step),
         }
     }
 }
@@ -80,8 +96,9 @@ pub fn default_threads() -> usize {
     std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1)
 }
 
-/// Every training setting, resolved; stored in the model's metadata.
-#[derive(Clone, Debug, serde::Serialize)]
+/// Every training setting, resolved; stored in the model's metadata and in
+/// checkpoints (a resumed run uses the checkpoint's settings).
+#[derive(Clone, Debug, serde::Serialize, serde::Deserialize)]
 pub struct Settings {
     pub method: Method,
     pub layers: usize,
@@ -94,11 +111,21 @@ pub struct Settings {
     pub lr: f64,
     pub warmup_fraction: f64,
     pub grad_clip: f64,
+    pub weight_decay: f64,
     pub val_fraction: f64,
+    /// Validation rows come from a separate file instead of a split.
+    pub val_file: bool,
     pub patience: usize,
     pub dropout: f64,
     pub noise: f64,
     pub dead_threshold: f64,
+    /// Divergences (non-finite loss or gradient) survived by rolling back
+    /// and halving the learning rate before training stops.
+    pub max_retries: usize,
+    /// Write a checkpoint every this many epochs (and at every new best).
+    pub checkpoint_every: usize,
+    /// ... and at least this often within an epoch.
+    pub checkpoint_minutes: f64,
     pub seed: u64,
     pub threads: usize,
 }
@@ -110,7 +137,7 @@ const FEW_ROWS_PER_DIM: f64 = 50.0;
 impl Settings {
     /// Fill every unset option from the size of the training set:
     /// `n` training rows, `d` live dimensions.
-    pub fn resolve(o: &FitOptions, n: usize, d: usize) -> Result<Settings> {
+    pub fn resolve(o: &FitOptions, n: usize, d: usize, val_file: bool) -> Result<Settings> {
         let method = o.method.unwrap_or(Method::Pca);
         let per_dim = n as f64 / d as f64;
         let few = per_dim < FEW_ROWS_PER_DIM;
@@ -132,8 +159,10 @@ impl Settings {
             batch_size,
             lr: o.lr.unwrap_or(1e-3),
             warmup_fraction: 0.02,
-            grad_clip: 5.0,
-            val_fraction: o.val_fraction.unwrap_or(0.1),
+            grad_clip: o.grad_clip.unwrap_or(5.0),
+            weight_decay: o.weight_decay.unwrap_or(0.0),
+            val_fraction: if val_file { 0.0 } else { o.val_fraction.unwrap_or(0.1) },
+            val_file,
             patience: o.patience.unwrap_or(10),
             dropout: o.dropout.unwrap_or(if few {
                 0.2
@@ -150,6 +179,9 @@ impl Settings {
                 0.0
             }),
             dead_threshold: o.dead_threshold.unwrap_or(DEFAULT_DEAD_THRESHOLD),
+            max_retries: o.max_retries.unwrap_or(3),
+            checkpoint_every: o.checkpoint_every.unwrap_or(1).max(1),
+            checkpoint_minutes: o.checkpoint_minutes.unwrap_or(10.0),
             seed: o.seed.unwrap_or(0),
             threads: o.threads.unwrap_or_else(default_threads).max(1),
         };
@@ -159,15 +191,22 @@ impl Settings {
         if !(0.0..1.0).contains(&s.dropout) || s.noise < 0.0 || s.clamp <= 0.0 || s.lr <= 0.0 {
             return Err(Error::Invalid("--dropout must be in [0, 1); --noise >= 0; --clamp and --lr > 0".into()));
         }
+        if !(0.0..0.9).contains(&s.val_fraction) {
+            return Err(Error::Invalid("--val-fraction must be in [0, 0.9)".into()));
+        }
         Ok(s)
     }
 }
 
-/// Adam (Kingma & Ba 2015) over the flat parameter vector, in one fused pass.
+
+/// Adam (Kingma & Ba 2015) with decoupled weight decay (Loshchilov & Hutter
+/// 2019) over the flat parameter vector, in one fused pass. Its whole state
+/// (moments and step count) is saved in checkpoints.
+#[derive(Clone)]
 pub struct Adam {
-    m: Vec<f32>,
-    v: Vec<f32>,
-    t: u64,
+    pub m: Vec<f32>,
+    pub v: Vec<f32>,
+    pub t: u64,
 }
 
 impl Adam {
@@ -179,15 +218,20 @@ impl Adam {
         Adam { m: vec![0.0; n], v: vec![0.0; n], t: 0 }
     }
 
-    pub fn step(&mut self, params: &mut [f32], grad: &[f32], lr: f64) {
+    /// One update; `decay[i]` says whether parameter i takes weight decay.
+    pub fn step(&mut self, params: &mut [f32], grad: &[f32], lr: f64, weight_decay: f64, decay: &[bool]) {
         self.t += 1;
         let c1 = 1.0 - (Self::BETA1 as f64).powi(self.t as i32);
         let c2 = 1.0 - (Self::BETA2 as f64).powi(self.t as i32);
         let step = (lr * c2.sqrt() / c1) as f32;
         let eps = Self::EPS * c2.sqrt() as f32;
-        for (((p, &g), m), v) in params.iter_mut().zip(grad).zip(&mut self.m).zip(&mut self.v) {
+        let shrink = (lr * weight_decay) as f32;
+        for ((((p, &g), m), v), &d) in params.iter_mut().zip(grad).zip(&mut self.m).zip(&mut self.v).zip(decay) {
             *m = Self::BETA1 * *m + (1.0 - Self::BETA1) * g;
             *v = Self::BETA2 * *v + (1.0 - Self::BETA2) * g * g;
+            if d {
+                *p -= shrink * *p;
+            }
             *p -= step * *m / (v.sqrt() + eps);
         }
     }
@@ -203,10 +247,18 @@ pub fn learning_rate(base: f64, step: usize, total: usize, warmup_fraction: f64)
     base * 0.5 * (1.0 + (std::f64::consts::PI * progress.min(1.0)).cos())
 }
 
+/// splitmix64, to derive independent seeds from (seed, purpose, counter).
+fn derive(seed: u64, purpose: u64, counter: u64) -> u64 {
+    let mut z = seed ^ purpose.wrapping_mul(0x9E37_79B9_7F4A_7C15) ^ counter.wrapping_mul(0xD1B5_4A32_D192_ED03);
+    z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
+    z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
+    z ^ (z >> 31)
+}
+
 /// Seeded split of row indices into (train, validation).
 fn split_rows(n: usize, val_fraction: f64, seed: u64) -> (Vec<usize>, Vec<usize>) {
     let mut idx: Vec<usize> = (0..n).collect();
-    idx.shuffle(&mut StdRng::seed_from_u64(seed ^ 0x5EED_5917));
+    idx.shuffle(&mut StdRng::seed_from_u64(derive(seed, 1, 0)));
     let n_val = if val_fraction > 0.0 { ((n as f64 * val_fraction).round() as usize).clamp(1, n - 1) } else { 0 };
     let val = idx.split_off(n - n_val);
     (idx, val)
@@ -215,166 +267,516 @@ fn split_rows(n: usize, val_fraction: f64, seed: u64) -> (Vec<usize>, Vec<usize>
 /// Fewest rows `fit` accepts.
 pub const MIN_ROWS: usize = 10;
 
-/// Fit a model to the rows of `x`.
-pub fn fit(x: &Matrix, labels: Option<&[i64]>, opts: &FitOptions) -> Result<Model> {
+/// Most training rows used for the log-likelihood spread stored in the model.
+const SPREAD_ROWS: usize = 50_000;
+
+/// What a training run reads and writes besides its options.
+pub struct Run<'a> {
+    pub data: &'a Dataset,
+    /// Separate validation rows (otherwise a seeded split of `data`).
+    pub val: Option<&'a Dataset>,
+    pub labels: Option<&'a [i64]>,
+    /// Where the best model so far is written when training stops early
+    /// (interrupted or diverged).
+    pub output: Option<&'a Path>,
+    /// Where checkpoints are kept (none when `None`).
+    pub checkpoint: Option<PathBuf>,
+    /// Continue from this checkpoint.
+    pub resume: Option<&'a Path>,
+    /// JSON-lines training log.
+    pub log: Option<&'a Path>,
+    /// Set (by a signal handler) to stop after the current step.
+    pub stop: Option<&'a AtomicBool>,
+}
+
+impl<'a> Run<'a> {
+    /// A run that only trains: no files, no checkpoints.
+    pub fn new(data: &'a Dataset) -> Run<'a> {
+        Run { data, val: None, labels: None, output: None, checkpoint: None, resume: None, log: None, stop: None }
+    }
+}
+
+/// One line of the JSON-lines training log (NLLs in nats per dimension,
+/// input space; `grad_norm` is the epoch's mean before clipping).
+#[derive(Clone, Debug, serde::Serialize, serde::Deserialize)]
+pub struct LogEntry {
+    pub epoch: usize,
+    pub step: usize,
+    pub lr: f64,
+    pub train_nll: f64,
+    pub val_nll: f64,
+    pub grad_norm: f64,
+    pub seconds: f64,
+}
+
+/// Shape and checksum of the data a run was started on.
+#[derive(Clone, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct Fingerprint {
+    pub rows: usize,
+    pub cols: usize,
+    pub checksum: u64,
+}
+
+impl Fingerprint {
+    fn of(d: &Dataset) -> Fingerprint {
+        Fingerprint { rows: d.rows, cols: d.cols, checksum: d.checksum() }
+    }
+}
+
+/// Everything besides tensors that a checkpoint must hold to continue a run
+/// bit for bit: shuffles, noise and dropout are derived from (seed, epoch,
+/// step), so the position is enough to reproduce them.
+#[derive(Clone, Debug, serde::Serialize, serde::Deserialize)]
+struct TrainState {
+    /// The epoch in progress (1-based).
+    epoch: usize,
+    /// Minibatches of this epoch already done.
+    batch: usize,
+    step: usize,
+    adam_t: u64,
+    train_sum: f64,
+    grad_norm_sum: f64,
+    best_val: f64,
+    best_epoch: usize,
+    since_best: usize,
+    gaussian_val: f64,
+    lr_scale: f64,
+    retries: usize,
+    seconds: f64,
+    log: Vec<LogEntry>,
+    data: Fingerprint,
+    val_data: Option<Fingerprint>,
+}
+
+const CHECKPOINT_KEY: &str = "tidemark_checkpoint";
+
+/// The learned state that a checkpoint saves besides the model skeleton.
+struct Learned {
+    model: Model,
+    settings: Settings,
+    state: TrainState,
+    best_params: Vec<f32>,
+    adam: Adam,
+}
+
+/// Fit a model to `x` with no files written (library use and tests).
+pub fn fit(x: &Dataset, labels: Option<&[i64]>, opts: &FitOptions) -> Result<Model> {
+    fit_run(&Run { labels, ..Run::new(x) }, opts)
+}
+
+/// Fit a model as `run` describes: fresh or resumed, with checkpoints, a
+/// log and a stop flag when given.
+pub fn fit_run(run: &Run, opts: &FitOptions) -> Result<Model> {
     let started = Instant::now();
+    let mut learned = match run.resume {
+        Some(path) => resume(path, run)?,
+        None => start(run, opts)?,
+    };
+    if !opts.quiet {
+        let json = serde_json::to_string(&learned.settings).map_err(|e| Error::Invalid(e.to_string()))?;
+        eprintln!("settings: {json}");
+        if run.resume.is_some() {
+            let s = &learned.state;
+            eprintln!("resuming at epoch {} (batch {}, step {})", s.epoch, s.batch, s.step);
+        }
+    }
+    train(run, opts, &mut learned, started)?;
+    learned.model.flow.params = learned.best_params.clone();
+    finish(run, &mut learned)?;
+    Ok(learned.model)
+}
+
+/// Split, fit the preprocessing and set up an untrained flow.
+fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
+    let x = run.data;
     if x.rows < MIN_ROWS {
         return Err(Error::Invalid(format!("need at least {MIN_ROWS} rows to fit, got {}", x.rows)));
     }
-    let val_fraction = opts.val_fraction.unwrap_or(0.1);
+    if let Some(v) = run.val {
+        if v.cols != x.cols {
+            return Err(Error::Invalid(format!(
+                "{}: validation rows have {} features but the training data has {}",
+                v.path.display(),
+                v.cols,
+                x.cols
+            )));
+        }
+    }
+    let seed = opts.seed.unwrap_or(0);
+    let val_fraction = if run.val.is_some() { 0.0 } else { opts.val_fraction.unwrap_or(0.1) };
     if !(0.0..0.9).contains(&val_fraction) {
         return Err(Error::Invalid("--val-fraction must be in [0, 0.9)".into()));
     }
-    let (train_idx, val_idx) = split_rows(x.rows, val_fraction, opts.seed.unwrap_or(0));
-    let train_x = x.select_rows(&train_idx);
+    let (train_idx, _) = split_rows(x.rows, val_fraction, seed);
     let method = opts.method.unwrap_or(Method::Pca);
     let dead_threshold = opts.dead_threshold.unwrap_or(DEFAULT_DEAD_THRESHOLD);
-    let pre = Preprocessor::fit(&train_x, method, dead_threshold).map_err(Error::Invalid)?;
-    let d = pre.dim();
-    let settings = Settings::resolve(opts, train_idx.len(), d)?;
-    let k = settings.flow_dims;
-    if !opts.quiet {
-        eprintln!("settings: {}", serde_json::to_string(&settings).map_err(|e| Error::Invalid(e.to_string()))?);
-    }
-
-    let whiten = |m: &Matrix| {
-        let mut u = vec![0.0f32; m.rows * d];
-        pre.transform(&m.data, m.rows, &mut u);
-        u
-    };
-    let u_train = whiten(&train_x);
-    drop(train_x);
-    let u_val = whiten(&x.select_rows(&val_idx));
-    let head =
-        |u: &[f32], rows: usize| -> Vec<f32> { (0..rows).flat_map(|r| u[r * d..r * d + k].iter().copied()).collect() };
-    let (n_train, n_val) = (train_idx.len(), val_idx.len());
-    let h_train = head(&u_train, n_train);
-    let h_val = head(&u_val, n_val);
-
+    let pre = Preprocessor::fit(x, &train_idx, method, dead_threshold).map_err(Error::Invalid)?;
+    let settings = Settings::resolve(opts, train_idx.len(), pre.dim(), run.val.is_some())?;
     let spec = FlowSpec {
-        dim: k,
+        dim: settings.flow_dims,
         layers: settings.layers,
         hidden: settings.hidden,
         depth: settings.depth,
         clamp: settings.clamp,
     };
-    let mut flow = Flow::new(spec, settings.seed);
-    let mut workers = Workers::new(&flow, settings.threads, settings.batch_size);
-    // Candidate 0: the identity flow, i.e. the whitened Gaussian.
-    let mean_nll = |flow: &Flow, workers: &mut Workers, h: &[f32], rows: usize| -> f64 {
-        let mut out = vec![0.0; rows];
-        workers.nll(flow, h, rows, &mut out);
-        out.iter().sum::<f64>() / rows.max(1) as f64
+    let flow = Flow::new(spec, settings.seed);
+    let model = Model { meta: skeleton_meta(x.cols, &pre, &flow, &settings, run.labels)?, pre, flow };
+    let n = model.flow.param_count();
+    let mut learned = Learned {
+        best_params: model.flow.params.clone(),
+        adam: Adam::new(n),
+        state: TrainState {
+            epoch: 1,
+            batch: 0,
+            step: 0,
+            adam_t: 0,
+            train_sum: 0.0,
+            grad_norm_sum: 0.0,
+            best_val: f64::INFINITY,
+            best_epoch: 0,
+            since_best: 0,
+            gaussian_val: f64::NAN,
+            lr_scale: 1.0,
+            retries: 0,
+            seconds: 0.0,
+            log: Vec::new(),
+            data: Fingerprint::of(x),
+            val_data: run.val.map(Fingerprint::of),
+        },
+        model,
+        settings,
     };
-    let (eval_h, eval_n) = if n_val > 0 { (&h_val, n_val) } else { (&h_train, n_train) };
-    let gaussian_nll = mean_nll(&flow, &mut workers, eval_h, eval_n);
-    let mut best = (gaussian_nll, flow.params.clone(), 0usize);
-    flow.init_actnorm(&h_train, n_train.min(4096));
+    // Candidate 0: the untrained (identity) flow, i.e. the whitened Gaussian.
+    let rows = Rows::new(run, &learned.settings);
+    let gaussian = rows.val_nll(&learned.model, learned.settings.threads);
+    learned.state.gaussian_val = gaussian;
+    learned.state.best_val = gaussian;
+    let init_rows = &rows.train[..rows.train.len().min(4096)];
+    let head = rows.whitened_head(&learned.model, init_rows);
+    learned.model.flow.init_actnorm(&head, init_rows.len());
+    Ok(learned)
+}
 
-    let steps_per_epoch = n_train.div_ceil(settings.batch_size);
-    let total_steps = steps_per_epoch * settings.epochs;
-    let mut adam = Adam::new(flow.param_count());
-    let mut grad = vec![0.0f32; flow.param_count()];
-    let mut batch = vec![0.0f32; settings.batch_size * k];
-    let mut rng = StdRng::seed_from_u64(settings.seed.wrapping_add(1));
-    let mut order: Vec<usize> = (0..n_train).collect();
-    let progress = Progress::new(settings.epochs, opts.quiet);
-    // Constant added to flow NLLs to report them per input-space vector.
-    let offset = (d - k) as f64 * (0.5 + crate::flow::HALF_LN_2PI) - pre.log_det();
-    let mut step = 0usize;
-    let mut since_best = 0usize;
-    let mut epochs_run = 0usize;
-    for epoch in 1..=settings.epochs {
-        order.shuffle(&mut rng);
-        let mut train_sum = 0.0;
-        for chunk in order.chunks(settings.batch_size) {
-            let rows = chunk.len();
-            for (r, &i) in chunk.iter().enumerate() {
-                batch[r * k..(r + 1) * k].copy_from_slice(&h_train[i * k..(i + 1) * k]);
-            }
-            let noise = settings.noise as f32;
-            if noise > 0.0 {
-                for v in &mut batch[..rows * k] {
+/// The model metadata known before training (the summary is filled at the end).
+fn skeleton_meta(cols: usize, pre: &Preprocessor, flow: &Flow, s: &Settings, labels: Option<&[i64]>) -> Result<Meta> {
+    Ok(Meta {
+        format: "tidemark-model".into(),
+        format_version: FORMAT_VERSION,
+        created_by: format!("tidemark {}", env!("CARGO_PKG_VERSION")),
+        input_dim: cols,
+        preprocessing: PreprocessingMeta {
+            method: pre.method,
+            live_features: pre.dim(),
+            dead_features: pre.dead.clone(),
+            dead_threshold: s.dead_threshold,
+            floored_components: pre.floored,
+            log_det: pre.log_det(),
+        },
+        flow_dims: s.flow_dims,
+        flow: flow.spec.clone(),
+        seed: s.seed,
+        training: TrainingSummary {
+            settings: serde_json::to_value(s).map_err(|e| Error::Invalid(e.to_string()))?,
+            ..TrainingSummary::default()
+        },
+        train_log_likelihood: Spread::default(),
+        classes: class_counts(labels.unwrap_or(&[])),
+    })
+}
+
+/// Reload a checkpoint and check that the data is the same.
+fn resume(path: &Path, run: &Run) -> Result<Learned> {
+    let (model, extras) = Model::load_with(path)?;
+    let state: TrainState = serde_json::from_str(&extras.metadata(CHECKPOINT_KEY)?)
+        .map_err(|e| Error::model(path, format!("bad checkpoint state: {e}")))?;
+    let settings: Settings = serde_json::from_value(model.meta.training.settings.clone())
+        .map_err(|e| Error::model(path, format!("bad checkpoint settings: {e}")))?;
+    let refuse = |what: &Path, fp: &Fingerprint| {
+        Error::Invalid(format!(
+            "{}: differs from the data this run was started on ({} x {}, checksum {:016x}); resume needs the same file",
+            what.display(),
+            fp.rows,
+            fp.cols,
+            fp.checksum
+        ))
+    };
+    if Fingerprint::of(run.data) != state.data {
+        return Err(refuse(&run.data.path, &state.data));
+    }
+    match (run.val, &state.val_data) {
+        (Some(v), Some(fp)) if Fingerprint::of(v) != *fp => return Err(refuse(&v.path, fp)),
+        (None, Some(_)) | (Some(_), None) => {
+            return Err(Error::Invalid(
+                "give --val on resume exactly when the run was started with it".into(),
+            ))
+        }
+        _ => {}
+    }
+    let n = model.flow.param_count();
+    let adam = Adam { m: extras.tensor("checkpoint.adam_m", n)?, v: extras.tensor("checkpoint.adam_v", n)?, t: state.adam_t };
+    let best_params = extras.tensor("checkpoint.best_params", n)?;
+    Ok(Learned { model, settings, state, best_params, adam })
+}
+
+/// Train and validation rows, and how to whiten them.
+struct Rows<'a> {
+    data: &'a Dataset,
+    train: Vec<usize>,
+    val_data: &'a Dataset,
+    val: Vec<usize>,
+}
+
+impl<'a> Rows<'a> {
+    fn new(run: &Run<'a>, s: &Settings) -> Rows<'a> {
+        let (train, val) = split_rows(run.data.rows, s.val_fraction, s.seed);
+        match run.val {
+            Some(v) => Rows { data: run.data, train, val_data: v, val: (0..v.rows).collect() },
+            // Without validation rows the training rows stand in.
+            None if val.is_empty() => Rows { data: run.data, val: train.clone(), train, val_data: run.data },
+            None => Rows { data: run.data, train, val_data: run.data, val },
+        }
+    }
+
+    /// The flow's part of the whitened rows `idx` of the training data.
+    fn whitened_head(&self, model: &Model, idx: &[usize]) -> Vec<f32> {
+        let (d, k) = (model.dim(), model.meta.flow_dims);
+        let mut raw = Vec::new();
+        self.data.gather(idx, &mut raw);
+        let mut u = vec![0.0f32; idx.len() * d];
+        model.pre.transform(&raw, idx.len(), &mut u);
+        if k == d {
+            return u;
+        }
+        u.chunks(d).flat_map(|r| r[..k].iter().copied()).collect()
+    }
+
+    /// Mean negative log-likelihood of the validation rows, nats per vector.
+    fn val_nll(&self, model: &Model, threads: usize) -> f64 {
+        let ll = model.evaluate_rows(self.val_data, &self.val, threads).log_likelihood;
+        -ll.iter().sum::<f64>() / ll.len() as f64
+    }
+}
+
+/// Why the training loop stopped before its end.
+enum Halt {
+    Interrupted,
+    Diverged(usize),
+}
+
+fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant) -> Result<()> {
+    let s = l.settings.clone();
+    let rows = Rows::new(run, &s);
+    let (d, k) = (l.model.dim(), s.flow_dims);
+    let n_train = rows.train.len();
+    let steps_per_epoch = n_train.div_ceil(s.batch_size);
+    let total_steps = steps_per_epoch * s.epochs;
+    let mut workers = Workers::new(&l.model.flow, s.threads, s.batch_size);
+    let mut grad = vec![0.0f32; l.model.flow.param_count()];
+    let decay = decay_mask(&l.model.flow);
+    let progress = Progress::new(s.epochs, l.state.epoch - 1, opts.quiet);
+    let seconds_before = l.state.seconds;
+    let mut last_checkpoint = Instant::now();
+    let mut injected = false;
+    // The last good state, for rolling back after a divergence.
+    let mut snapshot = (l.model.flow.params.clone(), l.adam.clone(), l.state.clone());
+    let mut epoch_started = Instant::now();
+    let mut epoch_samples = 0usize;
+    'epochs: while l.state.epoch <= s.epochs {
+        let mut order = rows.train.clone();
+        order.shuffle(&mut StdRng::seed_from_u64(derive(s.seed, 2, l.state.epoch as u64)));
+        if l.state.batch == 0 {
+            snapshot = (l.model.flow.params.clone(), l.adam.clone(), l.state.clone());
+        }
+        while l.state.batch < steps_per_epoch {
+            let chunk = &order[l.state.batch * s.batch_size..((l.state.batch + 1) * s.batch_size).min(n_train)];
+            let mut batch = rows.whitened_head(&l.model, chunk);
+            if s.noise > 0.0 {
+                let mut rng = StdRng::seed_from_u64(derive(s.seed, 3, l.state.step as u64));
+                let noise = s.noise as f32;
+                for v in &mut batch {
                     *v += noise * <StandardNormal as Distribution<f32>>::sample(&StandardNormal, &mut rng);
                 }
             }
-            let dropout = (settings.dropout > 0.0)
-                .then(|| (settings.dropout as f32, settings.seed ^ (step as u64).wrapping_mul(0x9E37_79B9)));
-            let nll = workers.nll_and_grad(&flow, &batch, rows, dropout, &mut grad);
-            if !nll.is_finite() || grad.iter().any(|g| !g.is_finite()) {
-                return Err(Error::Invalid(format!(
-                    "training diverged at epoch {epoch} (non-finite loss); try a smaller --lr or a smaller --clamp"
-                )));
+            let dropout = (s.dropout > 0.0).then(|| (s.dropout as f32, derive(s.seed, 4, l.state.step as u64)));
+            let nll = workers.nll_and_grad(&l.model.flow, &batch, chunk.len(), dropout, &mut grad);
+            if opts.inject_nan_at_step == Some(l.state.step) && !injected {
+                injected = true;
+                grad[0] = f32::NAN;
             }
-            clip_norm(&mut grad, settings.grad_clip);
-            adam.step(&mut flow.params, &grad, learning_rate(settings.lr, step, total_steps, settings.warmup_fraction));
-            train_sum += nll * rows as f64;
-            step += 1;
+            if !nll.is_finite() || grad.iter().any(|g| !g.is_finite()) {
+                if l.state.retries >= s.max_retries {
+                    stop_early(run, l, Halt::Diverged(l.state.epoch))?;
+                }
+                let (retries, lr_scale) = (l.state.retries + 1, l.state.lr_scale * 0.5);
+                l.model.flow.params.clone_from(&snapshot.0);
+                l.adam = snapshot.1.clone();
+                l.state = snapshot.2.clone();
+                l.state.retries = retries;
+                l.state.lr_scale = lr_scale;
+                if !opts.quiet {
+                    progress.note(&format!(
+                        "non-finite loss or gradient: rolled back to epoch {} batch {}, learning rate x{lr_scale} (retry {retries} of {})",
+                        l.state.epoch, l.state.batch, s.max_retries
+                    ));
+                }
+                continue 'epochs;
+            }
+            let grad_norm = clip_norm(&mut grad, s.grad_clip);
+            let lr = learning_rate(s.lr, l.state.step, total_steps, s.warmup_fraction) * l.state.lr_scale;
+            l.adam.step(&mut l.model.flow.params, &grad, lr, s.weight_decay, &decay);
+            l.state.adam_t = l.adam.t;
+            l.state.train_sum += nll * chunk.len() as f64;
+            l.state.grad_norm_sum += grad_norm;
+            l.state.batch += 1;
+            l.state.step += 1;
+            epoch_samples += chunk.len();
+            l.state.seconds = seconds_before + started.elapsed().as_secs_f64();
+            if run.stop.is_some_and(|f| f.load(Ordering::SeqCst)) {
+                stop_early(run, l, Halt::Interrupted)?;
+            }
+            if last_checkpoint.elapsed().as_secs_f64() >= s.checkpoint_minutes * 60.0 {
+                save_checkpoint(run, l)?;
+                last_checkpoint = Instant::now();
+            }
         }
-        epochs_run = epoch;
-        let train_nll = train_sum / n_train as f64 + offset;
-        let val_nll = mean_nll(&flow, &mut workers, eval_h, eval_n);
-        let improved = val_nll < best.0;
+        // End of epoch: validate, log, keep the best, checkpoint.
+        let offset = (d - k) as f64 * (0.5 + HALF_LN_2PI) - l.model.pre.log_det();
+        let train_nll = l.state.train_sum / n_train as f64 + offset;
+        let val_nll = rows.val_nll(&l.model, s.threads);
+        let improved = val_nll < l.state.best_val;
         if improved {
-            best = (val_nll, flow.params.clone(), epoch);
-            since_best = 0;
+            l.state.best_val = val_nll;
+            l.state.best_epoch = l.state.epoch;
+            l.state.since_best = 0;
+            l.best_params.clone_from(&l.model.flow.params);
         } else {
-            since_best += 1;
+            l.state.since_best += 1;
         }
-        progress.epoch(epoch, train_nll / d as f64, (val_nll + offset) / d as f64, improved);
-        if since_best >= settings.patience {
+        let rate = epoch_samples as f64 / epoch_started.elapsed().as_secs_f64().max(1e-9);
+        l.state.log.push(LogEntry {
+            epoch: l.state.epoch,
+            step: l.state.step,
+            lr: learning_rate(s.lr, l.state.step.saturating_sub(1), total_steps, s.warmup_fraction) * l.state.lr_scale,
+            train_nll: train_nll / d as f64,
+            val_nll: val_nll / d as f64,
+            grad_norm: l.state.grad_norm_sum / steps_per_epoch as f64,
+            seconds: l.state.seconds,
+        });
+        progress.epoch(l.state.epoch, train_nll / d as f64, val_nll / d as f64, rate, improved);
+        let epoch = l.state.epoch;
+        l.state.epoch += 1;
+        l.state.batch = 0;
+        l.state.train_sum = 0.0;
+        l.state.grad_norm_sum = 0.0;
+        epoch_started = Instant::now();
+        epoch_samples = 0;
+        write_log(run, &l.state.log)?;
+        let done = l.state.since_best >= s.patience || l.state.epoch > s.epochs;
+        if improved || epoch % s.checkpoint_every == 0 || done {
+            save_checkpoint(run, l)?;
+            last_checkpoint = Instant::now();
+        }
+        if done {
             break;
         }
     }
     progress.finish();
-    flow.params = best.1;
+    Ok(())
+}
 
-    // Log-likelihood spread over the training rows (for typicality scores).
-    let mut train_nll_rows = vec![0.0; n_train];
-    workers.nll(&flow, &h_train, n_train, &mut train_nll_rows);
-    let ll: Vec<f64> = (0..n_train)
-        .map(|r| {
-            let tail: f64 = u_train[r * d + k..(r + 1) * d]
-                .iter()
-                .map(|&v| 0.5 * (v as f64).powi(2) + crate::flow::HALF_LN_2PI)
-                .sum();
-            -train_nll_rows[r] - tail + pre.log_det()
-        })
-        .collect();
-    let ll_mean = ll.iter().sum::<f64>() / n_train as f64;
-    let ll_std = (ll.iter().map(|v| (v - ll_mean).powi(2)).sum::<f64>() / n_train as f64).sqrt();
+/// Conditioner weight matrices take weight decay; biases and ActNorm do not
+/// (common practice).
+fn decay_mask(flow: &Flow) -> Vec<bool> {
+    let mut mask = vec![false; flow.param_count()];
+    for slot in &flow.slots {
+        for lin in &slot.linears {
+            mask[lin.weight..lin.weight + lin.out * lin.inp].fill(true);
+        }
+    }
+    mask
+}
 
-    let meta = Meta {
-        format: "tidemark-model".into(),
-        format_version: FORMAT_VERSION,
-        created_by: format!("tidemark {}", env!("CARGO_PKG_VERSION")),
-        input_dim: x.cols,
-        preprocessing: PreprocessingMeta {
-            method,
-            live_features: d,
-            dead_features: pre.dead.clone(),
-            dead_threshold,
-            floored_components: pre.floored,
-            log_det: pre.log_det(),
-        },
-        flow_dims: k,
-        flow: flow.spec.clone(),
-        seed: settings.seed,
-        training: TrainingSummary {
-            settings: serde_json::to_value(&settings).map_err(|e| Error::Invalid(e.to_string()))?,
-            train_rows: n_train,
-            validation_rows: n_val,
-            epochs_run,
-            best_epoch: best.2,
-            best_train_nll: -ll_mean,
-            best_validation_nll: best.0 + offset,
-            gaussian_validation_nll: gaussian_nll + offset,
-            seconds: started.elapsed().as_secs_f64(),
-        },
-        train_log_likelihood: Spread { mean: ll_mean, std: ll_std },
-        classes: class_counts(labels.unwrap_or(&[])),
+/// Write a checkpoint and the best model so far, then report why training
+/// stopped (always an error: the run did not finish).
+fn stop_early(run: &Run, l: &mut Learned, why: Halt) -> Result<()> {
+    save_checkpoint(run, l)?;
+    let mut best = Learned {
+        model: l.model.clone(),
+        settings: l.settings.clone(),
+        state: l.state.clone(),
+        best_params: l.best_params.clone(),
+        adam: Adam::new(0),
     };
-    Ok(Model { meta, pre, flow })
+    best.model.flow.params = l.best_params.clone();
+    finish(run, &mut best)?;
+    if let Some(out) = run.output {
+        best.model.save(out)?;
+    }
+    let wrote = run.output.map(|p| format!("; best model so far written to {}", p.display())).unwrap_or_default();
+    match why {
+        Halt::Interrupted => Err(Error::Interrupted(match &run.checkpoint {
+            Some(ck) => format!(
+                "interrupted at epoch {}; checkpoint {}{wrote}; continue with: tidemark fit {} --resume {} -o {}",
+                l.state.epoch,
+                ck.display(),
+                run.data.path.display(),
+                ck.display(),
+                run.output.map(|p| p.display().to_string()).unwrap_or_default()
+            ),
+            None => format!("interrupted at epoch {}{wrote}", l.state.epoch),
+        })),
+        Halt::Diverged(epoch) => Err(Error::Invalid(format!(
+            "training diverged at epoch {epoch} after {} rollbacks (non-finite loss or gradient){wrote}; try a smaller --lr or --clamp",
+            l.state.retries
+        ))),
+    }
+}
+
+fn save_checkpoint(run: &Run, l: &Learned) -> Result<()> {
+    let Some(path) = &run.checkpoint else { return Ok(()) };
+    let state = serde_json::to_string(&l.state).map_err(|e| Error::Invalid(e.to_string()))?;
+    let extra = vec![
+        ("checkpoint.best_params".to_string(), &l.best_params[..]),
+        ("checkpoint.adam_m".to_string(), &l.adam.m[..]),
+        ("checkpoint.adam_v".to_string(), &l.adam.v[..]),
+    ];
+    l.model.save_with(path, extra, Some((CHECKPOINT_KEY, state)))
+}
+
+fn write_log(run: &Run, log: &[LogEntry]) -> Result<()> {
+    let Some(path) = run.log else { return Ok(()) };
+    crate::output::write_atomic(path, |w| {
+        for entry in log {
+            let line = serde_json::to_string(entry).map_err(|e| Error::Invalid(e.to_string()))?;
+            writeln!(w, "{line}").map_err(|source| Error::Io { path: path.to_path_buf(), source })?;
+        }
+        Ok(())
+    })
+}
+
+/// Fill the training summary and the training log-likelihood spread.
+fn finish(run: &Run, l: &mut Learned) -> Result<()> {
+    let rows = Rows::new(run, &l.settings);
+    let mut sample = rows.train.clone();
+    if sample.len() > SPREAD_ROWS {
+        sample.shuffle(&mut StdRng::seed_from_u64(derive(l.settings.seed, 5, 0)));
+        sample.truncate(SPREAD_ROWS);
+        sample.sort_unstable();
+    }
+    let ll = l.model.evaluate_rows(run.data, &sample, l.settings.threads).log_likelihood;
+    let mean = ll.iter().sum::<f64>() / ll.len() as f64;
+    let std = (ll.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / ll.len() as f64).sqrt();
+    let st = &l.state;
+    let t = &mut l.model.meta.training;
+    t.train_rows = rows.train.len();
+    t.validation_rows = if run.val.is_some() || l.settings.val_fraction > 0.0 { rows.val.len() } else { 0 };
+    t.epochs_run = st.log.len();
+    t.best_epoch = st.best_epoch;
+    t.best_train_nll = -mean;
+    t.best_validation_nll = st.best_val;
+    t.gaussian_validation_nll = st.gaussian_val;
+    l.model.meta.train_log_likelihood = Spread { mean, std };
+    Ok(())
 }
 
 fn class_counts(labels: &[i64]) -> Vec<ClassCount> {
@@ -385,13 +787,15 @@ fn class_counts(labels: &[i64]) -> Vec<ClassCount> {
     counts.into_iter().map(|(label, rows)| ClassCount { label, rows }).collect()
 }
 
-/// Scale `g` down to global norm `max` when it is longer.
-fn clip_norm(g: &mut [f32], max: f64) {
+/// Scale `g` down to global norm `max` when it is longer; returns the norm
+/// before clipping.
+fn clip_norm(g: &mut [f32], max: f64) -> f64 {
     let norm = g.iter().map(|&v| (v as f64) * (v as f64)).sum::<f64>().sqrt();
     if norm > max {
         let s = (max / norm) as f32;
         g.iter_mut().for_each(|v| *v *= s);
     }
+    norm
 }
 
 /// Epoch progress on stderr: a bar on a terminal, one line per epoch otherwise.
@@ -402,21 +806,22 @@ struct Progress {
 }
 
 impl Progress {
-    fn new(epochs: usize, quiet: bool) -> Progress {
+    fn new(epochs: usize, done: usize, quiet: bool) -> Progress {
         let bar = (!quiet && std::io::stderr().is_terminal()).then(|| {
             let bar = ProgressBar::new(epochs as u64);
             bar.set_style(
                 ProgressStyle::with_template("{bar:30} epoch {pos}/{len} {msg} [{elapsed_precise} < {eta_precise}]")
                     .expect("valid template"),
             );
+            bar.set_position(done as u64);
             bar
         });
         Progress { bar, quiet, started: Instant::now() }
     }
 
-    fn epoch(&self, epoch: usize, train: f64, val: f64, improved: bool) {
+    fn epoch(&self, epoch: usize, train: f64, val: f64, rate: f64, improved: bool) {
         let mark = if improved { " *" } else { "" };
-        let msg = format!("train NLL {train:.4} val NLL {val:.4} nats/dim{mark}");
+        let msg = format!("train NLL {train:.4} val NLL {val:.4} nats/dim, {rate:.0} vec/s{mark}");
         match &self.bar {
             Some(bar) => {
                 bar.set_position(epoch as u64);
@@ -424,6 +829,13 @@ impl Progress {
             }
             None if !self.quiet => eprintln!("epoch {epoch:>4}  {msg}  ({:.1}s)", self.started.elapsed().as_secs_f64()),
             None => {}
+        }
+    }
+
+    fn note(&self, msg: &str) {
+        match &self.bar {
+            Some(bar) => bar.println(msg),
+            None => eprintln!("{msg}"),
         }
     }
 
@@ -449,12 +861,13 @@ mod tests {
 
     /// Adam's first step moves every parameter by lr against the sign of
     /// its gradient (bias correction makes m/sqrt(v) = sign(g); Kingma & Ba).
+    /// Decoupled weight decay then shrinks by lr * wd on top.
     #[test]
-    fn adam_first_step_is_lr_times_sign() {
+    fn adam_first_step_is_lr_times_sign_plus_decoupled_decay() {
         let mut p = vec![1.0f32, 1.0, 1.0];
         let mut adam = Adam::new(3);
-        adam.step(&mut p, &[0.5, -2.0, 1e-3], 0.01);
-        for (v, want) in p.iter().zip([0.99, 1.01, 0.99]) {
+        adam.step(&mut p, &[0.5, -2.0, 1e-3], 0.01, 0.5, &[false, false, true]);
+        for (v, want) in p.iter().zip([0.99, 1.01, 1.0 - 0.005 - 0.01]) {
             assert!((v - want).abs() < 1e-5, "{v} vs {want}");
         }
     }

@@ -3,7 +3,7 @@
 use rand::rngs::StdRng;
 use rand::SeedableRng;
 use rand_distr::{Distribution, StandardNormal};
-use tidemark::data::Matrix;
+use tidemark::data::{Dataset, Matrix};
 use tidemark::train::{fit, FitOptions};
 
 fn quiet() -> FitOptions {
@@ -40,8 +40,8 @@ fn held_out_nll_of_a_correlated_gaussian_matches_its_entropy() {
         }
         a[i * d + i] = 0.5 + 0.25 * i as f64;
     }
-    let train = correlated_gaussian(&a, d, 20_000, 1);
-    let test = correlated_gaussian(&a, d, 5_000, 2);
+    let train = Dataset::in_memory(correlated_gaussian(&a, d, 20_000, 1));
+    let test = Dataset::in_memory(correlated_gaussian(&a, d, 5_000, 2));
     let model = fit(&train, None, &quiet()).unwrap();
     let nll = -mean(&model.evaluate(&test, 2).log_likelihood);
     let ln_det: f64 = (0..d).map(|i| 2.0 * a[i * d + i].ln()).sum();
@@ -57,10 +57,10 @@ fn held_out_nll_of_a_correlated_gaussian_matches_its_entropy() {
 fn scaling_the_data_shifts_log_likelihood_by_d_ln_c() {
     let x = banana(3000, 5);
     let opts = FitOptions { epochs: Some(5), ..quiet() };
-    let base = fit(&x, None, &opts).unwrap();
-    let ll = base.evaluate(&x, 2).log_likelihood;
+    let base = fit(&Dataset::in_memory(x.clone()), None, &opts).unwrap();
+    let ll = base.evaluate(&Dataset::in_memory(x.clone()), 2).log_likelihood;
     for c in [4.0f32, 0.25] {
-        let scaled = Matrix::new(x.rows, x.cols, x.data.iter().map(|v| v * c).collect());
+        let scaled = Dataset::in_memory(Matrix::new(x.rows, x.cols, x.data.iter().map(|v| v * c).collect()));
         let model = fit(&scaled, None, &opts).unwrap();
         let ll_c = model.evaluate(&scaled, 2).log_likelihood;
         let shift = -(x.cols as f64) * (c as f64).ln();
@@ -105,8 +105,8 @@ fn gaussian_log_density(train: &Matrix, test: &Matrix) -> Vec<f64> {
 fn flow_beats_a_full_covariance_gaussian_on_a_curved_density() {
     let train = banana(8000, 1);
     let test = banana(2000, 2);
-    let model = fit(&train, None, &FitOptions { epochs: Some(40), ..quiet() }).unwrap();
-    let flow_ll = mean(&model.evaluate(&test, 2).log_likelihood);
+    let model = fit(&Dataset::in_memory(train.clone()), None, &FitOptions { epochs: Some(40), ..quiet() }).unwrap();
+    let flow_ll = mean(&model.evaluate(&Dataset::in_memory(test.clone()), 2).log_likelihood);
     let gauss_ll = mean(&gaussian_log_density(&train, &test));
     // The banana's true entropy is well below the Gaussian's: expect a clear gap.
     assert!(flow_ll > gauss_ll + 0.3, "flow {flow_ll:.4} vs Gaussian {gauss_ll:.4} nats/vector");
