@@ -36,6 +36,9 @@ pub struct FlowSpec {
     pub depth: usize,
     /// Soft clamp `c` of the log-scale: `s = c * tanh(r / c)`.
     pub clamp: f32,
+    /// Classes with a learned base mean each (0: one standard normal base).
+    #[serde(default)]
+    pub classes: usize,
 }
 
 /// Where one linear layer's weight (`out x inp`, row-major) and bias live in
@@ -63,8 +66,9 @@ impl FlowSpec {
         (d1, self.dim - d1)
     }
 
-    /// Offsets of every parameter tensor, and the total parameter count.
-    pub fn layout(&self) -> (Vec<LayerSlots>, usize) {
+    /// Offsets of every layer's parameters, of the class means (`classes x
+    /// dim`, after all layers), and the total parameter count.
+    pub fn layout(&self) -> (Vec<LayerSlots>, usize, usize) {
         let (d1, d2) = self.split();
         let mut next = 0usize;
         let mut take = |n: usize| {
@@ -85,7 +89,8 @@ impl FlowSpec {
                 .collect();
             layers.push(LayerSlots { log_scale, bias, linears });
         }
-        (layers, next)
+        let class_means = take(self.classes * self.dim);
+        (layers, class_means, next)
     }
 }
 
@@ -94,6 +99,8 @@ impl FlowSpec {
 pub struct Flow {
     pub spec: FlowSpec,
     pub slots: Vec<LayerSlots>,
+    /// Offset of the class means in `params`.
+    pub class_means: usize,
     /// All trainable parameters, one flat vector (the optimizer works on it whole).
     pub params: Vec<f32>,
     /// For each layer, `perm[j]` is the input feature placed at position `j`.
@@ -107,7 +114,7 @@ impl Flow {
     pub fn new(spec: FlowSpec, seed: u64) -> Flow {
         assert!(spec.depth >= 1, "a conditioner needs at least one hidden layer");
         assert!(spec.layers == 0 || spec.dim >= 2, "coupling needs at least two features");
-        let (slots, total) = spec.layout();
+        let (slots, class_means, total) = spec.layout();
         let mut rng = StdRng::seed_from_u64(seed);
         let mut params = vec![0.0f32; total];
         for layer in &slots {
@@ -126,7 +133,7 @@ impl Flow {
                 p
             })
             .collect();
-        Flow { spec, slots, params, perms }
+        Flow { spec, slots, class_means, params, perms }
     }
 
     /// Reset ActNorm to the identity and zero every conditioner's output
@@ -163,6 +170,12 @@ impl Flow {
 
     pub fn param_count(&self) -> usize {
         self.params.len()
+    }
+
+    /// Base mean of class `c` (class-conditional flows).
+    pub fn class_mean(&self, c: usize) -> &[f32] {
+        let at = self.class_means + c * self.spec.dim;
+        &self.params[at..at + self.spec.dim]
     }
 }
 
@@ -352,24 +365,31 @@ pub fn forward(flow: &Flow, ws: &mut Workspace, x: &[f32], rows: usize, dropout:
     }
 }
 
-/// Per-row negative log-density of the flow's own input, `-log p(x)` in
-/// nats, from a finished forward pass: `0.5 ||z||^2 + (d/2) ln 2pi - logdet`.
-pub fn nll_rows(flow: &Flow, ws: &Workspace, rows: usize, out: &mut [f64]) {
-    for (r, o) in out[..rows].iter_mut().enumerate() {
-        *o = row_nll(flow, ws, r);
-    }
-}
-
-fn row_nll(flow: &Flow, ws: &Workspace, r: usize) -> f64 {
+/// Negative log-density of row `r` of a finished forward pass, `-log p(x)`
+/// in nats: `0.5 ||z - mu||^2 + (d/2) ln 2pi - logdet`, where `mu` is the
+/// row's class mean (zero without a class).
+fn row_nll(flow: &Flow, ws: &Workspace, r: usize, class: Option<u32>) -> f64 {
     let dim = flow.spec.dim;
     let at = flow.spec.layers * ws.cap * dim + r * dim;
-    let sq: f64 = ws.acts[at..at + dim].iter().map(|&v| (v as f64) * (v as f64)).sum();
+    let z = &ws.acts[at..at + dim];
+    let sq: f64 = match class {
+        Some(c) => z.iter().zip(flow.class_mean(c as usize)).map(|(&v, &m)| ((v - m) as f64).powi(2)).sum(),
+        None => z.iter().map(|&v| (v as f64) * (v as f64)).sum(),
+    };
     0.5 * sq + dim as f64 * HALF_LN_2PI - ws.logdet[r]
 }
 
 /// Backward pass of `scale * sum_rows NLL` after [`forward`] on the same
-/// rows; adds the gradient with respect to every parameter into `grad`.
-pub fn backward_nll(flow: &Flow, ws: &mut Workspace, rows: usize, scale: f32, grad: &mut [f32]) {
+/// rows (with their class labels, for a class-conditional flow); adds the
+/// gradient with respect to every parameter into `grad`.
+pub fn backward_nll(
+    flow: &Flow,
+    ws: &mut Workspace,
+    rows: usize,
+    classes: Option<&[u32]>,
+    scale: f32,
+    grad: &mut [f32],
+) {
     let spec = &flow.spec;
     let (dim, hid, cap) = (spec.dim, spec.hidden, ws.cap);
     let (d1, d2) = spec.split();
@@ -381,6 +401,17 @@ pub fn backward_nll(flow: &Flow, ws: &mut Workspace, rows: usize, scale: f32, gr
     let z = &acts[spec.layers * cap * dim..spec.layers * cap * dim + rows * dim];
     for (gv, &zv) in g[..rows * dim].iter_mut().zip(z) {
         *gv = scale * zv;
+    }
+    // With class means: dL/dz = scale (z - mu_c) and dL/dmu_c = -sum of those.
+    if let Some(classes) = classes {
+        for (r, &c) in classes[..rows].iter().enumerate() {
+            let at = flow.class_means + c as usize * dim;
+            for j in 0..dim {
+                let gv = &mut g[r * dim + j];
+                *gv -= scale * params[at + j];
+                grad[at + j] -= *gv;
+            }
+        }
     }
     let hidden_block = cap * hid;
     for k in (0..spec.layers).rev() {
@@ -523,11 +554,13 @@ impl Workers {
         useful.min(self.pool.len()).max(rows.div_ceil(self.chunk_cap))
     }
 
-    /// Mean NLL over `rows` rows of `x` and its gradient (written to `grad`).
+    /// Mean NLL over `rows` rows of `x` (given their classes, for a
+    /// class-conditional flow) and its gradient (written to `grad`).
     pub fn nll_and_grad(
         &mut self,
         flow: &Flow,
         x: &[f32],
+        classes: Option<&[u32]>,
         rows: usize,
         dropout: Option<(f32, u64)>,
         grad: &mut [f32],
@@ -546,8 +579,9 @@ impl Workers {
             }
             let d = dropout.map(|(rate, seed)| Dropout { rate, seed, row_offset: start });
             forward(flow, ws, &x[start * dim..(start + n) * dim], n, d);
-            let total = (0..n).map(|r| row_nll(flow, ws, r)).sum();
-            backward_nll(flow, ws, n, scale, g);
+            let cls = classes.map(|c| &c[start..start + n]);
+            let total = (0..n).map(|r| row_nll(flow, ws, r, cls.map(|c| c[r]))).sum();
+            backward_nll(flow, ws, n, cls, scale, g);
             total
         };
         let pool = &mut self.pool[..parts];
@@ -568,8 +602,9 @@ impl Workers {
         totals.iter().sum::<f64>() / rows as f64
     }
 
-    /// Per-row NLL of the flow's input, any number of rows, written to `out`.
-    pub fn nll(&mut self, flow: &Flow, x: &[f32], rows: usize, out: &mut [f64]) {
+    /// Latent vectors (`rows x dim`) and log-determinants of any number of
+    /// rows of `x`, computed in blocks across the threads.
+    pub fn latent(&mut self, flow: &Flow, x: &[f32], rows: usize, z: &mut [f32], logdet: &mut [f64]) {
         let dim = flow.spec.dim;
         let block = self.chunk_cap * self.pool.len();
         let mut start = 0;
@@ -578,14 +613,17 @@ impl Workers {
             let parts = self.chunks(n);
             let per = n.div_ceil(parts);
             let xs = &x[start * dim..(start + n) * dim];
-            let outs = &mut out[start..start + n];
+            let zs = &mut z[start * dim..(start + n) * dim];
+            let ls = &mut logdet[start..start + n];
             let pool = &mut self.pool[..parts];
             std::thread::scope(|sc| {
-                for ((ws, _), (xc, oc)) in pool.iter_mut().zip(xs.chunks(per * dim).zip(outs.chunks_mut(per))) {
-                    let m = oc.len();
+                let pieces = xs.chunks(per * dim).zip(zs.chunks_mut(per * dim)).zip(ls.chunks_mut(per));
+                for ((ws, _), ((xc, zc), lc)) in pool.iter_mut().zip(pieces) {
+                    let m = lc.len();
                     let mut run = move || {
                         forward(flow, ws, xc, m, None);
-                        nll_rows(flow, ws, m, oc);
+                        zc.copy_from_slice(ws.latent(dim, flow.spec.layers, m));
+                        lc.copy_from_slice(&ws.logdet[..m]);
                     };
                     if parts == 1 {
                         run()
@@ -608,7 +646,7 @@ mod tests {
     use rand_distr::{Distribution, StandardNormal};
 
     fn spec(dim: usize, layers: usize, hidden: usize, depth: usize) -> FlowSpec {
-        FlowSpec { dim, layers, hidden, depth, clamp: 3.0 }
+        FlowSpec { dim, layers, hidden, depth, clamp: 3.0, classes: 0 }
     }
 
     /// A flow with every parameter random (non-identity ActNorm, non-zero
@@ -628,9 +666,13 @@ mod tests {
     }
 
     fn fast(flow: &Flow, x: &[f32], rows: usize, dropout: Option<(f32, u64)>) -> (f64, Vec<f32>) {
+        fast_classes(flow, x, None, rows, dropout)
+    }
+
+    fn fast_classes(flow: &Flow, x: &[f32], c: Option<&[u32]>, rows: usize, d: Option<(f32, u64)>) -> (f64, Vec<f32>) {
         let mut workers = Workers::new(flow, 1, rows);
         let mut grad = vec![0.0; flow.param_count()];
-        let nll = workers.nll_and_grad(flow, x, rows, dropout, &mut grad);
+        let nll = workers.nll_and_grad(flow, x, c, rows, d, &mut grad);
         (nll, grad)
     }
 
@@ -645,18 +687,23 @@ mod tests {
     #[test]
     fn gradients_match_candle_autograd() {
         init_candle();
-        for (dim, layers, hidden, depth) in [(7, 3, 16, 2), (2, 2, 8, 1), (12, 2, 24, 3)] {
-            let flow = random_flow(spec(dim, layers, hidden, depth), 11 + dim as u64);
+        for (dim, layers, hidden, depth, classes) in [(7, 3, 16, 2, 0), (2, 2, 8, 1, 3), (12, 2, 24, 3, 2)] {
+            let flow = random_flow(FlowSpec { classes, ..spec(dim, layers, hidden, depth) }, 11 + dim as u64);
             let rows = 64;
             let x = normal(rows, dim, 5);
-            let (nll, grad) = fast(&flow, &x, rows, None);
-            let r = reference::evaluate(&flow, &x, rows).unwrap();
+            let labels: Vec<u32> = (0..rows as u32).map(|r| r % classes.max(1) as u32).collect();
+            let labels = (classes > 0).then_some(&labels[..]);
+            let (nll, grad) = fast_classes(&flow, &x, labels, rows, None);
+            let r = reference::evaluate(&flow, &x, labels, rows).unwrap();
             assert!((nll - r.mean_nll).abs() <= 1e-5 * r.mean_nll.abs().max(1.0), "{nll} vs {}", r.mean_nll);
             for layer in &flow.slots {
                 let mut tensors = vec![(layer.log_scale, dim), (layer.bias, dim)];
                 for lin in &layer.linears {
                     tensors.push((lin.weight, lin.out * lin.inp));
                     tensors.push((lin.bias, lin.out));
+                }
+                if layer.log_scale == 0 {
+                    tensors.push((flow.class_means, classes * dim));
                 }
                 for (at, n) in tensors {
                     let want = &r.grad[at..at + n];
@@ -678,7 +725,7 @@ mod tests {
         let x = normal(rows, 5, 9);
         let mut ws = Workspace::new(&flow.spec, rows);
         forward(&flow, &mut ws, &x, rows, None);
-        let r = reference::evaluate(&flow, &x, rows).unwrap();
+        let r = reference::evaluate(&flow, &x, None, rows).unwrap();
         for (a, b) in ws.latent(5, 4, rows).iter().zip(&r.z) {
             assert!((*a as f64 - b).abs() < 1e-4 * b.abs().max(1.0));
         }
@@ -739,12 +786,15 @@ mod tests {
         let rows = 30;
         let x = normal(rows, dim, 2);
         let mut workers = Workers::new(&flow, 2, 16);
-        let mut nll = vec![0.0; rows];
-        workers.nll(&flow, &x, rows, &mut nll);
+        let (mut z, mut logdet) = (vec![0.0; rows * dim], vec![0.0; rows]);
+        workers.latent(&flow, &x, rows, &mut z, &mut logdet);
         for r in 0..rows {
             let sq: f64 = x[r * dim..(r + 1) * dim].iter().map(|&v| (v as f64).powi(2)).sum();
             let want = 0.5 * sq + 0.5 * dim as f64 * (2.0 * std::f64::consts::PI).ln();
-            assert!((nll[r] - want).abs() < 1e-4, "{} vs {want}", nll[r]);
+            let got: f64 =
+                z[r * dim..(r + 1) * dim].iter().map(|&v| 0.5 * (v as f64).powi(2) + HALF_LN_2PI).sum::<f64>()
+                    - logdet[r];
+            assert!((got - want).abs() < 1e-4, "{got} vs {want}");
         }
     }
 
@@ -781,7 +831,7 @@ mod tests {
         let (n1, g1) = fast(&flow, &x, rows, Some((0.2, 7)));
         let mut workers = Workers::new(&flow, 3, rows);
         let mut g3 = vec![0.0; flow.param_count()];
-        let n3 = workers.nll_and_grad(&flow, &x, rows, Some((0.2, 7)), &mut g3);
+        let n3 = workers.nll_and_grad(&flow, &x, None, rows, Some((0.2, 7)), &mut g3);
         assert!((n1 - n3).abs() < 1e-6 * n1.abs());
         let top = g1.iter().fold(0.0f32, |m, v| m.max(v.abs()));
         for (a, b) in g1.iter().zip(&g3) {

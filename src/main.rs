@@ -1,13 +1,13 @@
 //! The `tidemark` command line: parses arguments and calls the library.
 
 use clap::{Args, Parser, Subcommand};
-use std::path::PathBuf;
-use std::process::ExitCode;
-use tidemark::preprocess::Method;
 use signal_hook::consts::{SIGINT, SIGTERM};
 use signal_hook::flag;
+use std::path::PathBuf;
+use std::process::ExitCode;
 use std::sync::atomic::AtomicBool;
 use std::sync::Arc;
+use tidemark::preprocess::Method;
 use tidemark::train::{default_threads, FitOptions, Run};
 use tidemark::{data, demo, model::Model, score, Result};
 
@@ -213,7 +213,11 @@ fn run(cli: Cli) -> Result<()> {
             };
             let val = a.val.as_deref().map(|p| data::Dataset::open(p, a.input.tensor.as_deref())).transpose()?;
             let stop = stop_on_signals();
-            let checkpoint = a.checkpoint.clone().or_else(|| a.resume.clone()).unwrap_or_else(|| a.output.with_extension("checkpoint.safetensors"));
+            let checkpoint = a
+                .checkpoint
+                .clone()
+                .or_else(|| a.resume.clone())
+                .unwrap_or_else(|| a.output.with_extension("checkpoint.safetensors"));
             let run = Run {
                 data: &x,
                 val: val.as_ref(),

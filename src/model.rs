@@ -159,17 +159,35 @@ pub struct Model {
     pub flow: Flow,
 }
 
-/// Per-row results of evaluating a model.
+/// Per-row results of evaluating a model. With `z` the full latent (the
+/// flow's output on the leading whitened dimensions, the rest as they are):
+/// `log_likelihood = base_log_density + log_det`.
 #[derive(Clone, Debug, Default)]
 pub struct Evaluation {
-    /// log p(x), nats, over the live features, in input space.
+    /// log p(x), nats, over the live features, in input space (for a
+    /// class-conditional model, the mixture over classes).
     pub log_likelihood: Vec<f64>,
+    /// log p(z) under the base distribution (mixture of class bases).
+    pub base_log_density: Vec<f64>,
+    /// ln|det dz/dx|: the flow's plus the whitening's.
+    pub log_det: Vec<f64>,
+    /// ||z||.
+    pub latent_norm: Vec<f64>,
+    /// Smallest ||z - mu_c||^2 over the class means (||z||^2 without
+    /// classes); the squared Mahalanobis distance for Gaussian kinds.
+    pub mahalanobis_sq: Vec<f64>,
+    /// log p(x | c) for every class, row-major `rows x classes` (empty
+    /// without classes).
+    pub class_log_likelihood: Vec<f64>,
+    /// Index of the most probable class and its posterior probability.
+    pub predicted_class: Vec<usize>,
+    pub class_probability: Vec<f64>,
     /// Largest absolute deviation on dead features from their training value.
     pub dead_deviation: Vec<f64>,
 }
 
 /// Rows whitened and pushed through the flow at a time: bounds memory.
-const CHUNK_ROWS: usize = 8192;
+const CHUNK_ROWS: usize = 1024;
 
 impl Model {
     /// Dimensions the log-likelihood is over (live features).
@@ -204,25 +222,68 @@ impl Model {
             let n = chunk.len();
             x.gather(chunk, &mut rows);
             self.pre.transform(&rows, n, &mut whitened);
-            out.log_likelihood.extend(self.log_likelihood_whitened(&whitened[..n * self.dim()], n, &mut workers));
+            self.evaluate_whitened(&whitened[..n * self.dim()], n, &mut workers, &mut out);
             out.dead_deviation.extend(rows.chunks(x.cols).map(|r| self.pre.dead_deviation(r)));
         }
         out
     }
 
-    /// log p(x) from whitened rows (`rows x dim`).
-    pub fn log_likelihood_whitened(&self, u: &[f32], rows: usize, workers: &mut Workers) -> Vec<f64> {
+    /// Number of classes of a class-conditional model (0 otherwise).
+    pub fn classes(&self) -> usize {
+        self.flow.spec.classes
+    }
+
+    /// log of each class's prior (its share of the training labels).
+    fn log_priors(&self) -> Vec<f64> {
+        let total: usize = self.meta.classes.iter().map(|c| c.rows).sum();
+        self.meta.classes.iter().map(|c| (c.rows as f64 / total as f64).ln()).collect()
+    }
+
+    /// Evaluate whitened rows (`rows x dim`), appending to `out`.
+    fn evaluate_whitened(&self, u: &[f32], rows: usize, workers: &mut Workers, out: &mut Evaluation) {
         let (d, k) = (self.dim(), self.meta.flow_dims);
         let head = leading_columns(u, rows, d, k);
-        let mut nll = vec![0.0f64; rows];
-        workers.nll(&self.flow, &head, rows, &mut nll);
-        let log_det = self.pre.log_det();
-        (0..rows)
-            .map(|r| {
-                let tail: f64 = u[r * d + k..(r + 1) * d].iter().map(|&v| 0.5 * (v as f64).powi(2) + HALF_LN_2PI).sum();
-                -nll[r] - tail + log_det
-            })
-            .collect()
+        let mut z = vec![0.0f32; rows * k];
+        let mut flow_logdet = vec![0.0f64; rows];
+        workers.latent(&self.flow, &head, rows, &mut z, &mut flow_logdet);
+        let pre_log_det = self.pre.log_det();
+        let priors = self.log_priors();
+        let mut per_class = vec![0.0f64; self.classes()];
+        for r in 0..rows {
+            let zr = &z[r * k..(r + 1) * k];
+            let tail_sq: f64 = u[r * d + k..(r + 1) * d].iter().map(|&v| (v as f64).powi(2)).sum();
+            let head_sq: f64 = zr.iter().map(|&v| (v as f64).powi(2)).sum();
+            let norm_const = d as f64 * HALF_LN_2PI;
+            let log_det = flow_logdet[r] + pre_log_det;
+            let (base, maha) = if self.classes() == 0 {
+                (-0.5 * (head_sq + tail_sq) - norm_const, head_sq + tail_sq)
+            } else {
+                for (c, slot) in per_class.iter_mut().enumerate() {
+                    let sq: f64 = zr.iter().zip(self.flow.class_mean(c)).map(|(&v, &m)| ((v - m) as f64).powi(2)).sum();
+                    *slot = sq + tail_sq;
+                }
+                let maha = per_class.iter().cloned().fold(f64::INFINITY, f64::min);
+                // log N(z; mu_c, I) + log pi_c, then the mixture and the posterior.
+                for (slot, p) in per_class.iter_mut().zip(&priors) {
+                    *slot = -0.5 * *slot - norm_const + p;
+                }
+                let mix = log_sum_exp(&per_class);
+                let (best, top) =
+                    per_class
+                        .iter()
+                        .enumerate()
+                        .fold((0, f64::NEG_INFINITY), |b, (c, &v)| if v > b.1 { (c, v) } else { b });
+                out.predicted_class.push(best);
+                out.class_probability.push((top - mix).exp());
+                out.class_log_likelihood.extend(per_class.iter().zip(&priors).map(|(v, p)| v - p + log_det));
+                (mix, maha)
+            };
+            out.log_likelihood.push(base + log_det);
+            out.base_log_density.push(base);
+            out.log_det.push(log_det);
+            out.latent_norm.push((head_sq + tail_sq).sqrt());
+            out.mahalanobis_sq.push(maha);
+        }
     }
 
     /// Draw `n` vectors from the model (input space).
@@ -324,8 +385,8 @@ impl Model {
     }
 
     fn from_bytes(path: &Path, bytes: &[u8]) -> Result<Model> {
-        let st = SafeTensors::deserialize(bytes)
-            .map_err(|e| Error::model(path, format!("not a safetensors file ({e})")))?;
+        let st =
+            SafeTensors::deserialize(bytes).map_err(|e| Error::model(path, format!("not a safetensors file ({e})")))?;
         let (_, header) = SafeTensors::read_metadata(bytes).map_err(|e| Error::model(path, e))?;
         let json = header
             .metadata()
@@ -443,6 +504,15 @@ impl Extras {
             .and_then(|m| m.get(key).cloned())
             .ok_or_else(|| Error::model(&self.path, format!("has no '{key}' metadata (not a checkpoint?)")))
     }
+}
+
+/// ln(sum exp(v)), computed stably.
+pub fn log_sum_exp(v: &[f64]) -> f64 {
+    let top = v.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
+    if top == f64::NEG_INFINITY {
+        return top;
+    }
+    top + v.iter().map(|x| (x - top).exp()).sum::<f64>().ln()
 }
 
 /// The first `k` of `d` columns of a row-major matrix, contiguous.

@@ -198,7 +198,6 @@ impl Settings {
     }
 }
 
-
 /// Adam (Kingma & Ba 2015) with decoupled weight decay (Loshchilov & Hutter
 /// 2019) over the flat parameter vector, in one fused pass. Its whole state
 /// (moments and step count) is saved in checkpoints.
@@ -418,6 +417,7 @@ fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
         hidden: settings.hidden,
         depth: settings.depth,
         clamp: settings.clamp,
+        classes: 0,
     };
     let flow = Flow::new(spec, settings.seed);
     let model = Model { meta: skeleton_meta(x.cols, &pre, &flow, &settings, run.labels)?, pre, flow };
@@ -506,14 +506,13 @@ fn resume(path: &Path, run: &Run) -> Result<Learned> {
     match (run.val, &state.val_data) {
         (Some(v), Some(fp)) if Fingerprint::of(v) != *fp => return Err(refuse(&v.path, fp)),
         (None, Some(_)) | (Some(_), None) => {
-            return Err(Error::Invalid(
-                "give --val on resume exactly when the run was started with it".into(),
-            ))
+            return Err(Error::Invalid("give --val on resume exactly when the run was started with it".into()))
         }
         _ => {}
     }
     let n = model.flow.param_count();
-    let adam = Adam { m: extras.tensor("checkpoint.adam_m", n)?, v: extras.tensor("checkpoint.adam_v", n)?, t: state.adam_t };
+    let adam =
+        Adam { m: extras.tensor("checkpoint.adam_m", n)?, v: extras.tensor("checkpoint.adam_v", n)?, t: state.adam_t };
     let best_params = extras.tensor("checkpoint.best_params", n)?;
     Ok(Learned { model, settings, state, best_params, adam })
 }
@@ -598,7 +597,7 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant) -> Res
                 }
             }
             let dropout = (s.dropout > 0.0).then(|| (s.dropout as f32, derive(s.seed, 4, l.state.step as u64)));
-            let nll = workers.nll_and_grad(&l.model.flow, &batch, chunk.len(), dropout, &mut grad);
+            let nll = workers.nll_and_grad(&l.model.flow, &batch, None, chunk.len(), dropout, &mut grad);
             if opts.inject_nan_at_step == Some(l.state.step) && !injected {
                 injected = true;
                 grad[0] = f32::NAN;

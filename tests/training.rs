@@ -155,7 +155,19 @@ fn a_non_finite_gradient_rolls_back_and_training_still_finishes() {
     // With no retries allowed it stops, names the problem and keeps the best model.
     let _ = std::fs::remove_file(&model);
     let out = Command::new(bin())
-        .args(["fit", s(&train), "-o", s(&model), "--epochs", "4", "--inject-nan-at-step", "20", "--max-retries", "0", "-q"])
+        .args([
+            "fit",
+            s(&train),
+            "-o",
+            s(&model),
+            "--epochs",
+            "4",
+            "--inject-nan-at-step",
+            "20",
+            "--max-retries",
+            "0",
+            "-q",
+        ])
         .assert()
         .failure();
     let stderr = String::from_utf8_lossy(&out.get_output().stderr);
@@ -171,7 +183,8 @@ fn early_stopping_keeps_the_best_epoch_and_its_validation_nll_is_reproducible() 
     save(&train, &data(150, 0.0));
     save(&val, &data(300, 100.0));
     let model = dir.path().join("model.safetensors");
-    let args = ["--val", s(&val), "--epochs", "300", "--patience", "3", "--hidden", "256", "--noise", "0", "--dropout", "0"];
+    let args =
+        ["--val", s(&val), "--epochs", "300", "--patience", "3", "--hidden", "256", "--noise", "0", "--dropout", "0"];
     Command::new(bin()).args(["fit", s(&train), "-o", s(&model), "-q", "--lr", "0.005"]).args(args).assert().success();
     let m = tidemark::model::Model::load(&model).unwrap();
     let t = &m.meta.training;
@@ -186,7 +199,11 @@ fn early_stopping_keeps_the_best_epoch_and_its_validation_nll_is_reproducible() 
         .map(|l| l.split(',').next().unwrap().parse().unwrap())
         .collect();
     let recomputed = -ll.iter().sum::<f64>() / ll.len() as f64;
-    assert!((recomputed - t.best_validation_nll).abs() < 1e-9 * recomputed.abs().max(1.0), "{recomputed} vs {}", t.best_validation_nll);
+    assert!(
+        (recomputed - t.best_validation_nll).abs() < 1e-9 * recomputed.abs().max(1.0),
+        "{recomputed} vs {}",
+        t.best_validation_nll
+    );
 }
 
 #[test]
@@ -198,14 +215,27 @@ fn resume_refuses_changed_data() {
     let model = dir.path().join("model.safetensors");
     let checkpoint = dir.path().join("ck.safetensors");
     let mut child = std::process::Command::new(bin())
-        .args(["fit", s(&train), "-o", s(&model), "--checkpoint", s(&checkpoint), "--epochs", "1000", "--patience", "1000", "-q"])
+        .args([
+            "fit",
+            s(&train),
+            "-o",
+            s(&model),
+            "--checkpoint",
+            s(&checkpoint),
+            "--epochs",
+            "1000",
+            "--patience",
+            "1000",
+            "-q",
+        ])
         .stderr(Stdio::null())
         .spawn()
         .unwrap();
     wait_for(&checkpoint, Duration::from_secs(60));
     send(child.id(), "-TERM");
     assert_eq!(child.wait().unwrap().code(), Some(130));
-    let out = Command::new(bin()).args(["fit", s(&other), "-o", s(&model), "--resume", s(&checkpoint)]).assert().failure();
+    let out =
+        Command::new(bin()).args(["fit", s(&other), "-o", s(&model), "--resume", s(&checkpoint)]).assert().failure();
     let stderr = String::from_utf8_lossy(&out.get_output().stderr);
     assert!(stderr.contains("other.npy: differs from the data this run was started on (500 x 6"), "{stderr}");
 }

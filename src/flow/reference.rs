@@ -62,14 +62,24 @@ fn forward(flow: &Flow, x: &Tensor) -> candle_core::Result<(Tensor, Tensor, Vec<
     Ok((h, logdet, vars))
 }
 
-/// Mean NLL of `x` under the flow and its gradient, by candle autograd.
-pub fn evaluate(flow: &Flow, x: &[f32], rows: usize) -> candle_core::Result<Reference> {
+/// Mean NLL of `x` (with per-row class labels for a class-conditional
+/// flow) under the flow and its gradient, by candle autograd.
+pub fn evaluate(flow: &Flow, x: &[f32], classes: Option<&[u32]>, rows: usize) -> candle_core::Result<Reference> {
     let dev = Device::Cpu;
     let dim = flow.spec.dim;
     let xs: Vec<f64> = x[..rows * dim].iter().map(|&v| v as f64).collect();
     let x = Tensor::from_vec(xs, (rows, dim), &dev)?;
-    let (z, logdet, vars) = forward(flow, &x)?;
-    let nll = (((z.sqr()?.sum(1)? * 0.5)? + dim as f64 * HALF_LN_2PI)? - &logdet)?;
+    let (z, logdet, mut vars) = forward(flow, &x)?;
+    let centred = match classes {
+        Some(c) => {
+            let means = var(flow, flow.class_means, &[flow.spec.classes, dim], &dev)?;
+            let per_row = means.as_tensor().index_select(&Tensor::from_vec(c[..rows].to_vec(), rows, &dev)?, 0)?;
+            vars.push((flow.class_means, means));
+            (&z - per_row)?
+        }
+        None => z.clone(),
+    };
+    let nll = (((centred.sqr()?.sum(1)? * 0.5)? + dim as f64 * HALF_LN_2PI)? - &logdet)?;
     let loss = nll.mean_all()?;
     let grads = loss.backward()?;
     let mut grad = vec![0.0f64; flow.params.len()];
