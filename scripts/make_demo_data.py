@@ -7,9 +7,9 @@ embeddings of normal operation with the pump model as class label, and
 three kinds of trouble to detect:
   unseen_model  - a fifth pump model the encoder never saw in training
   stuck_sensor  - a sensor stuck near its resting output: vectors packed
-                  tightly around each model's typical operating point
-                  (unusually *low* variance, so plain likelihood rates them
-                  as very normal)
+                  tightly around each model's typical operating point with
+                  little recording noise (unusually *low* variance, so plain
+                  likelihood rates them as very normal)
   drifted       - normal operation after a slow calibration drift
 Needs numpy only.
 """
@@ -28,8 +28,8 @@ bias = rng.normal(size=D) * 0.5
 centres = rng.normal(size=(MODELS + 1, LATENT)) * 1.6
 
 
-def encode(z):
-    return np.tanh(z @ A + bias) * 2.0 + 0.3 * np.sin(z @ B) + 0.05 * rng.normal(size=(len(z), D))
+def encode(z, noise=0.05):
+    return np.tanh(z @ A + bias) * 2.0 + 0.3 * np.sin(z @ B) + noise * rng.normal(size=(len(z), D))
 
 
 def operating(n, models, spread=1.0):
@@ -52,8 +52,10 @@ np.save(os.path.join(out, "heldout_labels.npy"), labels.astype(np.int64))
 z, _ = operating(500, [MODELS])
 np.save(os.path.join(out, "unseen_model.npy"), encode(z).astype(np.float32))
 
+# A stuck sensor records almost the same signal over and over: the latent
+# state barely moves and the recording noise nearly vanishes.
 z, _ = operating(500, MODELS, spread=0.08)
-np.save(os.path.join(out, "stuck_sensor.npy"), encode(z).astype(np.float32))
+np.save(os.path.join(out, "stuck_sensor.npy"), encode(z, noise=0.01).astype(np.float32))
 
 z, _ = operating(500, MODELS)
 drift = np.linspace(-1.0, 1.0, D) * 0.35

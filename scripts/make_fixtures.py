@@ -139,6 +139,41 @@ expected["whitening"]["gaussian_logpdf_first_rows"] = multivariate_normal(mean, 
 expected["whitening"]["diagonal_gaussian_logpdf_first_rows"] = multivariate_normal(mean, np.diag(np.diag(cov))).logpdf(xl[:5]).tolist()
 expected["scipy_version"] = scipy.__version__
 
+# Gaussian kernel density estimate (Scott's rule, full covariance), by scipy.
+from scipy.stats import gaussian_kde
+
+kde_points = rng.normal(size=(200, 2)) @ np.array([[1.0, 0.4], [0.0, 0.6]]) + np.array([3.0, -1.0])
+kde_queries = rng.normal(size=(10, 2)) * 1.5 + np.array([3.0, -1.0])
+expected["kde"] = {
+    "points": kde_points.tolist(),
+    "queries": kde_queries.tolist(),
+    "logpdf": gaussian_kde(kde_points.T, bw_method="scott").logpdf(kde_queries.T).tolist(),
+}
+
+# Ledoit-Wolf shrinkage on few rows relative to the dimension, by scikit-learn,
+# and the Gaussian log-density under the shrunk covariance, by scipy.
+import sklearn
+from sklearn.covariance import LedoitWolf
+
+few = (rng.normal(size=(60, 10)) @ rng.normal(size=(10, 10)) * 0.5 + 2.0).astype(np.float32)
+np.save(path("few_rows.npy"), few)
+lw = LedoitWolf().fit(few.astype(np.float64))
+expected["ledoit_wolf"] = {
+    "covariance": lw.covariance_.tolist(),
+    "shrinkage": float(lw.shrinkage_),
+    "mean": lw.location_.tolist(),
+    "logpdf_first_rows": multivariate_normal(lw.location_, lw.covariance_).logpdf(few[:5].astype(np.float64)).tolist(),
+}
+expected["sklearn_version"] = sklearn.__version__
+
+# The wine data set shipped with scikit-learn (UCI Wine, Forina et al.;
+# CC BY 4.0): 178 rows, 13 features, 3 cultivars.
+from sklearn.datasets import load_wine
+
+wine = load_wine()
+np.savetxt(path("wine.csv"), wine.data, delimiter=",", header=",".join(wine.feature_names), comments="", fmt="%.6g")
+np.savetxt(path("wine_labels.csv"), wine.target, header="cultivar", comments="", fmt="%d")
+
 with open(path("expected.json"), "w") as f:
     json.dump(expected, f, indent=1)
     f.write("\n")

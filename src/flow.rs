@@ -549,6 +549,10 @@ impl Workers {
         Workers { chunk_cap, pool }
     }
 
+    pub fn threads(&self) -> usize {
+        self.pool.len()
+    }
+
     fn chunks(&self, rows: usize) -> usize {
         let useful = rows.div_ceil(MIN_ROWS_PER_THREAD).max(1);
         useful.min(self.pool.len()).max(rows.div_ceil(self.chunk_cap))

@@ -10,7 +10,9 @@
 pub mod data;
 pub mod demo;
 pub mod error;
+pub mod evaluate;
 pub mod flow;
+pub mod kde;
 pub mod linalg;
 pub mod model;
 pub mod output;

@@ -7,9 +7,10 @@ use std::path::PathBuf;
 use std::process::ExitCode;
 use std::sync::atomic::AtomicBool;
 use std::sync::Arc;
+use tidemark::model::{Kind, Model};
 use tidemark::preprocess::Method;
 use tidemark::train::{default_threads, FitOptions, Run};
-use tidemark::{data, demo, model::Model, score, Result};
+use tidemark::{data, demo, score, Result};
 
 #[derive(Parser)]
 #[command(
@@ -26,13 +27,25 @@ struct Cli {
 enum Command {
     /// Fit a flow to embedding vectors (.npy, .safetensors or .csv) and save it.
     Fit(FitArgs),
-    /// Score vectors with a fitted model: one CSV row per vector.
+    /// Score vectors with a fitted model: one row of scores per vector.
     Score {
         model: PathBuf,
         data: PathBuf,
-        /// Output CSV file, or - for standard output.
+        /// Output file: .csv, .npy (float32, column names in a sidecar .json) or .jsonl; - for CSV on standard output.
         #[arg(short, long)]
         output: PathBuf,
+        /// Columns to write, comma-separated [default: all the model has].
+        #[arg(long, value_delimiter = ',')]
+        columns: Vec<String>,
+        /// Batch typicality test over consecutive batches of this many vectors.
+        #[arg(long)]
+        batch: Option<usize>,
+        /// Significance of the batch test.
+        #[arg(long, default_value_t = 0.01)]
+        batch_alpha: f64,
+        /// Where the batch test goes [default: OUTPUT with .batches.csv].
+        #[arg(long)]
+        batch_output: Option<PathBuf>,
         #[command(flatten)]
         input: InputArgs,
         #[arg(long, default_value_t = default_threads())]
@@ -81,9 +94,15 @@ struct FitArgs {
     output: PathBuf,
     #[command(flatten)]
     input: InputArgs,
-    /// Integer class label per row (.npy or one-column .csv); class counts are stored in the model.
+    /// Integer class label per row (.npy or one-column .csv): fits a class-conditional model.
     #[arg(long)]
     labels: Option<PathBuf>,
+    /// Density model: flow, gaussian (full covariance) or class-gaussian (class means, shared covariance; needs --labels).
+    #[arg(long, value_enum)]
+    kind: Option<Kind>,
+    /// Also train a background flow on training vectors with Gaussian noise of this scale (whitened units), for the log_likelihood_ratio score.
+    #[arg(long)]
+    background_noise: Option<f64>,
     /// Preprocessing before the flow [default: pca].
     #[arg(long, value_enum)]
     method: Option<Method>,
@@ -183,6 +202,8 @@ fn run(cli: Cli) -> Result<()> {
                 None => None,
             };
             let opts = FitOptions {
+                kind: a.kind,
+                background_noise: a.background_noise,
                 method: a.method,
                 layers: a.layers,
                 hidden: a.hidden,
@@ -239,11 +260,15 @@ fn run(cli: Cli) -> Result<()> {
             }
             Ok(())
         }
-        Command::Score { model, data: path, output, input, threads } => {
+        Command::Score { model, data: path, output, columns, batch, batch_alpha, batch_output, input, threads } => {
             let m = Model::load(&model)?;
             let x = data::Dataset::open(&path, input.tensor.as_deref())?;
             m.check_width(&path, x.cols)?;
-            score::write_csv(&output, &score::score(&m, &x, threads))
+            let batch = match batch {
+                Some(size) => Some(score::BatchTest::new(size, batch_alpha, batch_output, &output)?),
+                None => None,
+            };
+            score::score_to_file(&m, &x, &output, &score::ScoreOptions { columns, threads, batch })
         }
         Command::Inspect { model, json } => {
             let m = Model::load(&model)?;

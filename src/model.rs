@@ -67,6 +67,12 @@ pub struct Meta {
     /// Class labels given at fit time and their row counts (empty without labels).
     #[serde(default)]
     pub classes: Vec<ClassCount>,
+    pub kind: Kind,
+    /// Shape of the background flow (likelihood-ratio score), if any.
+    pub background: Option<FlowSpec>,
+    /// Noise scale the background flow was trained with (whitened units).
+    pub background_noise: Option<f64>,
+    pub scoring: ScoringMeta,
 }
 
 #[derive(Clone, Debug, serde::Serialize, serde::Deserialize)]
@@ -147,6 +153,9 @@ pub struct PreprocessingMeta {
     pub dead_features: Vec<usize>,
     pub dead_threshold: f64,
     pub floored_components: usize,
+    /// Ledoit-Wolf shrinkage intensity of the covariance (0: none).
+    #[serde(default)]
+    pub shrinkage: f64,
     /// ln|det| of the whitening map on the live features.
     pub log_det: f64,
 }
@@ -157,6 +166,44 @@ pub struct Model {
     pub meta: Meta,
     pub pre: Preprocessor,
     pub flow: Flow,
+    /// The background flow of the likelihood-ratio score, if fitted.
+    pub background: Option<Flow>,
+    pub refs: ScoringRefs,
+}
+
+/// Reference values that scores are computed against, kept from fitting.
+#[derive(Clone, Debug, Default)]
+pub struct ScoringRefs {
+    /// Validation rows' statistics (`rows x kde_columns`), for the
+    /// multi-statistic score's kernel density estimate.
+    pub kde_points: Vec<f64>,
+    /// Validation NLLs, for the batch typicality test's bootstrap.
+    pub validation_nll: Vec<f64>,
+}
+
+/// What kind of density a model is.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, serde::Serialize, serde::Deserialize, clap::ValueEnum)]
+#[serde(rename_all = "kebab-case")]
+pub enum Kind {
+    /// Whitening followed by affine coupling layers (optionally class-conditional).
+    #[default]
+    Flow,
+    /// One full-covariance Gaussian (Ledoit-Wolf shrinkage when rows are few).
+    Gaussian,
+    /// Class means with one shared covariance.
+    ClassGaussian,
+}
+
+/// Metadata of the reference values in [`ScoringRefs`].
+#[derive(Clone, Debug, Default, serde::Serialize, serde::Deserialize)]
+pub struct ScoringMeta {
+    /// Statistics the multi-statistic KDE is over, with the mean and
+    /// standard deviation used to standardize them.
+    pub kde_columns: Vec<String>,
+    pub kde_mean: Vec<f64>,
+    pub kde_std: Vec<f64>,
+    pub kde_rows: usize,
+    pub validation_rows: usize,
 }
 
 /// Per-row results of evaluating a model. With `z` the full latent (the
@@ -182,6 +229,8 @@ pub struct Evaluation {
     /// Index of the most probable class and its posterior probability.
     pub predicted_class: Vec<usize>,
     pub class_probability: Vec<f64>,
+    /// log p_background(x) (empty without a background flow).
+    pub background_log_likelihood: Vec<f64>,
     /// Largest absolute deviation on dead features from their training value.
     pub dead_deviation: Vec<f64>,
 }
@@ -249,6 +298,17 @@ impl Model {
         let pre_log_det = self.pre.log_det();
         let priors = self.log_priors();
         let mut per_class = vec![0.0f64; self.classes()];
+        if let Some(bg) = &self.background {
+            let mut bz = vec![0.0f32; rows * k];
+            let mut bg_logdet = vec![0.0f64; rows];
+            let mut bg_workers = Workers::new(bg, workers.threads(), rows);
+            bg_workers.latent(bg, &head, rows, &mut bz, &mut bg_logdet);
+            for r in 0..rows {
+                let sq: f64 =
+                    bz[r * k..(r + 1) * k].iter().chain(&u[r * d + k..(r + 1) * d]).map(|&v| (v as f64).powi(2)).sum();
+                out.background_log_likelihood.push(-0.5 * sq - d as f64 * HALF_LN_2PI + bg_logdet[r] + pre_log_det);
+            }
+        }
         for r in 0..rows {
             let zr = &z[r * k..(r + 1) * k];
             let tail_sq: f64 = u[r * d + k..(r + 1) * d].iter().map(|&v| (v as f64).powi(2)).sum();
@@ -330,28 +390,22 @@ impl Model {
         if !pre.dead.is_empty() {
             put("preprocess.dead_values", Dtype::F64, vec![pre.dead.len()], le_bytes_f64(&pre.dead_value));
         }
-        for (k, slot) in self.flow.slots.iter().enumerate() {
-            let p = &self.flow.params;
-            let dim = self.flow.spec.dim;
+        flow_tensors(&self.flow, "flow", &mut put);
+        if let Some(bg) = &self.background {
+            flow_tensors(bg, "background", &mut put);
+        }
+        let r = &self.refs;
+        let kde_cols = self.meta.scoring.kde_columns.len().max(1);
+        if !r.kde_points.is_empty() {
             put(
-                &format!("flow.{k}.actnorm.log_scale"),
-                Dtype::F32,
-                vec![dim],
-                le_bytes_f32(&p[slot.log_scale..slot.log_scale + dim]),
+                "scores.kde_points",
+                Dtype::F64,
+                vec![r.kde_points.len() / kde_cols, kde_cols],
+                le_bytes_f64(&r.kde_points),
             );
-            put(&format!("flow.{k}.actnorm.bias"), Dtype::F32, vec![dim], le_bytes_f32(&p[slot.bias..slot.bias + dim]));
-            let perm: Vec<usize> = self.flow.perms[k].iter().map(|&v| v as usize).collect();
-            put(&format!("flow.{k}.permutation"), Dtype::I64, vec![dim], le_bytes_i64(&perm));
-            for (i, lin) in slot.linears.iter().enumerate() {
-                let w = &p[lin.weight..lin.weight + lin.out * lin.inp];
-                put(&format!("flow.{k}.net.{i}.weight"), Dtype::F32, vec![lin.out, lin.inp], le_bytes_f32(w));
-                put(
-                    &format!("flow.{k}.net.{i}.bias"),
-                    Dtype::F32,
-                    vec![lin.out],
-                    le_bytes_f32(&p[lin.bias..lin.bias + lin.out]),
-                );
-            }
+        }
+        if !r.validation_nll.is_empty() {
+            put("scores.validation_nll", Dtype::F64, vec![r.validation_nll.len()], le_bytes_f64(&r.validation_nll));
         }
         let meta_json = serde_json::to_string(&self.meta).map_err(|e| Error::model(path, e))?;
         let mut metadata = HashMap::from([(META_KEY.to_string(), meta_json)]);
@@ -446,35 +500,34 @@ impl Model {
             },
             scale: from_f64(&get("preprocess.scale", Dtype::F64, d)?),
             floored: pm.floored_components,
+            shrinkage: pm.shrinkage,
         };
         if meta.flow.dim != meta.flow_dims || meta.flow_dims > d || meta.flow.depth == 0 {
             return Err(Error::model(path, "flow dimensions do not match the preprocessing"));
         }
-        let mut flow = Flow::new(meta.flow.clone(), 0);
-        let dim = flow.spec.dim;
-        for k in 0..flow.spec.layers {
-            let slot = flow.slots[k].clone();
-            let mut fill = |name: String, at: usize, n: usize| -> Result<()> {
-                let vals = from_f32(&get(&name, Dtype::F32, n)?);
-                flow.params[at..at + n].copy_from_slice(&vals);
-                Ok(())
-            };
-            fill(format!("flow.{k}.actnorm.log_scale"), slot.log_scale, dim)?;
-            fill(format!("flow.{k}.actnorm.bias"), slot.bias, dim)?;
-            for (i, lin) in slot.linears.iter().enumerate() {
-                fill(format!("flow.{k}.net.{i}.weight"), lin.weight, lin.out * lin.inp)?;
-                fill(format!("flow.{k}.net.{i}.bias"), lin.bias, lin.out)?;
-            }
-            let perm: Vec<usize> = from_i64(&get(&format!("flow.{k}.permutation"), Dtype::I64, dim)?);
-            let mut seen = vec![false; dim];
-            for &p in &perm {
-                if p >= dim || std::mem::replace(&mut seen[p], true) {
-                    return Err(Error::model(path, format!("flow.{k}.permutation is not a permutation")));
-                }
-            }
-            flow.perms[k] = perm.iter().map(|&p| p as u32).collect();
+        let flow = read_flow(path, &get, "flow", &meta.flow)?;
+        let background = match &meta.background {
+            Some(spec) if spec.dim == meta.flow_dims => Some(read_flow(path, &get, "background", spec)?),
+            Some(_) => return Err(Error::model(path, "background flow dimensions do not match")),
+            None => None,
+        };
+        let s = &meta.scoring;
+        let refs = ScoringRefs {
+            kde_points: if s.kde_rows == 0 {
+                vec![]
+            } else {
+                from_f64(&get("scores.kde_points", Dtype::F64, s.kde_rows * s.kde_columns.len())?)
+            },
+            validation_nll: if s.validation_rows == 0 {
+                vec![]
+            } else {
+                from_f64(&get("scores.validation_nll", Dtype::F64, s.validation_rows)?)
+            },
+        };
+        if s.kde_mean.len() != s.kde_columns.len() || s.kde_std.len() != s.kde_columns.len() {
+            return Err(Error::model(path, "bad multi-statistic score metadata"));
         }
-        Ok(Model { meta, pre, flow })
+        Ok(Model { meta, pre, flow, background, refs })
     }
 }
 
@@ -504,6 +557,78 @@ impl Extras {
             .and_then(|m| m.get(key).cloned())
             .ok_or_else(|| Error::model(&self.path, format!("has no '{key}' metadata (not a checkpoint?)")))
     }
+}
+
+/// Add a flow's tensors under `prefix` (`{prefix}.{layer}.actnorm.log_scale`, ...).
+fn flow_tensors(flow: &Flow, prefix: &str, put: &mut dyn FnMut(&str, Dtype, Vec<usize>, Vec<u8>)) {
+    let p = &flow.params;
+    let dim = flow.spec.dim;
+    for (k, slot) in flow.slots.iter().enumerate() {
+        put(
+            &format!("{prefix}.{k}.actnorm.log_scale"),
+            Dtype::F32,
+            vec![dim],
+            le_bytes_f32(&p[slot.log_scale..slot.log_scale + dim]),
+        );
+        put(&format!("{prefix}.{k}.actnorm.bias"), Dtype::F32, vec![dim], le_bytes_f32(&p[slot.bias..slot.bias + dim]));
+        let perm: Vec<usize> = flow.perms[k].iter().map(|&v| v as usize).collect();
+        put(&format!("{prefix}.{k}.permutation"), Dtype::I64, vec![dim], le_bytes_i64(&perm));
+        for (i, lin) in slot.linears.iter().enumerate() {
+            let w = &p[lin.weight..lin.weight + lin.out * lin.inp];
+            put(&format!("{prefix}.{k}.net.{i}.weight"), Dtype::F32, vec![lin.out, lin.inp], le_bytes_f32(w));
+            put(
+                &format!("{prefix}.{k}.net.{i}.bias"),
+                Dtype::F32,
+                vec![lin.out],
+                le_bytes_f32(&p[lin.bias..lin.bias + lin.out]),
+            );
+        }
+    }
+    if flow.spec.classes > 0 {
+        let means = &p[flow.class_means..flow.class_means + flow.spec.classes * dim];
+        put(&format!("{prefix}.class_means"), Dtype::F32, vec![flow.spec.classes, dim], le_bytes_f32(means));
+    }
+}
+
+/// Read a flow written by [`flow_tensors`].
+fn read_flow(
+    path: &Path,
+    get: &dyn Fn(&str, Dtype, usize) -> Result<Vec<u8>>,
+    prefix: &str,
+    spec: &FlowSpec,
+) -> Result<Flow> {
+    if spec.depth == 0 || (spec.layers > 0 && spec.dim < 2) {
+        return Err(Error::model(path, format!("{prefix}: invalid flow shape")));
+    }
+    let mut flow = Flow::new(spec.clone(), 0);
+    let dim = flow.spec.dim;
+    let fill = |flow: &mut Flow, name: String, at: usize, n: usize| -> Result<()> {
+        let vals = from_f32(&get(&name, Dtype::F32, n)?);
+        flow.params[at..at + n].copy_from_slice(&vals);
+        Ok(())
+    };
+    for k in 0..flow.spec.layers {
+        let slot = flow.slots[k].clone();
+        fill(&mut flow, format!("{prefix}.{k}.actnorm.log_scale"), slot.log_scale, dim)?;
+        fill(&mut flow, format!("{prefix}.{k}.actnorm.bias"), slot.bias, dim)?;
+        for (i, lin) in slot.linears.iter().enumerate() {
+            fill(&mut flow, format!("{prefix}.{k}.net.{i}.weight"), lin.weight, lin.out * lin.inp)?;
+            fill(&mut flow, format!("{prefix}.{k}.net.{i}.bias"), lin.bias, lin.out)?;
+        }
+        let perm: Vec<usize> = from_i64(&get(&format!("{prefix}.{k}.permutation"), Dtype::I64, dim)?);
+        let mut seen = vec![false; dim];
+        for &p in &perm {
+            if p >= dim || std::mem::replace(&mut seen[p], true) {
+                return Err(Error::model(path, format!("{prefix}.{k}.permutation is not a permutation")));
+            }
+        }
+        flow.perms[k] = perm.iter().map(|&p| p as u32).collect();
+    }
+    if spec.classes > 0 {
+        let at = flow.class_means;
+        fill(&mut flow, format!("{prefix}.class_means"), at, spec.classes * dim)?;
+    }
+    Ok(flow)
 }
 
 /// ln(sum exp(v)), computed stably.

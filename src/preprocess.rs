@@ -94,12 +94,36 @@ pub struct Preprocessor {
     pub scale: Vec<f64>,
     /// Principal-component variances that were raised to the floor.
     pub floored: usize,
+    /// Ledoit-Wolf shrinkage intensity applied to the covariance (0: none).
+    pub shrinkage: f64,
+}
+
+/// Which covariance PCA whitening decomposes.
+#[derive(Default)]
+pub struct Covariance<'a> {
+    /// Pool within classes: each row is centred on its class mean.
+    /// `class_of[row]` indexes `means` (full input width).
+    pub classes: Option<(&'a [u32], &'a [Vec<f64>])>,
+    /// Shrink towards a scaled identity with the Ledoit-Wolf intensity
+    /// (Ledoit & Wolf 2004, as computed by scikit-learn's LedoitWolf).
+    pub ledoit_wolf: bool,
 }
 
 impl Preprocessor {
     /// Fit on the rows `idx` of `x`, streaming over them in blocks. Fails
     /// when no feature varies.
     pub fn fit(x: &Dataset, idx: &[usize], method: Method, dead_threshold: f64) -> Result<Preprocessor, String> {
+        Preprocessor::fit_with(x, idx, method, dead_threshold, &Covariance::default())
+    }
+
+    /// [`Preprocessor::fit`] with a choice of covariance for PCA whitening.
+    pub fn fit_with(
+        x: &Dataset,
+        idx: &[usize],
+        method: Method,
+        dead_threshold: f64,
+        how: &Covariance,
+    ) -> Result<Preprocessor, String> {
         let stats = ColumnStats::of(x, idx);
         let std: Vec<f64> = stats.m2.iter().map(|s| (s / stats.n).sqrt()).collect();
         let top = std.iter().cloned().fold(0.0, f64::max);
@@ -117,10 +141,11 @@ impl Preprocessor {
             components: None,
             scale: vec![],
             floored: 0,
+            shrinkage: 0.0,
         };
         match method {
             Method::Standardize => pre.scale = pre.live.iter().map(|&j| std[j]).collect(),
-            Method::Pca => pre.fit_pca(x, idx),
+            Method::Pca => pre.fit_pca(x, idx, how),
         }
         Ok(pre)
     }
@@ -131,30 +156,49 @@ impl Preprocessor {
     }
 
     /// Covariance (maximum-likelihood, divided by n) of the live features
-    /// about the already exact mean, accumulated in f64 over row blocks.
-    fn covariance(&self, x: &Dataset, idx: &[usize]) -> Vec<f64> {
+    /// about the already exact mean (or each row's class mean), accumulated
+    /// in f64 over row blocks; also the sum of squared squared row norms
+    /// that the Ledoit-Wolf intensity needs.
+    fn covariance(&self, x: &Dataset, idx: &[usize], how: &Covariance) -> (Vec<f64>, f64) {
         let d = self.dim();
         let mut cov = vec![0.0f64; d * d];
+        let mut sum_norm4 = 0.0;
         let mut rows = Vec::new();
         let mut centered = vec![0.0f64; BLOCK * d];
         for chunk in idx.chunks(BLOCK) {
             let n = chunk.len();
             x.gather(chunk, &mut rows);
             for (r, row) in rows.chunks(x.cols).enumerate() {
-                for (i, &j) in self.live.iter().enumerate() {
-                    centered[r * d + i] = row[j] as f64 - self.mean[i];
+                let c = &mut centered[r * d..(r + 1) * d];
+                match how.classes {
+                    Some((class_of, means)) => {
+                        let m = &means[class_of[chunk[r]] as usize];
+                        for (i, &j) in self.live.iter().enumerate() {
+                            c[i] = row[j] as f64 - m[j];
+                        }
+                    }
+                    None => {
+                        for (i, &j) in self.live.iter().enumerate() {
+                            c[i] = row[j] as f64 - self.mean[i];
+                        }
+                    }
                 }
+                sum_norm4 += c.iter().map(|v| v * v).sum::<f64>().powi(2);
             }
             let c = &centered[..n * d];
             matmul(&mut cov, d, true, View::transposed(c, n, d), View::rows(c, n, d, d));
         }
         cov.iter_mut().for_each(|v| *v /= idx.len() as f64);
-        cov
+        (cov, sum_norm4)
     }
 
-    fn fit_pca(&mut self, x: &Dataset, idx: &[usize]) {
+    fn fit_pca(&mut self, x: &Dataset, idx: &[usize], how: &Covariance) {
         let d = self.dim();
-        let cov = nalgebra::DMatrix::from_row_slice(d, d, &self.covariance(x, idx));
+        let (mut cov, sum_norm4) = self.covariance(x, idx, how);
+        if how.ledoit_wolf {
+            self.shrinkage = ledoit_wolf_shrink(&mut cov, d, idx.len(), sum_norm4);
+        }
+        let cov = nalgebra::DMatrix::from_row_slice(d, d, &cov);
         let eig = nalgebra::SymmetricEigen::new(cov);
         let mut order: Vec<usize> = (0..d).collect();
         order.sort_by(|&a, &b| eig.eigenvalues[b].total_cmp(&eig.eigenvalues[a]));
@@ -244,6 +288,26 @@ impl Preprocessor {
     pub fn dead_deviation(&self, row: &[f32]) -> f64 {
         self.dead.iter().zip(&self.dead_value).map(|(&j, &v)| (row[j] as f64 - v).abs()).fold(0.0, f64::max)
     }
+}
+
+/// Shrink the empirical covariance `s` (`d x d`, from `n` centred rows
+/// with sum of ||x||^4 `sum_norm4`) towards mu I, mu = trace / d, with the
+/// Ledoit-Wolf intensity; returns the intensity. Follows scikit-learn's
+/// `ledoit_wolf_shrinkage`: beta = (sum ||x||^4 / n - ||S||_F^2) / (d n),
+/// delta = ||S - mu I||_F^2 / d, intensity = min(beta, delta) / delta.
+fn ledoit_wolf_shrink(s: &mut [f64], d: usize, n: usize, sum_norm4: f64) -> f64 {
+    let mu = (0..d).map(|i| s[i * d + i]).sum::<f64>() / d as f64;
+    let frob: f64 = s.iter().map(|v| v * v).sum();
+    let beta = (sum_norm4 / n as f64 - frob) / (d as f64 * n as f64);
+    let delta = (frob - 2.0 * mu * mu * d as f64 + d as f64 * mu * mu) / d as f64;
+    let shrinkage = if beta <= 0.0 || delta <= 0.0 { 0.0 } else { beta.min(delta) / delta };
+    for i in 0..d {
+        for j in 0..d {
+            s[i * d + j] *= 1.0 - shrinkage;
+        }
+        s[i * d + i] += shrinkage * mu;
+    }
+    shrinkage
 }
 
 #[cfg(test)]

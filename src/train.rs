@@ -7,8 +7,10 @@
 use crate::data::Dataset;
 use crate::error::{Error, Result};
 use crate::flow::{Flow, FlowSpec, Workers, HALF_LN_2PI};
-use crate::model::{ClassCount, Meta, Model, PreprocessingMeta, Spread, TrainingSummary, FORMAT_VERSION};
-use crate::preprocess::{Method, Preprocessor, DEFAULT_DEAD_THRESHOLD};
+use crate::model::{
+    ClassCount, Kind, Meta, Model, PreprocessingMeta, ScoringMeta, ScoringRefs, Spread, TrainingSummary, FORMAT_VERSION,
+};
+use crate::preprocess::{ColumnStats, Covariance, Method, Preprocessor, DEFAULT_DEAD_THRESHOLD};
 use indicatif::{ProgressBar, ProgressStyle};
 use rand::rngs::StdRng;
 use rand::seq::SliceRandom;
@@ -24,6 +26,8 @@ use std::time::Instant;
 #[derive(Clone, Debug, Default, serde::Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct FitOptions {
+    pub kind: Option<Kind>,
+    pub background_noise: Option<f64>,
     pub method: Option<Method>,
     pub layers: Option<usize>,
     pub hidden: Option<usize>,
@@ -64,6 +68,8 @@ impl FitOptions {
     /// Each option set here, else the one in `fallback`.
     pub fn or(self, fallback: FitOptions) -> FitOptions {
         FitOptions {
+            kind: self.kind.or(fallback.kind),
+            background_noise: self.background_noise.or(fallback.background_noise),
             method: self.method.or(fallback.method),
             layers: self.layers.or(fallback.layers),
             hidden: self.hidden.or(fallback.hidden),
@@ -100,6 +106,10 @@ pub fn default_threads() -> usize {
 /// checkpoints (a resumed run uses the checkpoint's settings).
 #[derive(Clone, Debug, serde::Serialize, serde::Deserialize)]
 pub struct Settings {
+    pub kind: Kind,
+    /// Noise (whitened units) of the background flow's training vectors;
+    /// `None`: no background flow.
+    pub background_noise: Option<f64>,
     pub method: Method,
     pub layers: usize,
     pub hidden: usize,
@@ -139,9 +149,17 @@ impl Settings {
     /// `n` training rows, `d` live dimensions.
     pub fn resolve(o: &FitOptions, n: usize, d: usize, val_file: bool) -> Result<Settings> {
         let method = o.method.unwrap_or(Method::Pca);
+        let kind = o.kind.unwrap_or_default();
+        if kind != Kind::Flow && method != Method::Pca {
+            return Err(Error::Invalid("--kind gaussian and class-gaussian whiten with PCA; drop --method".into()));
+        }
+        if kind != Kind::Flow && o.background_noise.is_some() {
+            return Err(Error::Invalid("--background-noise trains a background flow; it needs --kind flow".into()));
+        }
         let per_dim = n as f64 / d as f64;
         let few = per_dim < FEW_ROWS_PER_DIM;
-        let default_dims = if few && method == Method::Pca { d.div_ceil(3).max(2.min(d)) } else { d };
+        let default_dims =
+            if few && method == Method::Pca && kind == Kind::Flow { d.div_ceil(3).max(2.min(d)) } else { d };
         let flow_dims = o.flow_dims.unwrap_or(default_dims);
         if flow_dims == 0 || flow_dims > d {
             return Err(Error::Invalid(format!("--flow-dims must be between 1 and {d} (the live features)")));
@@ -149,8 +167,10 @@ impl Settings {
         let batch_size = o.batch_size.unwrap_or(if n >= 20_000 { 256 } else { 128 }).clamp(1, n);
         let steps_per_epoch = n.div_ceil(batch_size);
         let s = Settings {
+            kind,
+            background_noise: o.background_noise,
             method,
-            layers: if flow_dims < 2 { 0 } else { o.layers.unwrap_or(6) },
+            layers: if flow_dims < 2 || kind != Kind::Flow { 0 } else { o.layers.unwrap_or(6) },
             hidden: o.hidden.unwrap_or((2 * flow_dims).clamp(64, 512).next_multiple_of(32)),
             depth: o.depth.unwrap_or(2),
             clamp: o.clamp.unwrap_or(3.0),
@@ -345,6 +365,11 @@ struct TrainState {
     log: Vec<LogEntry>,
     data: Fingerprint,
     val_data: Option<Fingerprint>,
+    /// Checksum of the class labels, if any.
+    labels: Option<u64>,
+    /// Training ended (early stopping or the last epoch): nothing to resume
+    /// but the steps after the main flow.
+    finished: bool,
 }
 
 const CHECKPOINT_KEY: &str = "tidemark_checkpoint";
@@ -381,6 +406,11 @@ pub fn fit_run(run: &Run, opts: &FitOptions) -> Result<Model> {
     }
     train(run, opts, &mut learned, started)?;
     learned.model.flow.params = learned.best_params.clone();
+    if let Some(sigma) = learned.settings.background_noise {
+        let bg = train_background(run, opts, &learned, sigma, started)?;
+        learned.model.meta.background = Some(bg.spec.clone());
+        learned.model.background = Some(bg);
+    }
     finish(run, &mut learned)?;
     Ok(learned.model)
 }
@@ -408,8 +438,29 @@ fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
     }
     let (train_idx, _) = split_rows(x.rows, val_fraction, seed);
     let method = opts.method.unwrap_or(Method::Pca);
+    let kind = opts.kind.unwrap_or_default();
     let dead_threshold = opts.dead_threshold.unwrap_or(DEFAULT_DEAD_THRESHOLD);
-    let pre = Preprocessor::fit(x, &train_idx, method, dead_threshold).map_err(Error::Invalid)?;
+    let classes = class_counts(run.labels.unwrap_or(&[]));
+    let class_of = run.labels.map(|l| class_indices(l, &classes));
+    if kind == Kind::ClassGaussian && class_of.is_none() {
+        return Err(Error::Invalid("--kind class-gaussian needs --labels".into()));
+    }
+    // Class means (input space) over the training rows, for pooling.
+    let class_means: Vec<Vec<f64>> = match (&class_of, kind) {
+        (Some(of), Kind::ClassGaussian) => (0..classes.len())
+            .map(|c| {
+                let rows: Vec<usize> = train_idx.iter().copied().filter(|&r| of[r] as usize == c).collect();
+                ColumnStats::of(x, &rows).mean
+            })
+            .collect(),
+        _ => Vec::new(),
+    };
+    let few_rows = (train_idx.len() as f64) < FEW_ROWS_PER_DIM * x.cols as f64;
+    let how = Covariance {
+        classes: class_of.as_deref().filter(|_| kind == Kind::ClassGaussian).map(|of| (of, &class_means[..])),
+        ledoit_wolf: kind != Kind::Flow && few_rows,
+    };
+    let pre = Preprocessor::fit_with(x, &train_idx, method, dead_threshold, &how).map_err(Error::Invalid)?;
     let settings = Settings::resolve(opts, train_idx.len(), pre.dim(), run.val.is_some())?;
     let spec = FlowSpec {
         dim: settings.flow_dims,
@@ -417,10 +468,26 @@ fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
         hidden: settings.hidden,
         depth: settings.depth,
         clamp: settings.clamp,
-        classes: 0,
+        classes: if kind == Kind::Gaussian { 0 } else { classes.len() },
     };
-    let flow = Flow::new(spec, settings.seed);
-    let model = Model { meta: skeleton_meta(x.cols, &pre, &flow, &settings, run.labels)?, pre, flow };
+    let mut flow = Flow::new(spec, settings.seed);
+    for (c, mean) in class_means.iter().enumerate() {
+        // The class-Gaussian base means are the whitened class means.
+        let row: Vec<f32> = mean.iter().map(|&v| v as f32).collect();
+        let mut u = vec![0.0f32; pre.dim()];
+        pre.transform(&row, 1, &mut u);
+        let at = flow.class_means + c * flow.spec.dim;
+        flow.params[at..at + flow.spec.dim].copy_from_slice(&u);
+    }
+    let meta = skeleton_meta(x.cols, &pre, &flow, &settings, classes)?;
+    let model = Model { meta, pre, flow, background: None, refs: ScoringRefs::default() };
+    new_learned(run, model, settings, kind != Kind::Flow)
+}
+
+/// Training state for an untrained `model`: the untrained flow (identity,
+/// i.e. the whitened Gaussian, or the class means as they are) is candidate
+/// zero; then ActNorm is initialised from the data.
+fn new_learned(run: &Run, model: Model, settings: Settings, finished: bool) -> Result<Learned> {
     let n = model.flow.param_count();
     let mut learned = Learned {
         best_params: model.flow.params.clone(),
@@ -440,25 +507,65 @@ fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
             retries: 0,
             seconds: 0.0,
             log: Vec::new(),
-            data: Fingerprint::of(x),
+            data: Fingerprint::of(run.data),
             val_data: run.val.map(Fingerprint::of),
+            labels: run.labels.map(labels_checksum),
+            finished,
         },
         model,
         settings,
     };
-    // Candidate 0: the untrained (identity) flow, i.e. the whitened Gaussian.
-    let rows = Rows::new(run, &learned.settings);
+    let rows = Rows::new(run, &learned.settings, &learned.model);
     let gaussian = rows.val_nll(&learned.model, learned.settings.threads);
     learned.state.gaussian_val = gaussian;
     learned.state.best_val = gaussian;
-    let init_rows = &rows.train[..rows.train.len().min(4096)];
-    let head = rows.whitened_head(&learned.model, init_rows);
-    learned.model.flow.init_actnorm(&head, init_rows.len());
+    if !finished {
+        let init_rows = &rows.train[..rows.train.len().min(4096)];
+        let head = rows.whitened_head(&learned.model, init_rows);
+        learned.model.flow.init_actnorm(&head, init_rows.len());
+    }
     Ok(learned)
 }
 
+/// Train the background flow of the likelihood-ratio score (Ren et al.
+/// 2019, adapted to embeddings): a smaller flow on the same whitened
+/// training vectors perturbed with Gaussian noise of scale `sigma`. It is
+/// not checkpointed; an interrupted run resumes by training it again.
+fn train_background(run: &Run, opts: &FitOptions, main: &Learned, sigma: f64, started: Instant) -> Result<Flow> {
+    let s = &main.settings;
+    let settings = Settings {
+        noise: sigma,
+        layers: (s.layers / 2).max(2.min(s.layers)),
+        hidden: (s.hidden / 2).max(32),
+        background_noise: None,
+        ..s.clone()
+    };
+    let spec =
+        FlowSpec { layers: settings.layers, hidden: settings.hidden, classes: 0, ..main.model.flow.spec.clone() };
+    let mut model = main.model.clone();
+    model.flow = Flow::new(spec, derive(s.seed, 7, 0));
+    model.meta.classes.clear();
+    let quiet_run = Run { checkpoint: None, log: None, output: None, resume: None, labels: None, ..*run };
+    let mut bg = new_learned(&quiet_run, model, settings, false)?;
+    if !opts.quiet {
+        eprintln!("training the background flow (noise {sigma})");
+    }
+    train(&quiet_run, opts, &mut bg, started)?;
+    bg.model.flow.params = bg.best_params;
+    Ok(bg.model.flow)
+}
+
+/// Class of every data row, as an index into `classes` (sorted labels).
+fn class_indices(labels: &[i64], classes: &[ClassCount]) -> Vec<u32> {
+    labels.iter().map(|l| classes.binary_search_by_key(l, |c| c.label).expect("label was counted") as u32).collect()
+}
+
+fn labels_checksum(labels: &[i64]) -> u64 {
+    labels.iter().fold(labels.len() as u64, |h, &l| derive(h, 6, l as u64))
+}
+
 /// The model metadata known before training (the summary is filled at the end).
-fn skeleton_meta(cols: usize, pre: &Preprocessor, flow: &Flow, s: &Settings, labels: Option<&[i64]>) -> Result<Meta> {
+fn skeleton_meta(cols: usize, pre: &Preprocessor, flow: &Flow, s: &Settings, classes: Vec<ClassCount>) -> Result<Meta> {
     Ok(Meta {
         format: "tidemark-model".into(),
         format_version: FORMAT_VERSION,
@@ -470,6 +577,7 @@ fn skeleton_meta(cols: usize, pre: &Preprocessor, flow: &Flow, s: &Settings, lab
             dead_features: pre.dead.clone(),
             dead_threshold: s.dead_threshold,
             floored_components: pre.floored,
+            shrinkage: pre.shrinkage,
             log_det: pre.log_det(),
         },
         flow_dims: s.flow_dims,
@@ -480,7 +588,11 @@ fn skeleton_meta(cols: usize, pre: &Preprocessor, flow: &Flow, s: &Settings, lab
             ..TrainingSummary::default()
         },
         train_log_likelihood: Spread::default(),
-        classes: class_counts(labels.unwrap_or(&[])),
+        classes,
+        kind: s.kind,
+        background: None,
+        background_noise: s.background_noise,
+        scoring: ScoringMeta::default(),
     })
 }
 
@@ -517,23 +629,32 @@ fn resume(path: &Path, run: &Run) -> Result<Learned> {
     Ok(Learned { model, settings, state, best_params, adam })
 }
 
-/// Train and validation rows, and how to whiten them.
+/// Train and validation rows, their classes, and how to whiten them.
 struct Rows<'a> {
     data: &'a Dataset,
     train: Vec<usize>,
     val_data: &'a Dataset,
     val: Vec<usize>,
+    /// Class index of every data row (class-conditional models).
+    class_of: Option<Vec<u32>>,
 }
 
 impl<'a> Rows<'a> {
-    fn new(run: &Run<'a>, s: &Settings) -> Rows<'a> {
+    fn new(run: &Run<'a>, s: &Settings, model: &Model) -> Rows<'a> {
         let (train, val) = split_rows(run.data.rows, s.val_fraction, s.seed);
-        match run.val {
-            Some(v) => Rows { data: run.data, train, val_data: v, val: (0..v.rows).collect() },
+        let class_of = run.labels.filter(|_| model.classes() > 0).map(|l| class_indices(l, &model.meta.classes));
+        let (val_data, val) = match run.val {
+            Some(v) => (v, (0..v.rows).collect()),
             // Without validation rows the training rows stand in.
-            None if val.is_empty() => Rows { data: run.data, val: train.clone(), train, val_data: run.data },
-            None => Rows { data: run.data, train, val_data: run.data, val },
-        }
+            None if val.is_empty() => (run.data, train.clone()),
+            None => (run.data, val),
+        };
+        Rows { data: run.data, train, val_data, val, class_of }
+    }
+
+    /// Class indices of the rows `idx` (class-conditional models).
+    fn classes_of(&self, idx: &[usize]) -> Option<Vec<u32>> {
+        self.class_of.as_ref().map(|of| idx.iter().map(|&r| of[r]).collect())
     }
 
     /// The flow's part of the whitened rows `idx` of the training data.
@@ -564,7 +685,7 @@ enum Halt {
 
 fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant) -> Result<()> {
     let s = l.settings.clone();
-    let rows = Rows::new(run, &s);
+    let rows = Rows::new(run, &s, &l.model);
     let (d, k) = (l.model.dim(), s.flow_dims);
     let n_train = rows.train.len();
     let steps_per_epoch = n_train.div_ceil(s.batch_size);
@@ -580,7 +701,7 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant) -> Res
     let mut snapshot = (l.model.flow.params.clone(), l.adam.clone(), l.state.clone());
     let mut epoch_started = Instant::now();
     let mut epoch_samples = 0usize;
-    'epochs: while l.state.epoch <= s.epochs {
+    'epochs: while !l.state.finished && l.state.epoch <= s.epochs {
         let mut order = rows.train.clone();
         order.shuffle(&mut StdRng::seed_from_u64(derive(s.seed, 2, l.state.epoch as u64)));
         if l.state.batch == 0 {
@@ -597,7 +718,8 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant) -> Res
                 }
             }
             let dropout = (s.dropout > 0.0).then(|| (s.dropout as f32, derive(s.seed, 4, l.state.step as u64)));
-            let nll = workers.nll_and_grad(&l.model.flow, &batch, None, chunk.len(), dropout, &mut grad);
+            let classes = rows.classes_of(chunk);
+            let nll = workers.nll_and_grad(&l.model.flow, &batch, classes.as_deref(), chunk.len(), dropout, &mut grad);
             if opts.inject_nan_at_step == Some(l.state.step) && !injected {
                 injected = true;
                 grad[0] = f32::NAN;
@@ -671,6 +793,7 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant) -> Res
         epoch_samples = 0;
         write_log(run, &l.state.log)?;
         let done = l.state.since_best >= s.patience || l.state.epoch > s.epochs;
+        l.state.finished = done;
         if improved || epoch % s.checkpoint_every == 0 || done {
             save_checkpoint(run, l)?;
             last_checkpoint = Instant::now();
@@ -755,7 +878,7 @@ fn write_log(run: &Run, log: &[LogEntry]) -> Result<()> {
 
 /// Fill the training summary and the training log-likelihood spread.
 fn finish(run: &Run, l: &mut Learned) -> Result<()> {
-    let rows = Rows::new(run, &l.settings);
+    let rows = Rows::new(run, &l.settings, &l.model);
     let mut sample = rows.train.clone();
     if sample.len() > SPREAD_ROWS {
         sample.shuffle(&mut StdRng::seed_from_u64(derive(l.settings.seed, 5, 0)));
@@ -775,7 +898,44 @@ fn finish(run: &Run, l: &mut Learned) -> Result<()> {
     t.best_validation_nll = st.best_val;
     t.gaussian_validation_nll = st.gaussian_val;
     l.model.meta.train_log_likelihood = Spread { mean, std };
+    scoring_references(&rows, l);
     Ok(())
+}
+
+/// Validation rows kept in the model for the multi-statistic score's KDE.
+const KDE_ROWS: usize = 2000;
+/// Validation NLLs kept in the model for the batch typicality test.
+const VALIDATION_NLL_ROWS: usize = 10_000;
+
+/// Keep what scores are computed against: validation NLLs, and the
+/// validation rows' statistics for the multi-statistic KDE (standardized;
+/// a statistic that does not vary, such as the log-det of a Gaussian, is
+/// left out).
+fn scoring_references(rows: &Rows, l: &mut Learned) {
+    let mut sample = rows.val.clone();
+    sample.shuffle(&mut StdRng::seed_from_u64(derive(l.settings.seed, 8, 0)));
+    sample.truncate(VALIDATION_NLL_ROWS);
+    let e = l.model.evaluate_rows(rows.val_data, &sample, l.settings.threads);
+    let kde_n = sample.len().min(KDE_ROWS);
+    let mut meta = ScoringMeta { validation_rows: sample.len(), ..ScoringMeta::default() };
+    let mut columns = Vec::new();
+    for name in crate::score::KDE_STATS {
+        let v: Vec<f64> = (0..kde_n).map(|r| crate::score::statistic(&e, name, r)).collect();
+        let mean = v.iter().sum::<f64>() / kde_n as f64;
+        let std = (v.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / kde_n as f64).sqrt();
+        if std > 1e-9 * mean.abs().max(1.0) {
+            meta.kde_columns.push(name.to_string());
+            meta.kde_mean.push(mean);
+            meta.kde_std.push(std);
+            columns.push(v);
+        }
+    }
+    meta.kde_rows = if columns.is_empty() { 0 } else { kde_n };
+    l.model.refs = ScoringRefs {
+        kde_points: (0..meta.kde_rows).flat_map(|r| columns.iter().map(move |c| c[r])).collect(),
+        validation_nll: e.log_likelihood.iter().map(|v| -v).collect(),
+    };
+    l.model.meta.scoring = meta;
 }
 
 fn class_counts(labels: &[i64]) -> Vec<ClassCount> {

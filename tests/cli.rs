@@ -57,7 +57,10 @@ fn fit_score_inspect_sample_end_to_end() {
         .assert()
         .success();
     let csv = std::fs::read_to_string(&scores).unwrap();
-    assert_eq!(csv.lines().next().unwrap(), "log_likelihood,bits_per_dim,dead_feature_deviation");
+    assert_eq!(
+        csv.lines().next().unwrap(),
+        "log_likelihood,bits_per_dim,base_log_density,log_det,latent_norm,mahalanobis_sq,typicality,multi_statistic,dead_feature_deviation"
+    );
     let ll_train = column(&csv, "log_likelihood");
     assert_eq!(ll_train.len(), 800);
     // bits per dimension = -log_likelihood / (D ln 2)
