@@ -30,7 +30,7 @@ ck="$work/run.checkpoint.safetensors"
 rm -f "$ck"
 SECONDS=0
 ./target/release/tidemark fit "$data" -o "$work/model.safetensors" --checkpoint "$ck" \
-  --epochs 1 --batch-size 256 --hidden 512 --layers 6 -q &
+  --epochs 1000 --patience 1000 --batch-size 256 --hidden 512 --layers 6 -q &
 pid=$!
 peak=0
 while kill -0 "$pid" 2>/dev/null; do

@@ -151,18 +151,23 @@ expected["kde"] = {
 }
 
 # Ledoit-Wolf shrinkage on few rows relative to the dimension, by scikit-learn,
-# and the Gaussian log-density under the shrunk covariance, by scipy.
+# applied to the standardized features (population std) and scaled back; and
+# the Gaussian log-density under the shrunk covariance, by scipy.
 import sklearn
 from sklearn.covariance import LedoitWolf
 
 few = (rng.normal(size=(60, 10)) @ rng.normal(size=(10, 10)) * 0.5 + 2.0).astype(np.float32)
+few[:, 3] *= 40.0  # features on different scales
 np.save(path("few_rows.npy"), few)
-lw = LedoitWolf().fit(few.astype(np.float64))
+few64 = few.astype(np.float64)
+sd = few64.std(axis=0)
+lw = LedoitWolf().fit(few64 / sd)
+lw_cov = lw.covariance_ * np.outer(sd, sd)
 expected["ledoit_wolf"] = {
-    "covariance": lw.covariance_.tolist(),
+    "covariance": lw_cov.tolist(),
     "shrinkage": float(lw.shrinkage_),
-    "mean": lw.location_.tolist(),
-    "logpdf_first_rows": multivariate_normal(lw.location_, lw.covariance_).logpdf(few[:5].astype(np.float64)).tolist(),
+    "mean": few64.mean(axis=0).tolist(),
+    "logpdf_first_rows": multivariate_normal(few64.mean(axis=0), lw_cov).logpdf(few64[:5]).tolist(),
 }
 expected["sklearn_version"] = sklearn.__version__
 

@@ -104,8 +104,11 @@ pub struct Covariance<'a> {
     /// Pool within classes: each row is centred on its class mean.
     /// `class_of[row]` indexes `means` (full input width).
     pub classes: Option<(&'a [u32], &'a [Vec<f64>])>,
-    /// Shrink towards a scaled identity with the Ledoit-Wolf intensity
-    /// (Ledoit & Wolf 2004, as computed by scikit-learn's LedoitWolf).
+    /// Shrink the correlation matrix (the covariance of the standardized
+    /// features) towards a scaled identity with the Ledoit-Wolf intensity
+    /// (Ledoit & Wolf 2004, as scikit-learn's LedoitWolf computes it), then
+    /// scale back: unlike shrinking the raw covariance, the result does not
+    /// depend on the features' units.
     pub ledoit_wolf: bool,
 }
 
@@ -145,7 +148,10 @@ impl Preprocessor {
         };
         match method {
             Method::Standardize => pre.scale = pre.live.iter().map(|&j| std[j]).collect(),
-            Method::Pca => pre.fit_pca(x, idx, how),
+            Method::Pca => {
+                let live_std: Vec<f64> = pre.live.iter().map(|&j| std[j]).collect();
+                pre.fit_pca(x, idx, how, &live_std)
+            }
         }
         Ok(pre)
     }
@@ -158,8 +164,8 @@ impl Preprocessor {
     /// Covariance (maximum-likelihood, divided by n) of the live features
     /// about the already exact mean (or each row's class mean), accumulated
     /// in f64 over row blocks; also the sum of squared squared row norms
-    /// that the Ledoit-Wolf intensity needs.
-    fn covariance(&self, x: &Dataset, idx: &[usize], how: &Covariance) -> (Vec<f64>, f64) {
+    /// that the Ledoit-Wolf intensity needs, for rows scaled by `std`.
+    fn covariance(&self, x: &Dataset, idx: &[usize], how: &Covariance, std: &[f64]) -> (Vec<f64>, f64) {
         let d = self.dim();
         let mut cov = vec![0.0f64; d * d];
         let mut sum_norm4 = 0.0;
@@ -183,7 +189,7 @@ impl Preprocessor {
                         }
                     }
                 }
-                sum_norm4 += c.iter().map(|v| v * v).sum::<f64>().powi(2);
+                sum_norm4 += c.iter().zip(std).map(|(v, s)| (v / s).powi(2)).sum::<f64>().powi(2);
             }
             let c = &centered[..n * d];
             matmul(&mut cov, d, true, View::transposed(c, n, d), View::rows(c, n, d, d));
@@ -192,11 +198,23 @@ impl Preprocessor {
         (cov, sum_norm4)
     }
 
-    fn fit_pca(&mut self, x: &Dataset, idx: &[usize], how: &Covariance) {
+    fn fit_pca(&mut self, x: &Dataset, idx: &[usize], how: &Covariance, std: &[f64]) {
         let d = self.dim();
-        let (mut cov, sum_norm4) = self.covariance(x, idx, how);
+        let (mut cov, sum_norm4) = self.covariance(x, idx, how, std);
         if how.ledoit_wolf {
+            // Shrink the correlation matrix, so that the result does not
+            // depend on the features' units, then scale back.
+            for i in 0..d {
+                for j in 0..d {
+                    cov[i * d + j] /= std[i] * std[j];
+                }
+            }
             self.shrinkage = ledoit_wolf_shrink(&mut cov, d, idx.len(), sum_norm4);
+            for i in 0..d {
+                for j in 0..d {
+                    cov[i * d + j] *= std[i] * std[j];
+                }
+            }
         }
         let cov = nalgebra::DMatrix::from_row_slice(d, d, &cov);
         let eig = nalgebra::SymmetricEigen::new(cov);

@@ -147,7 +147,7 @@ const FEW_ROWS_PER_DIM: f64 = 50.0;
 impl Settings {
     /// Fill every unset option from the size of the training set:
     /// `n` training rows, `d` live dimensions.
-    pub fn resolve(o: &FitOptions, n: usize, d: usize, val_file: bool) -> Result<Settings> {
+    pub fn resolve(o: &FitOptions, n: usize, d: usize, val_file: bool, labelled: bool) -> Result<Settings> {
         let method = o.method.unwrap_or(Method::Pca);
         let kind = o.kind.unwrap_or_default();
         if kind != Kind::Flow && method != Method::Pca {
@@ -158,8 +158,10 @@ impl Settings {
         }
         let per_dim = n as f64 / d as f64;
         let few = per_dim < FEW_ROWS_PER_DIM;
-        let default_dims =
-            if few && method == Method::Pca && kind == Kind::Flow { d.div_ceil(3).max(2.min(d)) } else { d };
+        // Class-conditional flows keep every dimension: class means on a
+        // shared standard-normal remainder could not differ.
+        let reduce = few && method == Method::Pca && kind == Kind::Flow && !labelled;
+        let default_dims = if reduce { d.div_ceil(3).max(2.min(d)) } else { d };
         let flow_dims = o.flow_dims.unwrap_or(default_dims);
         if flow_dims == 0 || flow_dims > d {
             return Err(Error::Invalid(format!("--flow-dims must be between 1 and {d} (the live features)")));
@@ -461,7 +463,7 @@ fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
         ledoit_wolf: kind != Kind::Flow && few_rows,
     };
     let pre = Preprocessor::fit_with(x, &train_idx, method, dead_threshold, &how).map_err(Error::Invalid)?;
-    let settings = Settings::resolve(opts, train_idx.len(), pre.dim(), run.val.is_some())?;
+    let settings = Settings::resolve(opts, train_idx.len(), pre.dim(), run.val.is_some(), run.labels.is_some())?;
     let spec = FlowSpec {
         dim: settings.flow_dims,
         layers: settings.layers,
@@ -523,8 +525,35 @@ fn new_learned(run: &Run, model: Model, settings: Settings, finished: bool) -> R
         let init_rows = &rows.train[..rows.train.len().min(4096)];
         let head = rows.whitened_head(&learned.model, init_rows);
         learned.model.flow.init_actnorm(&head, init_rows.len());
+        if learned.model.classes() > 0 {
+            init_class_means(&mut learned.model.flow, &rows, &head, init_rows);
+        }
     }
     Ok(learned)
+}
+
+/// Start each class's base mean at the mean latent of its rows under the
+/// freshly initialised flow, so training starts from the class-Gaussian fit
+/// rather than from one shared mean.
+fn init_class_means(flow: &mut Flow, rows: &Rows, head: &[f32], idx: &[usize]) {
+    let k = flow.spec.dim;
+    let Some(classes) = rows.classes_of(idx) else { return };
+    let mut ws = crate::flow::Workspace::new(&flow.spec, idx.len());
+    crate::flow::forward(flow, &mut ws, head, idx.len(), None);
+    let z = ws.latent(k, flow.spec.layers, idx.len());
+    let mut sums = vec![0.0f64; flow.spec.classes * k];
+    let mut counts = vec![0usize; flow.spec.classes];
+    for (r, &c) in classes.iter().enumerate() {
+        counts[c as usize] += 1;
+        for j in 0..k {
+            sums[c as usize * k + j] += z[r * k + j] as f64;
+        }
+    }
+    for c in 0..flow.spec.classes {
+        for j in 0..k {
+            flow.params[flow.class_means + c * k + j] = (sums[c * k + j] / counts[c].max(1) as f64) as f32;
+        }
+    }
 }
 
 /// Train the background flow of the likelihood-ratio score (Ren et al.

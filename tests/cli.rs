@@ -224,3 +224,57 @@ fn config_files_set_options_flags_override_and_unknown_keys_are_named() {
         tidemark::train::FitOptions::from_json_file(&path).unwrap_or_else(|e| panic!("{e}"));
     }
 }
+
+#[test]
+fn output_formats_columns_batch_test_and_background_ratio() {
+    let dir = tempfile::tempdir().unwrap();
+    let train = dir.path().join("train.npy");
+    save(&train, &data(600, 0.0));
+    let model = dir.path().join("model.safetensors");
+    let (t, m) = (train.to_str().unwrap(), model.to_str().unwrap());
+    tidemark().args(["fit", t, "-o", m, "--epochs", "3", "--background-noise", "0.5", "-q"]).assert().success();
+
+    // CSV with chosen columns, including the background likelihood ratio.
+    let out = tidemark()
+        .args(["score", m, t, "-o", "-", "--columns", "log_likelihood,log_likelihood_ratio"])
+        .assert()
+        .success();
+    let csv = String::from_utf8(out.get_output().stdout.clone()).unwrap();
+    assert_eq!(csv.lines().next().unwrap(), "log_likelihood,log_likelihood_ratio");
+    assert!(column(&csv, "log_likelihood_ratio").iter().all(|v| v.is_finite()));
+
+    // .npy (float32, rows x columns) with the column names beside it.
+    let npy = dir.path().join("s.npy");
+    tidemark()
+        .args(["score", m, t, "-o", npy.to_str().unwrap(), "--columns", "typicality,latent_norm"])
+        .assert()
+        .success();
+    let arr = tidemark::data::read_matrix(&npy, None).unwrap();
+    assert_eq!((arr.rows, arr.cols), (600, 2));
+    let side: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(dir.path().join("s.json")).unwrap()).unwrap();
+    assert_eq!(side["columns"], serde_json::json!(["typicality", "latent_norm"]));
+
+    // JSON lines, one object per vector; and the batch typicality test.
+    let jsonl = dir.path().join("s.jsonl");
+    tidemark().args(["score", m, t, "-o", jsonl.to_str().unwrap(), "--batch", "50"]).assert().success();
+    let lines: Vec<serde_json::Value> =
+        std::fs::read_to_string(&jsonl).unwrap().lines().map(|l| serde_json::from_str(l).unwrap()).collect();
+    assert_eq!(lines.len(), 600);
+    assert!(lines[0]["multi_statistic"].is_number());
+    let batches = std::fs::read_to_string(dir.path().join("s.batches.csv")).unwrap();
+    assert_eq!(
+        batches.lines().next().unwrap(),
+        "batch,first_row,rows,mean_nll,statistic,threshold,alpha,out_of_distribution"
+    );
+    assert_eq!(batches.lines().count(), 1 + 12);
+
+    let bad = dir.path().join("bad.csv");
+    refuses(
+        &["score", m, t, "-o", bad.to_str().unwrap(), "--columns", "nope"],
+        "this model has no column 'nope'",
+        &bad,
+    );
+    let bad = dir.path().join("bad.txt");
+    refuses(&["score", m, t, "-o", bad.to_str().unwrap()], "output must end in .csv, .npy or .jsonl", &bad);
+}
