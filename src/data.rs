@@ -221,7 +221,7 @@ impl Dataset {
 }
 
 /// A cheap, well-mixed 64-bit step (splitmix64 finaliser) for checksums.
-fn mix64(mut z: u64) -> u64 {
+pub fn mix64(mut z: u64) -> u64 {
     z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
     z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
     z ^ (z >> 31)
@@ -608,4 +608,76 @@ mod tests {
         let bytes = std::fs::read(&p).unwrap();
         assert_eq!((bytes.len() - 24) % 64, 0);
     }
+}
+
+// ---------------------------------------------------------------- score files
+
+/// Read a score file written by `tidemark score`: CSV with a header, `.npy`
+/// with its sidecar `.json` of column names, or JSON lines (null = NaN).
+/// Returns the column names and the values column by column.
+pub fn read_score_table(path: &Path) -> Result<(Vec<String>, Vec<Vec<f64>>), DataError> {
+    let (names, rows): (Vec<String>, Vec<Vec<f64>>) = match extension(path).as_str() {
+        "csv" => {
+            let mut records = csv_records(path)?;
+            let names = split_header(&mut records).ok_or_else(|| DataError {
+                path: path.to_path_buf(),
+                msg: "has no header row naming the score columns".into(),
+            })?;
+            let rows = records
+                .iter()
+                .map(|(line, rec)| {
+                    if rec.len() != names.len() {
+                        return fail(path, format!("line {line} has {} fields, expected {}", rec.len(), names.len()));
+                    }
+                    rec.iter()
+                        .enumerate()
+                        .map(|(c, f)| f.parse::<f64>().or_else(|_| fail(path, format!("line {line}, column '{}': '{f}' is not a number", names[c]))))
+                        .collect()
+                })
+                .collect::<Result<_, _>>()?;
+            (names, rows)
+        }
+        "npy" => {
+            let m = read_matrix(path, None)?;
+            let side = path.with_extension("json");
+            let text = std::fs::read_to_string(&side).or_else(|e| fail(&side, format!("cannot read the column names beside {}: {e}", path.display())))?;
+            let doc: serde_json::Value = serde_json::from_str(&text).or_else(|e| fail(&side, format!("bad JSON: {e}")))?;
+            let names: Vec<String> = doc["columns"]
+                .as_array()
+                .map(|a| a.iter().filter_map(|v| v.as_str().map(str::to_string)).collect())
+                .unwrap_or_default();
+            if names.len() != m.cols {
+                return fail(&side, format!("names {} columns but {} has {}", names.len(), path.display(), m.cols));
+            }
+            (names, (0..m.rows).map(|r| m.row(r).iter().map(|&v| v as f64).collect()).collect())
+        }
+        "jsonl" => {
+            let text = std::fs::read_to_string(path).or_else(|e| fail(path, format!("cannot read: {e}")))?;
+            let mut names: Vec<String> = Vec::new();
+            let mut rows = Vec::new();
+            for (i, line) in text.lines().enumerate().filter(|(_, l)| !l.trim().is_empty()) {
+                let obj: serde_json::Map<String, serde_json::Value> =
+                    serde_json::from_str(line).or_else(|e| fail(path, format!("line {}: {e}", i + 1)))?;
+                if names.is_empty() {
+                    names = obj.keys().cloned().collect();
+                }
+                let row = names
+                    .iter()
+                    .map(|n| match obj.get(n) {
+                        Some(serde_json::Value::Null) => Ok(f64::NAN),
+                        Some(v) => v.as_f64().ok_or(()).or_else(|_| fail(path, format!("line {}: '{n}' is not a number", i + 1))),
+                        None => fail(path, format!("line {}: missing '{n}'", i + 1)),
+                    })
+                    .collect::<Result<Vec<f64>, _>>()?;
+                rows.push(row);
+            }
+            (names, rows)
+        }
+        other => return fail(path, format!("unsupported score file type '.{other}' (expected .csv, .npy or .jsonl)")),
+    };
+    if rows.is_empty() {
+        return fail(path, "has no rows");
+    }
+    let columns = (0..names.len()).map(|c| rows.iter().map(|r| r[c]).collect()).collect();
+    Ok((names, columns))
 }

@@ -43,14 +43,14 @@ pub fn run(data_dir: &Path, out_dir: &Path, threads: usize) -> Result<()> {
     model.save(&model_path)?;
     println!("{}", model.meta.fit_summary(&model_path));
 
-    let scorer = Scorer::new(&model);
+    let scorer = Scorer::new(&model, None);
     let mut table = Vec::new();
     for set in SETS {
         let path = data_dir.join(format!("{set}.npy"));
         let data = Dataset::open(&path, None)?;
         model.check_width(&path, data.cols)?;
         let out = out_dir.join(format!("scores_{set}.csv"));
-        score_to_file(&model, &data, &out, &ScoreOptions { columns: vec![], threads, batch: None })?;
+        score_to_file(&model, &data, &out, &ScoreOptions { columns: vec![], threads, batch: None, calibration: None })?;
         let (values, nll) = anomaly_values(&model, &scorer, &data, threads);
         table.push((set, values, nll, out));
     }

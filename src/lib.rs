@@ -7,6 +7,7 @@
 //! fitted model and its file) -> [`score`] (per-vector scores) -> [`output`]
 //! (files out). [`demo`] runs the whole job on the shipped demo data.
 
+pub mod calibrate;
 pub mod data;
 pub mod demo;
 pub mod error;
@@ -17,6 +18,7 @@ pub mod linalg;
 pub mod model;
 pub mod output;
 pub mod preprocess;
+pub mod report;
 pub mod score;
 pub mod train;
 

@@ -10,7 +10,8 @@ use std::sync::Arc;
 use tidemark::model::{Kind, Model};
 use tidemark::preprocess::Method;
 use tidemark::train::{default_threads, FitOptions, Run};
-use tidemark::{data, demo, score, Result};
+use tidemark::calibrate::{self, Calibration};
+use tidemark::{data, demo, evaluate, score, Result};
 
 #[derive(Parser)]
 #[command(
@@ -46,10 +47,61 @@ enum Command {
         /// Where the batch test goes [default: OUTPUT with .batches.csv].
         #[arg(long)]
         batch_output: Option<PathBuf>,
+        /// Calibration from `tidemark calibrate`: adds p_value and flagged columns.
+        #[arg(long)]
+        calibration: Option<PathBuf>,
         #[command(flatten)]
         input: InputArgs,
         #[arg(long, default_value_t = default_threads())]
         threads: usize,
+    },
+    /// Pick a threshold at a false-alarm rate from held-out in-distribution vectors (split-conformal).
+    Calibrate {
+        model: PathBuf,
+        /// Held-out in-distribution vectors, never used for fitting.
+        held_out: PathBuf,
+        /// Where the calibration goes (.json).
+        #[arg(short, long)]
+        output: PathBuf,
+        /// Target false-alarm rate (share of in-distribution vectors flagged).
+        #[arg(long)]
+        false_alarm: f64,
+        /// Score column to calibrate.
+        #[arg(long, default_value = "log_likelihood")]
+        score: String,
+        #[command(flatten)]
+        input: InputArgs,
+        #[arg(long, default_value_t = default_threads())]
+        threads: usize,
+    },
+    /// Measure how well each score separates in-distribution scores from known outlier sets.
+    Evaluate {
+        /// Scores of held-out in-distribution vectors (from `tidemark score`).
+        #[arg(long)]
+        id: PathBuf,
+        /// An outlier set's scores, as NAME=FILE; repeat for several.
+        #[arg(long, value_parser = parse_named, required = true)]
+        ood: Vec<(String, PathBuf)>,
+        /// Columns to evaluate, comma-separated [default: every score column].
+        #[arg(long, value_delimiter = ',')]
+        columns: Vec<String>,
+        /// Full results as JSON.
+        #[arg(short, long)]
+        output: Option<PathBuf>,
+        /// A self-contained HTML report with histograms, ROC curves and metrics.
+        #[arg(long)]
+        report: Option<PathBuf>,
+        /// Calibration whose threshold the report draws.
+        #[arg(long)]
+        calibration: Option<PathBuf>,
+        /// Training log (from `fit --log`) whose curves the report draws.
+        #[arg(long)]
+        log: Option<PathBuf>,
+        /// Bootstrap resamples for the 95% intervals.
+        #[arg(long, default_value_t = 1000)]
+        bootstrap: usize,
+        #[arg(long, default_value_t = 0)]
+        seed: u64,
     },
     /// Print how a model was made and how it did.
     Inspect {
@@ -260,15 +312,66 @@ fn run(cli: Cli) -> Result<()> {
             }
             Ok(())
         }
-        Command::Score { model, data: path, output, columns, batch, batch_alpha, batch_output, input, threads } => {
+        Command::Score { model, data: path, output, columns, batch, batch_alpha, batch_output, calibration, input, threads } => {
             let m = Model::load(&model)?;
+            let calibration = match &calibration {
+                Some(p) => {
+                    let c = Calibration::load(p)?;
+                    c.check_model(&m, p)?;
+                    Some(c)
+                }
+                None => None,
+            };
             let x = data::Dataset::open(&path, input.tensor.as_deref())?;
             m.check_width(&path, x.cols)?;
             let batch = match batch {
                 Some(size) => Some(score::BatchTest::new(size, batch_alpha, batch_output, &output)?),
                 None => None,
             };
-            score::score_to_file(&m, &x, &output, &score::ScoreOptions { columns, threads, batch })
+            score::score_to_file(&m, &x, &output, &score::ScoreOptions { columns, threads, batch, calibration })
+        }
+        Command::Calibrate { model, held_out, output, false_alarm, score, input, threads } => {
+            let m = Model::load(&model)?;
+            let x = data::Dataset::open(&held_out, input.tensor.as_deref())?;
+            m.check_width(&held_out, x.cols)?;
+            let (cal, warnings) = calibrate::calibrate(&m, &x, &score, false_alarm, threads)?;
+            for w in warnings {
+                eprintln!("warning: {w}");
+            }
+            cal.save(&output)?;
+            eprintln!(
+                "{}: {} flagged when {} {} {:.6} (conformal rank {} of {} held-out vectors, false-alarm rate {})",
+                output.display(),
+                cal.score,
+                cal.score,
+                match cal.direction {
+                    calibrate::Direction::Higher => "is above",
+                    calibrate::Direction::Lower => "is below",
+                    calibrate::Direction::TwoSided => "is this far from its median:",
+                },
+                cal.threshold_raw,
+                cal.rank,
+                cal.rows,
+                cal.false_alarm
+            );
+            Ok(())
+        }
+        Command::Evaluate { id, ood, columns, output, report, calibration, log, bootstrap, seed } => {
+            let calibration = calibration.as_deref().map(Calibration::load).transpose()?;
+            let log = log.as_deref().map(tidemark::train::read_log).transpose()?;
+            let results = evaluate::run(&evaluate::EvaluateOptions {
+                id: &id,
+                ood: &ood,
+                columns: &columns,
+                bootstrap,
+                seed,
+                output: output.as_deref(),
+                report: report.as_deref(),
+                calibration: calibration.as_ref(),
+                log: log.as_deref(),
+            })?;
+            print!("{}", evaluate::table(&results));
+            Ok(())
         }
         Command::Inspect { model, json } => {
             let m = Model::load(&model)?;
@@ -287,6 +390,14 @@ fn run(cli: Cli) -> Result<()> {
             })
         }
         Command::Demo { data_dir, out_dir, threads } => demo::run(&data_dir, &out_dir, threads),
+    }
+}
+
+/// `NAME=FILE` for `--ood`.
+fn parse_named(s: &str) -> std::result::Result<(String, PathBuf), String> {
+    match s.split_once('=') {
+        Some((name, path)) if !name.is_empty() && !path.is_empty() => Ok((name.to_string(), PathBuf::from(path))),
+        _ => Err(format!("expected NAME=FILE, got '{s}'")),
     }
 }
 

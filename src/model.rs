@@ -37,6 +37,10 @@ pub struct TrainingSummary {
     pub best_validation_nll: f64,
     /// Validation NLL of the untrained flow (the whitened Gaussian).
     pub gaussian_validation_nll: f64,
+    /// Checksum of the training data file (hex), to warn when the same rows
+    /// are used for calibration.
+    #[serde(default)]
+    pub data_checksum: String,
 }
 
 /// Mean and standard deviation of a statistic over the training rows.
@@ -275,6 +279,23 @@ impl Model {
             out.dead_deviation.extend(rows.chunks(x.cols).map(|r| self.pre.dead_deviation(r)));
         }
         out
+    }
+
+    /// A checksum of everything that determines the model's scores, to
+    /// recognise it in calibration files.
+    pub fn fingerprint(&self) -> String {
+        let mut h = 0x7D3A_u64;
+        let mut eat = |bits: u64| h = crate::data::mix64(h ^ bits);
+        for v in self.flow.params.iter().chain(self.background.iter().flat_map(|b| b.params.iter())) {
+            eat(v.to_bits() as u64);
+        }
+        for v in self.pre.mean.iter().chain(&self.pre.scale) {
+            eat(v.to_bits());
+        }
+        for v in self.pre.components.iter().flatten() {
+            eat(v.to_bits() as u64);
+        }
+        format!("{h:016x}")
     }
 
     /// Number of classes of a class-conditional model (0 otherwise).

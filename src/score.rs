@@ -2,6 +2,7 @@
 //! to CSV, `.npy` (float32, column names in a sidecar `.json`) or JSON lines;
 //! and the batch typicality test over consecutive batches.
 
+use crate::calibrate::Calibration;
 use crate::data::Dataset;
 use crate::error::{Error, Result};
 use crate::kde::Kde;
@@ -44,6 +45,8 @@ pub fn column_help(name: &str) -> &'static str {
         "predicted_class" => "most probable class label",
         "class_probability" => "posterior probability of the predicted class",
         "dead_feature_deviation" => "largest |x_j - training value| on dead features; higher = more anomalous",
+        "p_value" => "conformal p-value of the calibrated score; lower = more anomalous",
+        "flagged" => "1 when the p-value is at most the calibrated false-alarm rate",
         _ => "log p(x | class), nats, input space; higher = more typical",
     }
 }
@@ -53,15 +56,18 @@ pub fn column_help(name: &str) -> &'static str {
 /// are not anomaly scores (predicted class, log-det).
 pub fn higher_is_anomalous(name: &str) -> Option<bool> {
     match name {
-        "bits_per_dim" | "mahalanobis_sq" | "typicality" | "multi_statistic" | "dead_feature_deviation" => Some(true),
-        "log_likelihood" | "base_log_density" | "log_likelihood_ratio" | "class_probability" => Some(false),
+        "bits_per_dim" | "mahalanobis_sq" | "typicality" | "multi_statistic" | "dead_feature_deviation" | "flagged" => {
+            Some(true)
+        }
+        "log_likelihood" | "base_log_density" | "log_likelihood_ratio" | "class_probability" | "p_value" => Some(false),
         n if n.starts_with("class_log_likelihood_") => Some(false),
         _ => None,
     }
 }
 
-/// Every column a model can produce, in output order.
-pub fn available_columns(model: &Model) -> Vec<String> {
+/// Every column a model can produce, in output order (with a calibration,
+/// `p_value` and `flagged` at the end).
+pub fn available_columns(model: &Model, calibrated: bool) -> Vec<String> {
     let mut cols: Vec<String> = [
         "log_likelihood",
         "bits_per_dim",
@@ -84,6 +90,10 @@ pub fn available_columns(model: &Model) -> Vec<String> {
         cols.extend(model.meta.classes.iter().map(|c| format!("class_log_likelihood_{}", c.label)));
     }
     cols.push("dead_feature_deviation".into());
+    if calibrated {
+        cols.push("p_value".into());
+        cols.push("flagged".into());
+    }
     cols
 }
 
@@ -92,10 +102,11 @@ pub struct Scorer<'a> {
     model: &'a Model,
     kde: Option<Kde>,
     per_bit: f64,
+    calibration: Option<&'a Calibration>,
 }
 
 impl<'a> Scorer<'a> {
-    pub fn new(model: &'a Model) -> Scorer<'a> {
+    pub fn new(model: &'a Model, calibration: Option<&'a Calibration>) -> Scorer<'a> {
         let s = &model.meta.scoring;
         let k = s.kde_columns.len();
         let standardized: Vec<f64> = model
@@ -105,7 +116,7 @@ impl<'a> Scorer<'a> {
             .flat_map(|p| p.iter().enumerate().map(|(j, v)| (v - s.kde_mean[j]) / s.kde_std[j]).collect::<Vec<_>>())
             .collect();
         let kde = if k == 0 { None } else { Kde::new(&standardized, k) };
-        Scorer { model, kde, per_bit: model.dim() as f64 * std::f64::consts::LN_2 }
+        Scorer { model, kde, per_bit: model.dim() as f64 * std::f64::consts::LN_2, calibration }
     }
 
     /// Value of column `name` for row `r` of `e`.
@@ -139,6 +150,15 @@ impl<'a> Scorer<'a> {
             "predicted_class" => m.meta.classes[e.predicted_class[r]].label as f64,
             "class_probability" => e.class_probability[r],
             "dead_feature_deviation" => e.dead_deviation[r],
+            "p_value" | "flagged" => {
+                let cal = self.calibration.expect("calibrated columns need a calibration");
+                let p = cal.p_value(self.value(e, &cal.score, r));
+                if name == "p_value" {
+                    p
+                } else {
+                    f64::from(u8::from(p <= cal.false_alarm))
+                }
+            }
             other => {
                 let label = other.trim_start_matches("class_log_likelihood_");
                 let c = m.meta.classes.iter().position(|c| c.label.to_string() == label).expect("known class column");
@@ -177,6 +197,8 @@ pub struct ScoreOptions {
     pub threads: usize,
     /// Batch typicality test: batch size, significance, and where to write.
     pub batch: Option<BatchTest>,
+    /// Adds `p_value` and `flagged`.
+    pub calibration: Option<Calibration>,
 }
 
 pub struct BatchTest {
@@ -209,8 +231,8 @@ impl BatchTest {
 const SCORE_CHUNK: usize = 8192;
 
 /// The columns to write: all, or the requested ones (each must exist).
-pub fn select_columns(model: &Model, requested: &[String]) -> Result<Vec<String>> {
-    let all = available_columns(model);
+pub fn select_columns(model: &Model, requested: &[String], calibrated: bool) -> Result<Vec<String>> {
+    let all = available_columns(model, calibrated);
     if requested.is_empty() {
         return Ok(all);
     }
@@ -227,9 +249,9 @@ pub fn select_columns(model: &Model, requested: &[String]) -> Result<Vec<String>
 
 /// Score every row of `x` and write the scores to `output`, chunk by chunk.
 pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOptions) -> Result<()> {
-    let columns = select_columns(model, &opts.columns)?;
+    let columns = select_columns(model, &opts.columns, opts.calibration.is_some())?;
     let format = Format::of(output)?;
-    let scorer = Scorer::new(model);
+    let scorer = Scorer::new(model, opts.calibration.as_ref());
     let mut batch_nll: Vec<f64> = Vec::new();
     crate::output::write_atomic(output, |w| {
         let io = |source| Error::Io { path: output.to_path_buf(), source };

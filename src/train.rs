@@ -894,6 +894,18 @@ fn save_checkpoint(run: &Run, l: &Learned) -> Result<()> {
     l.model.save_with(path, extra, Some((CHECKPOINT_KEY, state)))
 }
 
+/// Read a JSON-lines training log written by `fit --log`.
+pub fn read_log(path: &Path) -> Result<Vec<LogEntry>> {
+    let text = std::fs::read_to_string(path).map_err(|e| Error::Invalid(format!("{}: cannot read: {e}", path.display())))?;
+    text.lines()
+        .enumerate()
+        .filter(|(_, l)| !l.trim().is_empty())
+        .map(|(i, l)| {
+            serde_json::from_str(l).map_err(|e| Error::Invalid(format!("{}: line {}: not a training log entry ({e})", path.display(), i + 1)))
+        })
+        .collect()
+}
+
 fn write_log(run: &Run, log: &[LogEntry]) -> Result<()> {
     let Some(path) = run.log else { return Ok(()) };
     crate::output::write_atomic(path, |w| {
@@ -926,6 +938,7 @@ fn finish(run: &Run, l: &mut Learned) -> Result<()> {
     t.best_train_nll = -mean;
     t.best_validation_nll = st.best_val;
     t.gaussian_validation_nll = st.gaussian_val;
+    t.data_checksum = format!("{:016x}", st.data.checksum);
     l.model.meta.train_log_likelihood = Spread { mean, std };
     scoring_references(&rows, l);
     Ok(())

@@ -167,7 +167,7 @@ fn wine_unseen_cultivar_is_separated_and_seen_cultivars_are_recognised() {
             .assert()
             .success();
         let model = Model::load(&model_path).unwrap();
-        let scorer = Scorer::new(&model);
+        let scorer = Scorer::new(&model, None);
         let eval = |p: &Path| {
             let d = Dataset::open(p, None).unwrap();
             let e = model.evaluate(&d, 2);
@@ -196,7 +196,7 @@ fn stuck_sensor_fools_likelihood_but_not_typicality_or_multi_statistic() {
     let x = Dataset::open(&demo.join("train.npy"), None).unwrap();
     let labels = read_labels(&demo.join("train_labels.npy")).unwrap();
     let model = fit(&x, Some(&labels), &opts()).unwrap();
-    let scorer = Scorer::new(&model);
+    let scorer = Scorer::new(&model, None);
     let column = |set: &str, name: &str| -> Vec<f64> {
         let d = Dataset::open(&demo.join(format!("{set}.npy")), None).unwrap();
         let e = model.evaluate(&d, 2);

@@ -1,0 +1,237 @@
+//! Calibration: a threshold with a known false-alarm rate and conformal
+//! p-values, from scores of held-out in-distribution vectors
+//! (split-conformal; Bates et al. 2023, "Testing for outliers with
+//! conformal p-values").
+//!
+//! Guarantee: if a new in-distribution vector and the n calibration vectors
+//! are exchangeable (same distribution, calibration rows never used for
+//! fitting), its p-value is super-uniform, P(p <= a) <= a, so it is flagged
+//! with probability at most alpha. It is marginal (over the draw of the
+//! calibration set and the new vector), not conditional on either, and it
+//! breaks under drift or when calibration rows were used in training.
+
+use crate::data::Dataset;
+use crate::error::{Error, Result};
+use crate::model::Model;
+use crate::score::{higher_is_anomalous, Scorer};
+use std::path::Path;
+
+/// How a score column becomes "higher = more anomalous".
+#[derive(Clone, Copy, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Direction {
+    Higher,
+    Lower,
+    /// Distance from the calibration median, either way (log_det, latent_norm).
+    TwoSided,
+}
+
+/// A calibration file's contents.
+#[derive(Clone, Debug, serde::Serialize, serde::Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Calibration {
+    pub format: String,
+    pub format_version: u32,
+    /// Fingerprint of the model the scores came from.
+    pub model: String,
+    pub score: String,
+    pub direction: Direction,
+    /// Median of the calibration scores (the centre of a two-sided score).
+    pub center: f64,
+    pub false_alarm: f64,
+    pub rows: usize,
+    /// Conformal rank ceil((n + 1)(1 - alpha)).
+    pub rank: usize,
+    /// The rank-th smallest anomaly value: flagged when a vector's anomaly
+    /// value is above it (equivalently, its p-value is at most alpha).
+    pub threshold: f64,
+    /// The same threshold on the score's own scale.
+    pub threshold_raw: f64,
+    /// Calibration anomaly values (higher = more anomalous), sorted.
+    pub anomaly: Vec<f64>,
+}
+
+pub const FORMAT_VERSION: u32 = 1;
+
+/// The conformal rank and threshold for `sorted` anomaly values at false-
+/// alarm rate `alpha`; `None` when n + 1 < 1 / alpha (too few values for
+/// any threshold with that guarantee).
+pub fn conformal_threshold(sorted: &[f64], alpha: f64) -> Option<(usize, f64)> {
+    let n = sorted.len();
+    let rank = ((n as f64 + 1.0) * (1.0 - alpha)).ceil() as usize;
+    (rank >= 1 && rank <= n).then(|| (rank, sorted[rank - 1]))
+}
+
+/// Conformal p-value of anomaly value `a`: (1 + #{calibration >= a}) / (n + 1).
+pub fn p_value(sorted: &[f64], a: f64) -> f64 {
+    let below = sorted.partition_point(|&v| v < a);
+    (1 + sorted.len() - below) as f64 / (sorted.len() + 1) as f64
+}
+
+impl Calibration {
+    /// The anomaly value (higher = more anomalous) of a raw score.
+    pub fn anomaly(&self, raw: f64) -> f64 {
+        orient(self.direction, self.center, raw)
+    }
+
+    pub fn p_value(&self, raw: f64) -> f64 {
+        p_value(&self.anomaly, self.anomaly(raw))
+    }
+
+    /// Flagged exactly when the p-value is at most the false-alarm rate.
+    pub fn flagged(&self, raw: f64) -> bool {
+        self.p_value(raw) <= self.false_alarm
+    }
+
+    pub fn load(path: &Path) -> Result<Calibration> {
+        let text = std::fs::read_to_string(path).map_err(|e| Error::Invalid(format!("{}: cannot read: {e}", path.display())))?;
+        let cal: Calibration = serde_json::from_str(&text)
+            .map_err(|e| Error::Invalid(format!("{}: not a tidemark calibration file ({e})", path.display())))?;
+        if cal.format != "tidemark-calibration" || cal.format_version != FORMAT_VERSION {
+            return Err(Error::Invalid(format!("{}: not a tidemark calibration file of version {FORMAT_VERSION}", path.display())));
+        }
+        Ok(cal)
+    }
+
+    pub fn save(&self, path: &Path) -> Result<()> {
+        let json = serde_json::to_string_pretty(self).map_err(|e| Error::Invalid(e.to_string()))?;
+        crate::output::write_atomic(path, |w| writeln!(w, "{json}").map_err(|source| Error::Io { path: path.into(), source }))
+    }
+
+    /// Refuse to use the calibration with a model it was not made for.
+    pub fn check_model(&self, model: &Model, path: &Path) -> Result<()> {
+        if self.model != model.fingerprint() {
+            return Err(Error::Invalid(format!("{}: was calibrated for a different model", path.display())));
+        }
+        Ok(())
+    }
+}
+
+fn orient(direction: Direction, center: f64, raw: f64) -> f64 {
+    match direction {
+        Direction::Higher => raw,
+        Direction::Lower => -raw,
+        Direction::TwoSided => (raw - center).abs(),
+    }
+}
+
+/// Which way a column is anomalous, for calibration.
+pub fn direction_of(score: &str) -> Result<Direction> {
+    match (higher_is_anomalous(score), score) {
+        (Some(true), _) => Ok(Direction::Higher),
+        (Some(false), _) => Ok(Direction::Lower),
+        (None, "log_det" | "latent_norm") => Ok(Direction::TwoSided),
+        _ => Err(Error::Invalid(format!("'{score}' is not an anomaly score; choose another --score"))),
+    }
+}
+
+/// Calibrate `score` of `model` on held-out in-distribution rows `x` at
+/// false-alarm rate `alpha`. Returns the calibration and any warnings.
+pub fn calibrate(model: &Model, x: &Dataset, score: &str, alpha: f64, threads: usize) -> Result<(Calibration, Vec<String>)> {
+    if !(alpha > 0.0 && alpha < 1.0) {
+        return Err(Error::Invalid("--false-alarm must be between 0 and 1".into()));
+    }
+    crate::score::select_columns(model, &[score.to_string()], false)?;
+    let direction = direction_of(score)?;
+    let mut warnings = Vec::new();
+    if format!("{:016x}", x.checksum()) == model.meta.training.data_checksum {
+        warnings.push(format!(
+            "{}: is the file the model was fitted on; calibration needs held-out rows the model never saw, or the false-alarm rate will be wrong",
+            x.path.display()
+        ));
+    }
+    let n = x.rows;
+    if ((n + 1) as f64) * alpha < 1.0 {
+        return Err(Error::Invalid(format!(
+            "{}: {n} rows are too few for a false-alarm rate of {alpha} (need at least {})",
+            x.path.display(),
+            (1.0 / alpha).ceil() as usize - 1
+        )));
+    }
+    let scorer = Scorer::new(model, None);
+    let e = model.evaluate(x, threads);
+    let mut raw: Vec<f64> = (0..n).map(|r| scorer.value(&e, score, r)).collect();
+    raw.sort_by(f64::total_cmp);
+    let center = raw[n / 2];
+    let mut anomaly: Vec<f64> = raw.iter().map(|&v| orient(direction, center, v)).collect();
+    anomaly.sort_by(f64::total_cmp);
+    let (rank, threshold) = conformal_threshold(&anomaly, alpha).expect("n checked above");
+    let threshold_raw = match direction {
+        Direction::Higher | Direction::TwoSided => threshold,
+        Direction::Lower => -threshold,
+    };
+    let cal = Calibration {
+        format: "tidemark-calibration".into(),
+        format_version: FORMAT_VERSION,
+        model: model.fingerprint(),
+        score: score.to_string(),
+        direction,
+        center,
+        false_alarm: alpha,
+        rows: n,
+        rank,
+        threshold,
+        threshold_raw,
+        anomaly,
+    };
+    Ok((cal, warnings))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use rand::rngs::StdRng;
+    use rand::{Rng, SeedableRng};
+
+    /// The split-conformal guarantee by simulation (Bates et al. 2023): over
+    /// many random calibration/test draws of exchangeable data, the share of
+    /// test points flagged at alpha is at most alpha plus Monte Carlo error,
+    /// and p-values are close to uniform (Kolmogorov-Smirnov distance).
+    #[test]
+    fn conformal_false_alarm_rate_and_uniform_p_values() {
+        let mut rng = StdRng::seed_from_u64(11);
+        let (alpha, n, trials, tests) = (0.05, 199, 400, 50);
+        let (mut flagged, mut total) = (0usize, 0usize);
+        let mut p_values = Vec::new();
+        for _ in 0..trials {
+            // Exchangeable scores with ties (rounded to 2 decimals).
+            let mut draw = || ((rng.random::<f64>() + rng.random::<f64>()) * 50.0).round() / 50.0;
+            let mut cal: Vec<f64> = (0..n).map(|_| draw()).collect();
+            cal.sort_by(f64::total_cmp);
+            let (_, threshold) = conformal_threshold(&cal, alpha).unwrap();
+            for _ in 0..tests {
+                let s = draw();
+                let p = p_value(&cal, s);
+                assert_eq!(p <= alpha, s > threshold, "p-value and threshold agree");
+                flagged += (p <= alpha) as usize;
+                total += 1;
+                p_values.push(p);
+            }
+        }
+        let rate = flagged as f64 / total as f64;
+        // Binomial standard error at alpha over 20,000 draws is 0.0015;
+        // draws within a trial share a calibration set, so allow 4x that.
+        assert!(rate <= alpha + 0.006, "false-alarm rate {rate}");
+        // p-values: conservative with ties, so compare P(p <= t) <= t + eps.
+        p_values.sort_by(f64::total_cmp);
+        let ks = p_values.iter().enumerate().map(|(i, &p)| (i + 1) as f64 / p_values.len() as f64 - p).fold(0.0, f64::max);
+        assert!(ks < 0.02, "p-values exceed uniform by up to {ks}");
+        // Without ties the p-values are uniform on {1/(n+1), ..., 1}: two-sided KS.
+        let mut rng = StdRng::seed_from_u64(12);
+        let mut ps = Vec::new();
+        for _ in 0..trials {
+            let mut cal: Vec<f64> = (0..n).map(|_| rng.random::<f64>()).collect();
+            cal.sort_by(f64::total_cmp);
+            ps.extend((0..tests).map(|_| p_value(&cal, rng.random::<f64>())));
+        }
+        ps.sort_by(f64::total_cmp);
+        let ks2 = ps.iter().enumerate().map(|(i, &p)| ((i + 1) as f64 / ps.len() as f64 - p).abs()).fold(0.0, f64::max);
+        assert!(ks2 < 0.02, "Kolmogorov-Smirnov distance from uniform {ks2}");
+    }
+
+    #[test]
+    fn too_few_rows_for_the_rate_give_no_threshold() {
+        assert!(conformal_threshold(&[1.0; 98], 0.01).is_none());
+        assert_eq!(conformal_threshold(&(0..99).map(f64::from).collect::<Vec<_>>(), 0.01), Some((99, 98.0)));
+    }
+}
