@@ -61,11 +61,16 @@ z, _ = operating(500, MODELS)
 drift = np.linspace(-1.0, 1.0, D) * 0.35
 np.save(os.path.join(out, "drifted.npy"), (encode(z) * 1.1 + drift).astype(np.float32))
 
+# More held-out normal operation, kept apart for calibrating thresholds.
+z, _ = operating(500, MODELS)
+np.save(os.path.join(out, "calibration.npy"), encode(z).astype(np.float32))
+
 with open(os.path.join(out, "sets.json"), "w") as f:
     json.dump(
         {
             "train": "normal operation, four pump models (labels in train_labels.npy)",
             "heldout": "normal operation, held out from training (labels in heldout_labels.npy)",
+            "calibration": "normal operation, held out from training, for calibrating thresholds",
             "unseen_model": "a fifth pump model, never in training",
             "stuck_sensor": "stuck sensor: vectors packed tightly around each model's operating point",
             "drifted": "normal operation after a slow calibration drift",

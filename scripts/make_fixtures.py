@@ -179,6 +179,28 @@ wine = load_wine()
 np.savetxt(path("wine.csv"), wine.data, delimiter=",", header=",".join(wine.feature_names), comments="", fmt="%.6g")
 np.savetxt(path("wine_labels.csv"), wine.target, header="cultivar", comments="", fmt="%d")
 
+# Detection metrics on scores with ties, by scikit-learn and scipy.
+from scipy.stats import mannwhitneyu
+from sklearn.metrics import average_precision_score, roc_auc_score, roc_curve
+
+id_scores = np.round(rng.normal(size=300), 1)
+ood_scores = np.round(rng.normal(loc=0.8, scale=1.3, size=120), 1)
+y = np.r_[np.zeros(len(id_scores)), np.ones(len(ood_scores))]
+s_all = np.r_[id_scores, ood_scores]
+fpr, tpr, thr = roc_curve(y, s_all, drop_intermediate=False)
+u = mannwhitneyu(ood_scores, id_scores, alternative="two-sided").statistic
+expected["metrics"] = {
+    "id": id_scores.tolist(),
+    "ood": ood_scores.tolist(),
+    "roc_auc_score": float(roc_auc_score(y, s_all)),
+    "average_precision_ood_positive": float(average_precision_score(y, s_all)),
+    "average_precision_id_positive": float(average_precision_score(1 - y, -s_all)),
+    "roc_fpr": fpr.tolist(),
+    "roc_tpr": tpr.tolist(),
+    "roc_thresholds": thr[1:].tolist(),
+    "mannwhitney_u_over_n1n2": float(u / (len(id_scores) * len(ood_scores))),
+}
+
 with open(path("expected.json"), "w") as f:
     json.dump(expected, f, indent=1)
     f.write("\n")

@@ -84,18 +84,24 @@ impl Calibration {
     }
 
     pub fn load(path: &Path) -> Result<Calibration> {
-        let text = std::fs::read_to_string(path).map_err(|e| Error::Invalid(format!("{}: cannot read: {e}", path.display())))?;
+        let text = std::fs::read_to_string(path)
+            .map_err(|e| Error::Invalid(format!("{}: cannot read: {e}", path.display())))?;
         let cal: Calibration = serde_json::from_str(&text)
             .map_err(|e| Error::Invalid(format!("{}: not a tidemark calibration file ({e})", path.display())))?;
         if cal.format != "tidemark-calibration" || cal.format_version != FORMAT_VERSION {
-            return Err(Error::Invalid(format!("{}: not a tidemark calibration file of version {FORMAT_VERSION}", path.display())));
+            return Err(Error::Invalid(format!(
+                "{}: not a tidemark calibration file of version {FORMAT_VERSION}",
+                path.display()
+            )));
         }
         Ok(cal)
     }
 
     pub fn save(&self, path: &Path) -> Result<()> {
         let json = serde_json::to_string_pretty(self).map_err(|e| Error::Invalid(e.to_string()))?;
-        crate::output::write_atomic(path, |w| writeln!(w, "{json}").map_err(|source| Error::Io { path: path.into(), source }))
+        crate::output::write_atomic(path, |w| {
+            writeln!(w, "{json}").map_err(|source| Error::Io { path: path.into(), source })
+        })
     }
 
     /// Refuse to use the calibration with a model it was not made for.
@@ -127,7 +133,13 @@ pub fn direction_of(score: &str) -> Result<Direction> {
 
 /// Calibrate `score` of `model` on held-out in-distribution rows `x` at
 /// false-alarm rate `alpha`. Returns the calibration and any warnings.
-pub fn calibrate(model: &Model, x: &Dataset, score: &str, alpha: f64, threads: usize) -> Result<(Calibration, Vec<String>)> {
+pub fn calibrate(
+    model: &Model,
+    x: &Dataset,
+    score: &str,
+    alpha: f64,
+    threads: usize,
+) -> Result<(Calibration, Vec<String>)> {
     if !(alpha > 0.0 && alpha < 1.0) {
         return Err(Error::Invalid("--false-alarm must be between 0 and 1".into()));
     }
@@ -214,7 +226,8 @@ mod tests {
         assert!(rate <= alpha + 0.006, "false-alarm rate {rate}");
         // p-values: conservative with ties, so compare P(p <= t) <= t + eps.
         p_values.sort_by(f64::total_cmp);
-        let ks = p_values.iter().enumerate().map(|(i, &p)| (i + 1) as f64 / p_values.len() as f64 - p).fold(0.0, f64::max);
+        let ks =
+            p_values.iter().enumerate().map(|(i, &p)| (i + 1) as f64 / p_values.len() as f64 - p).fold(0.0, f64::max);
         assert!(ks < 0.02, "p-values exceed uniform by up to {ks}");
         // Without ties the p-values are uniform on {1/(n+1), ..., 1}: two-sided KS.
         let mut rng = StdRng::seed_from_u64(12);

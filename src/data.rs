@@ -631,7 +631,11 @@ pub fn read_score_table(path: &Path) -> Result<(Vec<String>, Vec<Vec<f64>>), Dat
                     }
                     rec.iter()
                         .enumerate()
-                        .map(|(c, f)| f.parse::<f64>().or_else(|_| fail(path, format!("line {line}, column '{}': '{f}' is not a number", names[c]))))
+                        .map(|(c, f)| {
+                            f.parse::<f64>().or_else(|_| {
+                                fail(path, format!("line {line}, column '{}': '{f}' is not a number", names[c]))
+                            })
+                        })
                         .collect()
                 })
                 .collect::<Result<_, _>>()?;
@@ -640,8 +644,10 @@ pub fn read_score_table(path: &Path) -> Result<(Vec<String>, Vec<Vec<f64>>), Dat
         "npy" => {
             let m = read_matrix(path, None)?;
             let side = path.with_extension("json");
-            let text = std::fs::read_to_string(&side).or_else(|e| fail(&side, format!("cannot read the column names beside {}: {e}", path.display())))?;
-            let doc: serde_json::Value = serde_json::from_str(&text).or_else(|e| fail(&side, format!("bad JSON: {e}")))?;
+            let text = std::fs::read_to_string(&side)
+                .or_else(|e| fail(&side, format!("cannot read the column names beside {}: {e}", path.display())))?;
+            let doc: serde_json::Value =
+                serde_json::from_str(&text).or_else(|e| fail(&side, format!("bad JSON: {e}")))?;
             let names: Vec<String> = doc["columns"]
                 .as_array()
                 .map(|a| a.iter().filter_map(|v| v.as_str().map(str::to_string)).collect())
@@ -665,7 +671,10 @@ pub fn read_score_table(path: &Path) -> Result<(Vec<String>, Vec<Vec<f64>>), Dat
                     .iter()
                     .map(|n| match obj.get(n) {
                         Some(serde_json::Value::Null) => Ok(f64::NAN),
-                        Some(v) => v.as_f64().ok_or(()).or_else(|_| fail(path, format!("line {}: '{n}' is not a number", i + 1))),
+                        Some(v) => v
+                            .as_f64()
+                            .ok_or(())
+                            .or_else(|_| fail(path, format!("line {}: '{n}' is not a number", i + 1))),
                         None => fail(path, format!("line {}: missing '{n}'", i + 1)),
                     })
                     .collect::<Result<Vec<f64>, _>>()?;

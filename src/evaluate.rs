@@ -19,7 +19,8 @@ use rand::{Rng, SeedableRng};
 /// outlier scores above a random inlier, ties counting one half. Equal to
 /// the Mann-Whitney U statistic divided by n_in * n_out.
 pub fn auroc(inliers: &[f64], outliers: &[f64]) -> f64 {
-    let mut all: Vec<(f64, bool)> = inliers.iter().map(|&v| (v, false)).chain(outliers.iter().map(|&v| (v, true))).collect();
+    let mut all: Vec<(f64, bool)> =
+        inliers.iter().map(|&v| (v, false)).chain(outliers.iter().map(|&v| (v, true))).collect();
     all.sort_by(|a, b| a.0.total_cmp(&b.0));
     // Sum of the (mid-)ranks of the outliers.
     let mut rank_sum = 0.0;
@@ -41,7 +42,8 @@ pub fn auroc(inliers: &[f64], outliers: &[f64]) -> f64 {
 /// starting at (0, 0): (false positive rate, true positive rate, threshold)
 /// for "positive when score >= threshold".
 pub fn roc_curve(negatives: &[f64], positives: &[f64]) -> Vec<(f64, f64, f64)> {
-    let mut all: Vec<(f64, bool)> = negatives.iter().map(|&v| (v, false)).chain(positives.iter().map(|&v| (v, true))).collect();
+    let mut all: Vec<(f64, bool)> =
+        negatives.iter().map(|&v| (v, false)).chain(positives.iter().map(|&v| (v, true))).collect();
     all.sort_by(|a, b| b.0.total_cmp(&a.0));
     let (n_neg, n_pos) = (negatives.len() as f64, positives.len() as f64);
     let mut points = vec![(0.0, 0.0, f64::INFINITY)];
@@ -126,7 +128,8 @@ pub fn with_intervals(inliers: &[f64], outliers: &[f64], rounds: usize, seed: u6
     let point = Metrics::of(inliers, outliers).values();
     let mut rng = StdRng::seed_from_u64(seed);
     let mut draws: Vec<[f64; 5]> = Vec::with_capacity(rounds);
-    let resample = |v: &[f64], rng: &mut StdRng| (0..v.len()).map(|_| v[rng.random_range(0..v.len())]).collect::<Vec<_>>();
+    let resample =
+        |v: &[f64], rng: &mut StdRng| (0..v.len()).map(|_| v[rng.random_range(0..v.len())]).collect::<Vec<_>>();
     for _ in 0..rounds {
         let (a, b) = (resample(inliers, &mut rng), resample(outliers, &mut rng));
         draws.push(Metrics::of(&a, &b).values());
@@ -217,7 +220,13 @@ mod tests {
         let mut pairs = 0.0;
         for &o in &out {
             for &i in &inl {
-                pairs += if o > i { 1.0 } else if o == i { 0.5 } else { 0.0 };
+                pairs += if o > i {
+                    1.0
+                } else if o == i {
+                    0.5
+                } else {
+                    0.0
+                };
             }
         }
         assert!((auroc(&inl, &out) - pairs / 20.0).abs() < 1e-12);
@@ -312,14 +321,16 @@ pub fn run(o: &EvaluateOptions) -> Result<Results> {
 }
 
 fn estimates_json(est: &[(String, Estimate)]) -> serde_json::Value {
-    est.iter().map(|(m, e)| (m.clone(), serde_json::json!({ "value": e.value, "ci95": e.ci95 }))).collect::<serde_json::Map<_, _>>().into()
+    est.iter()
+        .map(|(m, e)| (m.clone(), serde_json::json!({ "value": e.value, "ci95": e.ci95 })))
+        .collect::<serde_json::Map<_, _>>()
+        .into()
 }
 
 /// A readable table of the results (AUROC with its interval, then the rest).
 pub fn table(results: &Results) -> String {
-    let mut s = String::from(
-        "AUROC and AUPR-Out: outliers positive; AUPR-In and FPR@95TPR: in-distribution positive.\n",
-    );
+    let mut s =
+        String::from("AUROC and AUPR-Out: outliers positive; AUPR-In and FPR@95TPR: in-distribution positive.\n");
     s.push_str(&format!(
         "{:<16}{:<26}{:>24}{:>9}{:>9}{:>10}{:>9}\n",
         "outlier set", "score", "AUROC [95% CI]", "AUPR-In", "AUPR-Out", "FPR@95", "det.err"

@@ -7,10 +7,10 @@ use std::path::PathBuf;
 use std::process::ExitCode;
 use std::sync::atomic::AtomicBool;
 use std::sync::Arc;
+use tidemark::calibrate::{self, Calibration};
 use tidemark::model::{Kind, Model};
 use tidemark::preprocess::Method;
 use tidemark::train::{default_threads, FitOptions, Run};
-use tidemark::calibrate::{self, Calibration};
 use tidemark::{data, demo, evaluate, score, Result};
 
 #[derive(Parser)]
@@ -312,7 +312,18 @@ fn run(cli: Cli) -> Result<()> {
             }
             Ok(())
         }
-        Command::Score { model, data: path, output, columns, batch, batch_alpha, batch_output, calibration, input, threads } => {
+        Command::Score {
+            model,
+            data: path,
+            output,
+            columns,
+            batch,
+            batch_alpha,
+            batch_output,
+            calibration,
+            input,
+            threads,
+        } => {
             let m = Model::load(&model)?;
             let calibration = match &calibration {
                 Some(p) => {

@@ -47,12 +47,24 @@ fn histogram_svg(column: &str, sets: &[(&str, &[f64])], threshold: Option<f64>) 
     if finite.is_empty() {
         return Ok(String::new());
     }
-    let mut sorted = finite.clone();
-    sorted.sort_by(f64::total_cmp);
-    // Clip the view to the central 99% of all values so one extreme outlier
-    // does not squash the rest; values outside fall in the end bins.
-    let lo = sorted[(0.005 * (sorted.len() - 1) as f64) as usize];
-    let mut hi = sorted[(0.995 * (sorted.len() - 1) as f64) as usize];
+    // The view is the in-distribution set's central 99% widened by half its
+    // width on each side (and the threshold); values beyond it are counted
+    // in the end bins, so far-off outliers show as a spike at the edge
+    // instead of squashing the in-distribution histogram.
+    let mut id: Vec<f64> = sets[0].1.iter().copied().filter(|v| v.is_finite()).collect();
+    if id.is_empty() {
+        id = finite.clone();
+    }
+    id.sort_by(f64::total_cmp);
+    let (q_lo, q_hi) = (id[(0.005 * (id.len() - 1) as f64) as usize], id[(0.995 * (id.len() - 1) as f64) as usize]);
+    let pad = 0.5 * (q_hi - q_lo).max(f64::EPSILON * q_hi.abs().max(1.0));
+    let (all_lo, all_hi) = finite.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), &v| (a.min(v), b.max(v)));
+    let mut lo = (q_lo - pad).max(all_lo);
+    let mut hi = (q_hi + pad).min(all_hi);
+    if let Some(t) = threshold {
+        lo = lo.min(t);
+        hi = hi.max(t);
+    }
     if hi <= lo {
         hi = lo + 1.0;
     }
@@ -76,7 +88,10 @@ fn histogram_svg(column: &str, sets: &[(&str, &[f64])], threshold: Option<f64>) 
         let root = SVGBackend::with_string(&mut svg, (560, 320)).into_drawing_area();
         root.fill(&WHITE).map_err(plot_error)?;
         let mut chart = ChartBuilder::on(&root)
-            .caption(format!("{column}: distribution per set"), ("sans-serif", 16))
+            .caption(
+                format!("{column}: distribution per set (end bins hold values beyond the view)"),
+                ("sans-serif", 14),
+            )
             .margin(10)
             .x_label_area_size(35)
             .y_label_area_size(55)
@@ -182,7 +197,12 @@ fn training_svg(log: &[LogEntry]) -> Result<String> {
                 .label(name)
                 .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], color.stroke_width(2)));
         }
-        chart.configure_series_labels().background_style(WHITE.mix(0.85)).border_style(BLACK).draw().map_err(plot_error)?;
+        chart
+            .configure_series_labels()
+            .background_style(WHITE.mix(0.85))
+            .border_style(BLACK)
+            .draw()
+            .map_err(plot_error)?;
         root.present().map_err(plot_error)?;
     }
     Ok(svg)
@@ -220,7 +240,9 @@ pub fn write_report(path: &Path, input: &ReportInput) -> Result<()> {
         let curves: Vec<(&str, Vec<(f64, f64, f64)>)> = input
             .ood
             .iter()
-            .map(|(n, t)| (n.as_str(), roc_curve(&id_anomaly, &anomaly(column, t.column(column).expect("checked"), centre))))
+            .map(|(n, t)| {
+                (n.as_str(), roc_curve(&id_anomaly, &anomaly(column, t.column(column).expect("checked"), centre)))
+            })
             .collect();
         let _ = writeln!(html, "<h2>{}</h2>", escape(column));
         if let Some(c) = input.calibration.filter(|c| &c.score == column) {
@@ -251,5 +273,7 @@ pub fn write_report(path: &Path, input: &ReportInput) -> Result<()> {
     html.push_str(
         "<p>These are statistics of the sets given. Validate any threshold on your own data before it drives a decision.</p>\n</body></html>\n",
     );
-    crate::output::write_atomic(path, |w| w.write_all(html.as_bytes()).map_err(|source| Error::Io { path: path.into(), source }))
+    crate::output::write_atomic(path, |w| {
+        w.write_all(html.as_bytes()).map_err(|source| Error::Io { path: path.into(), source })
+    })
 }

@@ -896,12 +896,15 @@ fn save_checkpoint(run: &Run, l: &Learned) -> Result<()> {
 
 /// Read a JSON-lines training log written by `fit --log`.
 pub fn read_log(path: &Path) -> Result<Vec<LogEntry>> {
-    let text = std::fs::read_to_string(path).map_err(|e| Error::Invalid(format!("{}: cannot read: {e}", path.display())))?;
+    let text =
+        std::fs::read_to_string(path).map_err(|e| Error::Invalid(format!("{}: cannot read: {e}", path.display())))?;
     text.lines()
         .enumerate()
         .filter(|(_, l)| !l.trim().is_empty())
         .map(|(i, l)| {
-            serde_json::from_str(l).map_err(|e| Error::Invalid(format!("{}: line {}: not a training log entry ({e})", path.display(), i + 1)))
+            serde_json::from_str(l).map_err(|e| {
+                Error::Invalid(format!("{}: line {}: not a training log entry ({e})", path.display(), i + 1))
+            })
         })
         .collect()
 }

@@ -278,3 +278,45 @@ fn output_formats_columns_batch_test_and_background_ratio() {
     let bad = dir.path().join("bad.txt");
     refuses(&["score", m, t, "-o", bad.to_str().unwrap()], "output must end in .csv, .npy or .jsonl", &bad);
 }
+
+#[test]
+fn calibrate_then_score_with_p_values() {
+    let dir = tempfile::tempdir().unwrap();
+    let (train, held) = (dir.path().join("train.npy"), dir.path().join("held.npy"));
+    save(&train, &data(600, 0.0));
+    save(&held, &data(300, 0.37));
+    let model = dir.path().join("model.safetensors");
+    let (t, h, m) = (train.to_str().unwrap(), held.to_str().unwrap(), model.to_str().unwrap());
+    tidemark().args(["fit", t, "-o", m, "--epochs", "3", "-q"]).assert().success();
+    let cal = dir.path().join("cal.json");
+    let c = cal.to_str().unwrap();
+    let out = tidemark().args(["calibrate", m, h, "-o", c, "--false-alarm", "0.05", "--score", "typicality"]).assert().success();
+    assert!(String::from_utf8_lossy(&out.get_output().stderr).contains("conformal rank 286 of 300"));
+    let doc: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(&cal).unwrap()).unwrap();
+    // Conformal rank ceil((n + 1)(1 - alpha)) = ceil(301 * 0.95) = 286.
+    assert_eq!(doc["rank"], 286);
+    let out = tidemark().args(["score", m, h, "-o", "-", "--calibration", c]).assert().success();
+    let csv = String::from_utf8(out.get_output().stdout.clone()).unwrap();
+    let (p, flagged) = (column(&csv, "p_value"), column(&csv, "flagged"));
+    // On the calibration rows themselves at most alpha (n+1)/n are flagged.
+    let share = flagged.iter().sum::<f64>() / flagged.len() as f64;
+    assert!(share <= 0.05 * 301.0 / 300.0 + 1e-12, "{share}");
+    assert!(p.iter().zip(&flagged).all(|(p, f)| (*p <= 0.05) == (*f == 1.0)));
+
+    // Calibrating on the training file warns; too few rows for the rate is refused.
+    let out = tidemark().args(["calibrate", m, t, "-o", c, "--false-alarm", "0.05"]).assert().success();
+    assert!(String::from_utf8_lossy(&out.get_output().stderr).contains("is the file the model was fitted on"));
+    let tiny = dir.path().join("tiny.npy");
+    save(&tiny, &data(50, 0.1));
+    let cal2 = dir.path().join("cal2.json");
+    refuses(
+        &["calibrate", m, tiny.to_str().unwrap(), "-o", cal2.to_str().unwrap(), "--false-alarm", "0.01"],
+        "50 rows are too few for a false-alarm rate of 0.01 (need at least 99)",
+        &cal2,
+    );
+    // A calibration belongs to its model.
+    let other = dir.path().join("other.safetensors");
+    tidemark().args(["fit", t, "-o", other.to_str().unwrap(), "--epochs", "3", "--seed", "9", "-q"]).assert().success();
+    let scores = dir.path().join("s.csv");
+    refuses(&["score", other.to_str().unwrap(), h, "-o", scores.to_str().unwrap(), "--calibration", c], "cal.json: was calibrated for a different model", &scores);
+}
