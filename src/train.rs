@@ -140,6 +140,13 @@ pub struct Settings {
     pub threads: usize,
 }
 
+/// A default that depends on rows per dimension: the value for fewer than
+/// 50, 200, 500, and for more (dropout and noise measured to help small sets).
+fn by_rows_per_dim(per_dim: f64, values: [f64; 4]) -> f64 {
+    let band = [FEW_ROWS_PER_DIM, 200.0, 500.0].iter().take_while(|&&limit| per_dim >= limit).count();
+    values[band]
+}
+
 /// Rows per whitened dimension below which the flow runs only on the
 /// leading third of the principal components (measured: see README).
 const FEW_ROWS_PER_DIM: f64 = 50.0;
@@ -186,20 +193,8 @@ impl Settings {
             val_fraction: if val_file { 0.0 } else { o.val_fraction.unwrap_or(0.1) },
             val_file,
             patience: o.patience.unwrap_or(10),
-            dropout: o.dropout.unwrap_or(if few {
-                0.2
-            } else if per_dim < 500.0 {
-                0.1
-            } else {
-                0.0
-            }),
-            noise: o.noise.unwrap_or(if few {
-                0.2
-            } else if per_dim < 200.0 {
-                0.1
-            } else {
-                0.0
-            }),
+            dropout: o.dropout.unwrap_or_else(|| by_rows_per_dim(per_dim, [0.2, 0.1, 0.1, 0.0])),
+            noise: o.noise.unwrap_or_else(|| by_rows_per_dim(per_dim, [0.2, 0.1, 0.0, 0.0])),
             dead_threshold: o.dead_threshold.unwrap_or(DEFAULT_DEAD_THRESHOLD),
             max_retries: o.max_retries.unwrap_or(3),
             checkpoint_every: o.checkpoint_every.unwrap_or(1).max(1),

@@ -1,21 +1,14 @@
 //! The binary, run as a user would: fit, score, inspect, sample, and every
 //! kind of bad input (one clear line, non-zero exit, no output file).
 
+mod common;
+
 use assert_cmd::Command;
 use std::path::{Path, PathBuf};
-use tidemark::data::{write_npy, Matrix};
+use tidemark::data::Matrix;
 
 fn tidemark() -> Command {
     Command::cargo_bin("tidemark").unwrap()
-}
-
-fn fixture(name: &str) -> PathBuf {
-    PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures").join(name)
-}
-
-fn save(path: &Path, m: &Matrix) {
-    let mut f = std::fs::File::create(path).unwrap();
-    write_npy(&mut f, m).unwrap();
 }
 
 /// Deterministic correlated 4-d data, optionally shifted (invented).
@@ -43,8 +36,8 @@ fn mean(v: &[f64]) -> f64 {
 fn fit_score_inspect_sample_end_to_end() {
     let dir = tempfile::tempdir().unwrap();
     let (train, shifted) = (dir.path().join("train.npy"), dir.path().join("shifted.npy"));
-    save(&train, &data(800, 0.0));
-    save(&shifted, &data(200, 1.5));
+    common::save(&train, &data(800, 0.0));
+    common::save(&shifted, &data(200, 1.5));
     let model = dir.path().join("model.safetensors");
     tidemark()
         .args(["fit", train.to_str().unwrap(), "-o", model.to_str().unwrap(), "--epochs", "8", "--seed", "4"])
@@ -90,7 +83,7 @@ fn fit_score_inspect_sample_end_to_end() {
 fn same_seed_same_threads_gives_an_identical_model_file() {
     let dir = tempfile::tempdir().unwrap();
     let train = dir.path().join("train.npy");
-    save(&train, &data(400, 0.0));
+    common::save(&train, &data(400, 0.0));
     let fit = |name: &str| {
         let model = dir.path().join(name);
         tidemark()
@@ -137,7 +130,7 @@ fn bad_inputs_fail_with_one_clear_line_and_no_output() {
     let dir = tempfile::tempdir().unwrap();
     let out = dir.path().join("model.safetensors");
     let o = out.to_str().unwrap();
-    let f = |name: &str| fixture(name).to_str().unwrap().to_string();
+    let f = |name: &str| common::fixture(name).to_str().unwrap().to_string();
     let cases: Vec<(Vec<String>, &str)> = vec![
         (vec![f("with_nan.npy")], "row 2, column 1 (0-based) is NaN"),
         (vec![f("with_inf.npy")], "row 3, column 0 (0-based) is infinite"),
@@ -174,7 +167,7 @@ fn bad_inputs_fail_with_one_clear_line_and_no_output() {
 fn scoring_data_of_the_wrong_width_is_refused() {
     let dir = tempfile::tempdir().unwrap();
     let train = dir.path().join("train.npy");
-    save(&train, &data(300, 0.0));
+    common::save(&train, &data(300, 0.0));
     let model = dir.path().join("model.safetensors");
     tidemark()
         .args(["fit", train.to_str().unwrap(), "-o", model.to_str().unwrap(), "--epochs", "1", "-q"])
@@ -182,7 +175,13 @@ fn scoring_data_of_the_wrong_width_is_refused() {
         .success();
     let scores = dir.path().join("scores.csv");
     refuses(
-        &["score", model.to_str().unwrap(), fixture("small_f32.npy").to_str().unwrap(), "-o", scores.to_str().unwrap()],
+        &[
+            "score",
+            model.to_str().unwrap(),
+            common::fixture("small_f32.npy").to_str().unwrap(),
+            "-o",
+            scores.to_str().unwrap(),
+        ],
         "small_f32.npy: has 3 features per row but the model was fitted on 4",
         &scores,
     );
@@ -197,7 +196,7 @@ fn scoring_data_of_the_wrong_width_is_refused() {
 fn config_files_set_options_flags_override_and_unknown_keys_are_named() {
     let dir = tempfile::tempdir().unwrap();
     let train = dir.path().join("train.npy");
-    save(&train, &data(300, 0.0));
+    common::save(&train, &data(300, 0.0));
     let model = dir.path().join("model.safetensors");
     let config = dir.path().join("c.json");
     std::fs::write(&config, r#"{"layers": 3, "hidden": 40, "epochs": 2, "seed": 9}"#).unwrap();
@@ -229,7 +228,7 @@ fn config_files_set_options_flags_override_and_unknown_keys_are_named() {
 fn output_formats_columns_batch_test_and_background_ratio() {
     let dir = tempfile::tempdir().unwrap();
     let train = dir.path().join("train.npy");
-    save(&train, &data(600, 0.0));
+    common::save(&train, &data(600, 0.0));
     let model = dir.path().join("model.safetensors");
     let (t, m) = (train.to_str().unwrap(), model.to_str().unwrap());
     tidemark().args(["fit", t, "-o", m, "--epochs", "3", "--background-noise", "0.5", "-q"]).assert().success();
@@ -283,14 +282,17 @@ fn output_formats_columns_batch_test_and_background_ratio() {
 fn calibrate_then_score_with_p_values() {
     let dir = tempfile::tempdir().unwrap();
     let (train, held) = (dir.path().join("train.npy"), dir.path().join("held.npy"));
-    save(&train, &data(600, 0.0));
-    save(&held, &data(300, 0.37));
+    common::save(&train, &data(600, 0.0));
+    common::save(&held, &data(300, 0.37));
     let model = dir.path().join("model.safetensors");
     let (t, h, m) = (train.to_str().unwrap(), held.to_str().unwrap(), model.to_str().unwrap());
     tidemark().args(["fit", t, "-o", m, "--epochs", "3", "-q"]).assert().success();
     let cal = dir.path().join("cal.json");
     let c = cal.to_str().unwrap();
-    let out = tidemark().args(["calibrate", m, h, "-o", c, "--false-alarm", "0.05", "--score", "typicality"]).assert().success();
+    let out = tidemark()
+        .args(["calibrate", m, h, "-o", c, "--false-alarm", "0.05", "--score", "typicality"])
+        .assert()
+        .success();
     assert!(String::from_utf8_lossy(&out.get_output().stderr).contains("conformal rank 286 of 300"));
     let doc: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(&cal).unwrap()).unwrap();
     // Conformal rank ceil((n + 1)(1 - alpha)) = ceil(301 * 0.95) = 286.
@@ -307,7 +309,7 @@ fn calibrate_then_score_with_p_values() {
     let out = tidemark().args(["calibrate", m, t, "-o", c, "--false-alarm", "0.05"]).assert().success();
     assert!(String::from_utf8_lossy(&out.get_output().stderr).contains("is the file the model was fitted on"));
     let tiny = dir.path().join("tiny.npy");
-    save(&tiny, &data(50, 0.1));
+    common::save(&tiny, &data(50, 0.1));
     let cal2 = dir.path().join("cal2.json");
     refuses(
         &["calibrate", m, tiny.to_str().unwrap(), "-o", cal2.to_str().unwrap(), "--false-alarm", "0.01"],
@@ -318,5 +320,9 @@ fn calibrate_then_score_with_p_values() {
     let other = dir.path().join("other.safetensors");
     tidemark().args(["fit", t, "-o", other.to_str().unwrap(), "--epochs", "3", "--seed", "9", "-q"]).assert().success();
     let scores = dir.path().join("s.csv");
-    refuses(&["score", other.to_str().unwrap(), h, "-o", scores.to_str().unwrap(), "--calibration", c], "cal.json: was calibrated for a different model", &scores);
+    refuses(
+        &["score", other.to_str().unwrap(), h, "-o", scores.to_str().unwrap(), "--calibration", c],
+        "cal.json: was calibrated for a different model",
+        &scores,
+    );
 }

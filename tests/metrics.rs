@@ -3,6 +3,8 @@
 //! committed fixture with ties (scripts/make_fixtures.py; versions in
 //! tests/fixtures/expected.json).
 
+mod common;
+
 use assert_cmd::Command;
 use std::path::PathBuf;
 use tidemark::evaluate::{auroc, average_precision, roc_curve, Metrics};
@@ -13,14 +15,10 @@ fn metrics() -> serde_json::Value {
     v["metrics"].clone()
 }
 
-fn floats(v: &serde_json::Value) -> Vec<f64> {
-    v.as_array().unwrap().iter().map(|x| x.as_f64().unwrap()).collect()
-}
-
 #[test]
 fn auroc_average_precision_and_roc_curve_equal_scikit_learn() {
     let m = metrics();
-    let (id, ood) = (floats(&m["id"]), floats(&m["ood"]));
+    let (id, ood) = (common::floats(&m["id"]), common::floats(&m["ood"]));
     let close = |a: f64, b: f64| (a - b).abs() < 1e-12;
     assert!(close(auroc(&id, &ood), m["roc_auc_score"].as_f64().unwrap()));
     // AUROC = U / (n_in n_out), scipy.stats.mannwhitneyu.
@@ -29,7 +27,8 @@ fn auroc_average_precision_and_roc_curve_equal_scikit_learn() {
     let neg = |v: &[f64]| v.iter().map(|x| -x).collect::<Vec<_>>();
     assert!(close(average_precision(&neg(&ood), &neg(&id)), m["average_precision_id_positive"].as_f64().unwrap()));
     let curve = roc_curve(&id, &ood);
-    let (fpr, tpr, thr) = (floats(&m["roc_fpr"]), floats(&m["roc_tpr"]), floats(&m["roc_thresholds"]));
+    let (fpr, tpr, thr) =
+        (common::floats(&m["roc_fpr"]), common::floats(&m["roc_tpr"]), common::floats(&m["roc_thresholds"]));
     assert_eq!(curve.len(), fpr.len());
     for (i, p) in curve.iter().enumerate() {
         assert!(close(p.0, fpr[i]) && close(p.1, tpr[i]), "point {i}: {p:?} vs ({}, {})", fpr[i], tpr[i]);

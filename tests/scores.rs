@@ -2,28 +2,15 @@
 //! scripts/make_fixtures.py, the wine data shipped with scikit-learn, and
 //! closed-form facts about Gaussians.
 
+mod common;
+
 use assert_cmd::Command;
 use std::path::{Path, PathBuf};
-use tidemark::data::{read_labels, read_matrix, write_npy, Dataset, Matrix};
+use tidemark::data::{read_labels, read_matrix, Dataset, Matrix};
 use tidemark::evaluate::auroc;
 use tidemark::model::{Kind, Model};
 use tidemark::score::Scorer;
 use tidemark::train::{fit, FitOptions};
-
-fn fixture(name: &str) -> PathBuf {
-    PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures").join(name)
-}
-
-fn expected() -> serde_json::Value {
-    serde_json::from_str(&std::fs::read_to_string(fixture("expected.json")).unwrap()).unwrap()
-}
-
-fn floats(v: &serde_json::Value) -> Vec<f64> {
-    match v.as_array() {
-        Some(items) => items.iter().flat_map(floats).collect(),
-        None => vec![v.as_f64().unwrap()],
-    }
-}
 
 fn opts() -> FitOptions {
     FitOptions { quiet: true, threads: Some(2), seed: Some(1), ..Default::default() }
@@ -39,14 +26,14 @@ fn close(a: f64, b: f64, rel: f64) -> bool {
 /// scipy.stats.multivariate_normal.logpdf under that covariance.
 #[test]
 fn gaussian_kind_matches_scikit_learn_ledoit_wolf_and_scipy_logpdf() {
-    let want = &expected()["ledoit_wolf"];
-    let x = Dataset::open(&fixture("few_rows.npy"), None).unwrap();
+    let want = &common::expected()["ledoit_wolf"];
+    let x = Dataset::open(&common::fixture("few_rows.npy"), None).unwrap();
     let model = fit(&x, None, &FitOptions { kind: Some(Kind::Gaussian), val_fraction: Some(0.0), ..opts() }).unwrap();
     assert!(close(model.pre.shrinkage, want["shrinkage"].as_f64().unwrap(), 1e-5), "{}", model.pre.shrinkage);
     // Covariance = V^T diag(scale^2) V from the stored whitening.
     let d = model.pre.dim();
     let comps = model.pre.components.as_ref().unwrap();
-    let cov_want = floats(&want["covariance"]);
+    let cov_want = common::floats(&want["covariance"]);
     for i in 0..d {
         for j in 0..d {
             let c: f64 =
@@ -55,15 +42,15 @@ fn gaussian_kind_matches_scikit_learn_ledoit_wolf_and_scipy_logpdf() {
         }
     }
     let got = model.evaluate_rows(&x, &[0, 1, 2, 3, 4], 1).log_likelihood;
-    for (a, b) in got.iter().zip(floats(&want["logpdf_first_rows"])) {
+    for (a, b) in got.iter().zip(common::floats(&want["logpdf_first_rows"])) {
         assert!(close(*a, b, 1e-5), "{a} vs scipy {b}");
     }
     // Enough rows per dimension: the plain maximum-likelihood Gaussian.
-    let w = Dataset::open(&fixture("whitening.npy"), None).unwrap();
+    let w = Dataset::open(&common::fixture("whitening.npy"), None).unwrap();
     let model = fit(&w, None, &FitOptions { kind: Some(Kind::Gaussian), val_fraction: Some(0.0), ..opts() }).unwrap();
     assert_eq!(model.pre.shrinkage, 0.0);
     let got = model.evaluate_rows(&w, &[0, 1, 2, 3, 4], 1).log_likelihood;
-    for (a, b) in got.iter().zip(floats(&expected()["whitening"]["gaussian_logpdf_first_rows"])) {
+    for (a, b) in got.iter().zip(common::floats(&common::expected()["whitening"]["gaussian_logpdf_first_rows"])) {
         assert!(close(*a, b, 1e-5), "{a} vs scipy {b}");
     }
 }
@@ -128,10 +115,6 @@ fn class_conditional_marginal_is_a_density_and_posteriors_sum_to_one() {
     }
 }
 
-fn save(path: &Path, m: &Matrix) {
-    write_npy(&mut std::fs::File::create(path).unwrap(), m).unwrap();
-}
-
 /// The wine data shipped with scikit-learn (UCI Wine; CC BY 4.0): fit on
 /// two cultivars, treat the third as unseen. Class prediction on held-out
 /// rows of the seen cultivars is well above chance (0.5), and the
@@ -140,8 +123,8 @@ fn save(path: &Path, m: &Matrix) {
 /// 0.989 with the class-Gaussian baseline).
 #[test]
 fn wine_unseen_cultivar_is_separated_and_seen_cultivars_are_recognised() {
-    let x = read_matrix(&fixture("wine.csv"), None).unwrap();
-    let y = read_labels(&fixture("wine_labels.csv")).unwrap();
+    let x = read_matrix(&common::fixture("wine.csv"), None).unwrap();
+    let y = read_labels(&common::fixture("wine_labels.csv")).unwrap();
     let (mut train, mut seen, mut unseen) = (vec![], vec![], vec![]);
     for r in 0..x.rows {
         match (y[r], r % 4) {
@@ -153,7 +136,7 @@ fn wine_unseen_cultivar_is_separated_and_seen_cultivars_are_recognised() {
     let dir = tempfile::tempdir().unwrap();
     let paths: Vec<PathBuf> = ["train.npy", "seen.npy", "unseen.npy"].iter().map(|n| dir.path().join(n)).collect();
     for (p, idx) in paths.iter().zip([&train, &seen, &unseen]) {
-        save(p, &x.select_rows(idx));
+        common::save(p, &x.select_rows(idx));
     }
     // Labels as a one-column CSV, as a user might write them.
     let labels_csv = dir.path().join("labels.csv");

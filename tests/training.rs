@@ -2,19 +2,16 @@
 //! checkpoints that always load after SIGKILL, rollback after a non-finite
 //! gradient, early stopping, the JSON-lines log. All through the binary.
 
+mod common;
+
 use assert_cmd::Command;
 use std::path::{Path, PathBuf};
 use std::process::Stdio;
 use std::time::{Duration, Instant};
-use tidemark::data::{write_npy, Matrix};
+use tidemark::data::Matrix;
 
 fn bin() -> PathBuf {
     assert_cmd::cargo::cargo_bin("tidemark")
-}
-
-fn save(path: &Path, m: &Matrix) {
-    let mut f = std::fs::File::create(path).unwrap();
-    write_npy(&mut f, m).unwrap();
 }
 
 /// Deterministic non-Gaussian 6-d data (invented).
@@ -60,7 +57,7 @@ const LONG_RUN: [&str; 12] =
 fn sigterm_then_resume_gives_bit_identical_weights() {
     let dir = tempfile::tempdir().unwrap();
     let train = dir.path().join("train.npy");
-    save(&train, &data(6000, 0.0));
+    common::save(&train, &data(6000, 0.0));
 
     let reference = dir.path().join("reference.safetensors");
     Command::new(bin()).args(["fit", s(&train), "-o", s(&reference), "-q"]).args(LONG_RUN).assert().success();
@@ -112,7 +109,7 @@ fn sigterm_then_resume_gives_bit_identical_weights() {
 fn the_newest_checkpoint_always_loads_after_sigkill() {
     let dir = tempfile::tempdir().unwrap();
     let train = dir.path().join("train.npy");
-    save(&train, &data(20_000, 0.3));
+    common::save(&train, &data(20_000, 0.3));
     let checkpoint = dir.path().join("ck.safetensors");
     let model = dir.path().join("model.safetensors");
     let args = ["--epochs", "4", "--checkpoint-minutes", "0", "--threads", "1", "-q"];
@@ -141,7 +138,7 @@ fn the_newest_checkpoint_always_loads_after_sigkill() {
 fn a_non_finite_gradient_rolls_back_and_training_still_finishes() {
     let dir = tempfile::tempdir().unwrap();
     let train = dir.path().join("train.npy");
-    save(&train, &data(2000, 0.0));
+    common::save(&train, &data(2000, 0.0));
     let model = dir.path().join("model.safetensors");
     let out = Command::new(bin())
         .args(["fit", s(&train), "-o", s(&model), "--epochs", "4", "--inject-nan-at-step", "20"])
@@ -180,8 +177,8 @@ fn early_stopping_keeps_the_best_epoch_and_its_validation_nll_is_reproducible() 
     let dir = tempfile::tempdir().unwrap();
     let (train, val) = (dir.path().join("train.npy"), dir.path().join("val.npy"));
     // Few rows, a big conditioner, no regularisation: it overfits quickly.
-    save(&train, &data(150, 0.0));
-    save(&val, &data(300, 100.0));
+    common::save(&train, &data(150, 0.0));
+    common::save(&val, &data(300, 100.0));
     let model = dir.path().join("model.safetensors");
     let args =
         ["--val", s(&val), "--epochs", "300", "--patience", "3", "--hidden", "256", "--noise", "0", "--dropout", "0"];
@@ -210,8 +207,8 @@ fn early_stopping_keeps_the_best_epoch_and_its_validation_nll_is_reproducible() 
 fn resume_refuses_changed_data() {
     let dir = tempfile::tempdir().unwrap();
     let (train, other) = (dir.path().join("train.npy"), dir.path().join("other.npy"));
-    save(&train, &data(500, 0.0));
-    save(&other, &data(500, 1.0));
+    common::save(&train, &data(500, 0.0));
+    common::save(&other, &data(500, 1.0));
     let model = dir.path().join("model.safetensors");
     let checkpoint = dir.path().join("ck.safetensors");
     let mut child = std::process::Command::new(bin())

@@ -1,0 +1,29 @@
+//! Helpers shared by the integration tests.
+#![allow(dead_code)]
+
+use std::path::{Path, PathBuf};
+use tidemark::data::{write_npy, Matrix};
+
+/// A committed fixture (written by scripts/make_fixtures.py).
+pub fn fixture(name: &str) -> PathBuf {
+    PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures").join(name)
+}
+
+/// The reference values in tests/fixtures/expected.json.
+pub fn expected() -> serde_json::Value {
+    serde_json::from_str(&std::fs::read_to_string(fixture("expected.json")).unwrap()).unwrap()
+}
+
+/// All numbers in a (nested) JSON array, flattened row by row.
+pub fn floats(v: &serde_json::Value) -> Vec<f64> {
+    match v.as_array() {
+        Some(items) => items.iter().flat_map(floats).collect(),
+        None => vec![v.as_f64().unwrap()],
+    }
+}
+
+/// Write a matrix as a float32 .npy file.
+pub fn save(path: &Path, m: &Matrix) {
+    let mut f = std::fs::File::create(path).unwrap();
+    write_npy(&mut f, m).unwrap();
+}
