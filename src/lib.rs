@@ -7,6 +7,7 @@
 //! fitted model and its file) -> [`score`] (per-vector scores) -> [`output`]
 //! (files out). [`demo`] runs the whole job on the shipped demo data.
 
+pub mod bench;
 pub mod calibrate;
 pub mod data;
 pub mod demo;

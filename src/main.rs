@@ -103,6 +103,27 @@ enum Command {
         #[arg(long, default_value_t = 0)]
         seed: u64,
     },
+    /// Measure training and scoring throughput of the flow on synthetic data.
+    Bench {
+        #[arg(long, default_value_t = 64)]
+        dim: usize,
+        #[arg(long, default_value_t = 128)]
+        hidden: usize,
+        #[arg(long, default_value_t = 8)]
+        layers: usize,
+        #[arg(long, default_value_t = 2)]
+        depth: usize,
+        #[arg(long, default_value_t = 256)]
+        batch: usize,
+        #[arg(long, default_value_t = 1)]
+        threads: usize,
+        /// Seconds per measurement.
+        #[arg(long, default_value_t = 3.0)]
+        seconds: f64,
+        /// Also write the result as JSON.
+        #[arg(long)]
+        json: Option<PathBuf>,
+    },
     /// Print how a model was made and how it did.
     Inspect {
         model: PathBuf,
@@ -382,6 +403,18 @@ fn run(cli: Cli) -> Result<()> {
                 log: log.as_deref(),
             })?;
             print!("{}", evaluate::table(&results));
+            Ok(())
+        }
+        Command::Bench { dim, hidden, layers, depth, batch, threads, seconds, json } => {
+            let cfg = tidemark::bench::BenchConfig { dim, hidden, layers, depth, batch, threads, seconds };
+            let result = tidemark::bench::run(&cfg);
+            println!("{}", tidemark::bench::describe(&result));
+            if let Some(path) = json {
+                let text = serde_json::to_string_pretty(&result).expect("result serializes");
+                tidemark::output::write_atomic(&path, |w| {
+                    writeln!(w, "{text}").map_err(|source| tidemark::Error::Io { path: path.clone(), source })
+                })?;
+            }
             Ok(())
         }
         Command::Inspect { model, json } => {
