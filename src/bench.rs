@@ -11,6 +11,9 @@ use rand::{Rng, SeedableRng};
 use rand_distr::{Distribution, StandardNormal};
 use std::time::Instant;
 
+/// Rows per thread per scoring pass (as in `Model::evaluate`).
+const SCORE_BLOCK: usize = 1024;
+
 /// What to measure.
 #[derive(Clone, Debug, serde::Serialize)]
 pub struct BenchConfig {
@@ -66,7 +69,8 @@ pub fn gemm_peak(seconds: f64) -> f64 {
 
 /// Measure training and scoring throughput for `cfg`.
 pub fn run(cfg: &BenchConfig) -> BenchResult {
-    let spec = FlowSpec { dim: cfg.dim, layers: cfg.layers, hidden: cfg.hidden, depth: cfg.depth, clamp: 3.0, classes: 0 };
+    let spec =
+        FlowSpec { dim: cfg.dim, layers: cfg.layers, hidden: cfg.hidden, depth: cfg.depth, clamp: 3.0, classes: 0 };
     let mut flow = Flow::new(spec.clone(), 7);
     let mut rng = StdRng::seed_from_u64(3);
     // Small non-zero output layers, so the coupling is not the identity.
@@ -95,7 +99,7 @@ pub fn run(cfg: &BenchConfig) -> BenchResult {
     }
     let train_samples_per_s = (steps * cfg.batch) as f64 / start.elapsed().as_secs_f64();
 
-    let mut score_workers = Workers::new(&flow, cfg.threads, rows);
+    let mut score_workers = Workers::new(&flow, cfg.threads, SCORE_BLOCK * cfg.threads);
     let (mut z, mut logdet) = (vec![0.0f32; rows * cfg.dim], vec![0.0f64; rows]);
     let (mut passes, start) = (0usize, Instant::now());
     while start.elapsed().as_secs_f64() < cfg.seconds || passes < 2 {
