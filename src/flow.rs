@@ -633,11 +633,20 @@ pub fn inverse(flow: &Flow, z: &[f32], rows: usize) -> Vec<f32> {
 }
 
 /// One workspace and one gradient buffer per thread. Batches are split by
-/// rows into contiguous chunks, one per thread; gradients are summed in
-/// thread order, so a fixed thread count gives bit-identical results.
+/// rows into contiguous chunks, one per thread, run on a persistent thread
+/// pool; gradients are summed in thread order, so a fixed thread count
+/// gives bit-identical results.
 pub struct Workers {
     chunk_cap: usize,
-    pool: Vec<(Workspace, Vec<f32>)>,
+    pool: Vec<Worker>,
+    /// `None` with one thread: everything runs on the caller's thread.
+    threads: Option<rayon::ThreadPool>,
+}
+
+struct Worker {
+    ws: Workspace,
+    grad: Vec<f32>,
+    total: f64,
 }
 
 /// Fewest rows worth handing to a thread of its own.
@@ -647,9 +656,16 @@ impl Workers {
     pub fn new(flow: &Flow, threads: usize, batch_cap: usize) -> Workers {
         let threads = threads.max(1);
         let chunk_cap = batch_cap.div_ceil(threads).max(1);
-        let pool =
-            (0..threads).map(|_| (Workspace::new(&flow.spec, chunk_cap), vec![0.0f32; flow.param_count()])).collect();
-        Workers { chunk_cap, pool }
+        let pool = (0..threads)
+            .map(|_| Worker {
+                ws: Workspace::new(&flow.spec, chunk_cap),
+                grad: vec![0.0; flow.param_count()],
+                total: 0.0,
+            })
+            .collect();
+        let threads = (threads > 1)
+            .then(|| rayon::ThreadPoolBuilder::new().num_threads(threads).build().expect("worker threads start"));
+        Workers { chunk_cap, pool, threads }
     }
 
     pub fn threads(&self) -> usize {
@@ -677,36 +693,35 @@ impl Workers {
         assert!(parts <= self.pool.len(), "batch larger than the workers were sized for");
         let per = rows.div_ceil(parts);
         let scale = 1.0 / rows as f32;
-        let job = |(idx, (ws, g)): (usize, &mut (Workspace, Vec<f32>))| -> f64 {
+        let job = |idx: usize, w: &mut Worker| {
             let start = (idx * per).min(rows);
             let n = per.min(rows - start);
-            g.fill(0.0);
+            w.grad.fill(0.0);
+            w.total = 0.0;
             if n == 0 {
-                return 0.0;
+                return;
             }
             let d = dropout.map(|(rate, seed)| Dropout { rate, seed, row_offset: start });
-            forward(flow, ws, &x[start * dim..(start + n) * dim], n, d);
+            forward(flow, &mut w.ws, &x[start * dim..(start + n) * dim], n, d);
             let cls = classes.map(|c| &c[start..start + n]);
-            let total = (0..n).map(|r| row_nll(flow, ws, r, cls.map(|c| c[r]))).sum();
-            backward_nll(flow, ws, n, cls, scale, g);
-            total
+            w.total = (0..n).map(|r| row_nll(flow, &w.ws, r, cls.map(|c| c[r]))).sum();
+            backward_nll(flow, &mut w.ws, n, cls, scale, &mut w.grad);
         };
-        let pool = &mut self.pool[..parts];
-        let totals: Vec<f64> = if parts == 1 {
-            pool.iter_mut().enumerate().map(job).collect()
-        } else {
-            std::thread::scope(|sc| {
-                let handles: Vec<_> = pool.iter_mut().enumerate().map(|item| sc.spawn(move || job(item))).collect();
-                handles.into_iter().map(|h| h.join().expect("worker thread panicked")).collect()
-            })
-        };
-        grad.copy_from_slice(&pool[0].1);
-        for (_, g) in &pool[1..] {
-            for (a, b) in grad.iter_mut().zip(g) {
+        let items = &mut self.pool[..parts];
+        match &self.threads {
+            Some(tp) if parts > 1 => {
+                use rayon::prelude::*;
+                tp.install(|| items.par_iter_mut().enumerate().for_each(|(i, w)| job(i, w)));
+            }
+            _ => items.iter_mut().enumerate().for_each(|(i, w)| job(i, w)),
+        }
+        grad.copy_from_slice(&items[0].grad);
+        for w in &items[1..] {
+            for (a, b) in grad.iter_mut().zip(&w.grad) {
                 *a += b;
             }
         }
-        totals.iter().sum::<f64>() / rows as f64
+        items.iter().map(|w| w.total).sum::<f64>() / rows as f64
     }
 
     /// Latent vectors (`rows x dim`) and log-determinants of any number of
@@ -722,23 +737,32 @@ impl Workers {
             let xs = &x[start * dim..(start + n) * dim];
             let zs = &mut z[start * dim..(start + n) * dim];
             let ls = &mut logdet[start..start + n];
-            let pool = &mut self.pool[..parts];
-            std::thread::scope(|sc| {
-                let pieces = xs.chunks(per * dim).zip(zs.chunks_mut(per * dim)).zip(ls.chunks_mut(per));
-                for ((ws, _), ((xc, zc), lc)) in pool.iter_mut().zip(pieces) {
-                    let m = lc.len();
-                    let mut run = move || {
-                        forward(flow, ws, xc, m, None);
-                        zc.copy_from_slice(ws.latent(dim, flow.spec.layers, m));
-                        lc.copy_from_slice(&ws.logdet[..m]);
-                    };
-                    if parts == 1 {
-                        run()
-                    } else {
-                        sc.spawn(run);
+            let job = |w: &mut Worker, xc: &[f32], zc: &mut [f32], lc: &mut [f64]| {
+                let m = lc.len();
+                forward(flow, &mut w.ws, xc, m, None);
+                zc.copy_from_slice(w.ws.latent(dim, flow.spec.layers, m));
+                lc.copy_from_slice(&w.ws.logdet[..m]);
+            };
+            let items = &mut self.pool[..parts];
+            match &self.threads {
+                Some(tp) if parts > 1 => {
+                    use rayon::prelude::*;
+                    tp.install(|| {
+                        items
+                            .par_iter_mut()
+                            .zip(xs.par_chunks(per * dim))
+                            .zip(zs.par_chunks_mut(per * dim))
+                            .zip(ls.par_chunks_mut(per))
+                            .for_each(|(((w, xc), zc), lc)| job(w, xc, zc, lc))
+                    });
+                }
+                _ => {
+                    let pieces = xs.chunks(per * dim).zip(zs.chunks_mut(per * dim)).zip(ls.chunks_mut(per));
+                    for (w, ((xc, zc), lc)) in items.iter_mut().zip(pieces) {
+                        job(w, xc, zc, lc);
                     }
                 }
-            });
+            }
             start += n;
         }
     }
