@@ -435,6 +435,41 @@ elementwise! {
 }
 
 elementwise! {
+    /// Backward of one row's affine half, y2 = p2 e^s + t with s = c tanh(r/c)
+    /// and the -scale * sum(s) log-det term: gradients for r, t and p2.
+    #[allow(clippy::too_many_arguments)]
+    fn coupling_backward_row(
+        g2: &[f32],
+        p2: &[f32],
+        s: &[f32],
+        es: &[f32],
+        c: f32,
+        scale: f32,
+        g_raw: &mut [f32],
+        g_t: &mut [f32],
+        g_p2: &mut [f32],
+    ) {
+        let inv_c = 1.0 / c;
+        for j in 0..g2.len() {
+            let (gv, e, sv) = (g2[j], es[j], s[j] * inv_c);
+            g_raw[j] = (gv * p2[j] * e - scale) * (1.0 - sv * sv);
+            g_t[j] = gv;
+            g_p2[j] = gv * e;
+        }
+    }
+}
+
+elementwise! {
+    /// Through ReLU and dropout: zero where the stored output is 0, scaled
+    /// by 1/keep where it was kept.
+    fn relu_dropout_backward(g: &mut [f32], h: &[f32], keep_inv: f32) {
+        for (gv, &hv) in g.iter_mut().zip(h) {
+            *gv = if hv > 0.0 { *gv * keep_inv } else { 0.0 };
+        }
+    }
+}
+
+elementwise! {
     /// The affine half of a coupling for one row: y = x e + t.
     fn affine_row(y: &mut [f32], x: &[f32], e: &[f32], t: &[f32]) {
         for (((y, &x), &e), &t) in y.iter_mut().zip(x).zip(e).zip(t) {
@@ -512,15 +547,20 @@ pub fn backward_nll(
         let es = &es[k * cap * d2..k * cap * d2 + rows * d2];
         // Through y2 = p2 * exp(s) + t and the -scale * sum(s) logdet term.
         for r in 0..rows {
-            for j in 0..d2 {
-                let g2 = g[r * dim + d1 + j];
-                let e = es[r * d2 + j];
-                let sv = s[r * d2 + j] / c;
-                let gs = g2 * p[r * dim + d1 + j] * e - scale;
-                gout[r * 2 * d2 + j] = gs * (1.0 - sv * sv);
-                gout[r * 2 * d2 + d2 + j] = g2;
-                gp[r * dim + d1 + j] = g2 * e;
-            }
+            let (g2, p2) = (&g[r * dim + d1..(r + 1) * dim], &p[r * dim + d1..(r + 1) * dim]);
+            let (gs, gt) = gout[r * 2 * d2..(r + 1) * 2 * d2].split_at_mut(d2);
+            let coupling = (&s[r * d2..(r + 1) * d2], &es[r * d2..(r + 1) * d2]);
+            coupling_backward_row(
+                g2,
+                p2,
+                coupling.0,
+                coupling.1,
+                c,
+                scale,
+                gs,
+                gt,
+                &mut gp[r * dim + d1..(r + 1) * dim],
+            );
         }
         // Through the conditioner MLP, last layer first; the running gradient
         // ping-pongs between the two hidden scratch buffers.
@@ -557,9 +597,7 @@ pub fn backward_nll(
                 let gh = &mut dst[..rows * hid];
                 matmul(gh, hid, false, g_cur, w);
                 let h = &layer_hidden[(i - 1) * hidden_block..(i - 1) * hidden_block + rows * hid];
-                for (gv, &hv) in gh.iter_mut().zip(h) {
-                    *gv = if hv > 0.0 { *gv * keep_inv } else { 0.0 };
-                }
+                relu_dropout_backward(gh, h, keep_inv);
                 src_is_a = Some(!src_is_a.unwrap_or(false));
             }
         }

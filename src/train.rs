@@ -245,10 +245,9 @@ impl Adam {
         for ((((p, &g), m), v), &d) in params.iter_mut().zip(grad).zip(&mut self.m).zip(&mut self.v).zip(decay) {
             *m = Self::BETA1 * *m + (1.0 - Self::BETA1) * g;
             *v = Self::BETA2 * *v + (1.0 - Self::BETA2) * g * g;
-            if d {
-                *p -= shrink * *p;
-            }
-            *p -= step * *m / (v.sqrt() + eps);
+            // Branch-free, so the loop vectorises.
+            let decayed = *p - f32::from(u8::from(d)) * shrink * *p;
+            *p = decayed - step * *m / (v.sqrt() + eps);
         }
     }
 }
