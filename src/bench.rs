@@ -93,7 +93,7 @@ pub fn run(cfg: &BenchConfig) -> BenchResult {
     while start.elapsed().as_secs_f64() < cfg.seconds || steps < 3 {
         let x = &data[at * cfg.batch * cfg.dim..(at + 1) * cfg.batch * cfg.dim];
         workers.nll_and_grad(&flow, x, None, cfg.batch, None, &mut grad);
-        adam.step(&mut flow.params, &grad, 1e-4, 0.0, &decay);
+        adam.step_on(&workers, &mut flow.params, &grad, 1e-4, 0.0, &decay);
         steps += 1;
         at = (at + 1) % 8;
     }

@@ -687,6 +687,9 @@ struct Worker {
     total: f64,
 }
 
+/// Parameters per block when per-parameter work is split across threads.
+pub const PARAM_BLOCK: usize = 1 << 15;
+
 /// Fewest rows worth handing to a thread of its own.
 const MIN_ROWS_PER_THREAD: usize = 32;
 
@@ -708,6 +711,31 @@ impl Workers {
 
     pub fn threads(&self) -> usize {
         self.pool.len()
+    }
+
+    /// Run `f(offset, a, b, c)` over matching `PARAM_BLOCK`-sized blocks of
+    /// three equally long parameter arrays on the worker threads (in order
+    /// on one thread); `offset` is where the blocks start.
+    pub fn for_param_blocks<F>(&self, a: &mut [f32], b: &mut [f32], c: &mut [f32], f: F)
+    where
+        F: Fn(usize, &mut [f32], &mut [f32], &mut [f32]) + Sync + Send,
+    {
+        match &self.threads {
+            Some(tp) => {
+                use rayon::prelude::*;
+                tp.install(|| {
+                    a.par_chunks_mut(PARAM_BLOCK)
+                        .zip(b.par_chunks_mut(PARAM_BLOCK))
+                        .zip(c.par_chunks_mut(PARAM_BLOCK))
+                        .enumerate()
+                        .for_each(|(i, ((x, y), z))| f(i * PARAM_BLOCK, x, y, z))
+                });
+            }
+            None => {
+                let blocks = a.chunks_mut(PARAM_BLOCK).zip(b.chunks_mut(PARAM_BLOCK)).zip(c.chunks_mut(PARAM_BLOCK));
+                blocks.enumerate().for_each(|(i, ((x, y), z))| f(i * PARAM_BLOCK, x, y, z));
+            }
+        }
     }
 
     fn chunks(&self, rows: usize) -> usize {
@@ -753,11 +781,24 @@ impl Workers {
             }
             _ => items.iter_mut().enumerate().for_each(|(i, w)| job(i, w)),
         }
-        grad.copy_from_slice(&items[0].grad);
-        for w in &items[1..] {
-            for (a, b) in grad.iter_mut().zip(&w.grad) {
-                *a += b;
+        // Sum the threads' gradients in thread order (bit-identical for a
+        // fixed thread count), in parallel over parameter blocks.
+        let items = &self.pool[..parts];
+        let reduce = |(b, out): (usize, &mut [f32])| {
+            let at = b * PARAM_BLOCK;
+            out.copy_from_slice(&items[0].grad[at..at + out.len()]);
+            for w in &items[1..] {
+                for (a, g) in out.iter_mut().zip(&w.grad[at..]) {
+                    *a += g;
+                }
             }
+        };
+        match &self.threads {
+            Some(tp) if parts > 1 => {
+                use rayon::prelude::*;
+                tp.install(|| grad.par_chunks_mut(PARAM_BLOCK).enumerate().for_each(reduce));
+            }
+            _ => grad.chunks_mut(PARAM_BLOCK).enumerate().for_each(reduce),
         }
         items.iter().map(|w| w.total).sum::<f64>() / rows as f64
     }

@@ -236,13 +236,47 @@ impl Adam {
 
     /// One update; `decay[i]` says whether parameter i takes weight decay.
     pub fn step(&mut self, params: &mut [f32], grad: &[f32], lr: f64, weight_decay: f64, decay: &[bool]) {
+        let (step, eps, shrink) = self.advance(lr, weight_decay);
+        Adam::update(params, grad, &mut self.m, &mut self.v, decay, step, eps, shrink);
+    }
+
+    /// [`Adam::step`] split over the workers' threads (same result).
+    pub fn step_on(
+        &mut self,
+        workers: &Workers,
+        params: &mut [f32],
+        grad: &[f32],
+        lr: f64,
+        weight_decay: f64,
+        decay: &[bool],
+    ) {
+        let (step, eps, shrink) = self.advance(lr, weight_decay);
+        workers.for_param_blocks(params, &mut self.m, &mut self.v, |at, p, m, v| {
+            let n = p.len();
+            Adam::update(p, &grad[at..at + n], m, v, &decay[at..at + n], step, eps, shrink);
+        });
+    }
+
+    /// Count the step; the bias-corrected step size, epsilon and decay factor.
+    fn advance(&mut self, lr: f64, weight_decay: f64) -> (f32, f32, f32) {
         self.t += 1;
         let c1 = 1.0 - (Self::BETA1 as f64).powi(self.t as i32);
         let c2 = 1.0 - (Self::BETA2 as f64).powi(self.t as i32);
-        let step = (lr * c2.sqrt() / c1) as f32;
-        let eps = Self::EPS * c2.sqrt() as f32;
-        let shrink = (lr * weight_decay) as f32;
-        for ((((p, &g), m), v), &d) in params.iter_mut().zip(grad).zip(&mut self.m).zip(&mut self.v).zip(decay) {
+        ((lr * c2.sqrt() / c1) as f32, Self::EPS * c2.sqrt() as f32, (lr * weight_decay) as f32)
+    }
+
+    #[allow(clippy::too_many_arguments)]
+    fn update(
+        p: &mut [f32],
+        g: &[f32],
+        m: &mut [f32],
+        v: &mut [f32],
+        decay: &[bool],
+        step: f32,
+        eps: f32,
+        shrink: f32,
+    ) {
+        for ((((p, &g), m), v), &d) in p.iter_mut().zip(g).zip(m).zip(v).zip(decay) {
             *m = Self::BETA1 * *m + (1.0 - Self::BETA1) * g;
             *v = Self::BETA2 * *v + (1.0 - Self::BETA2) * g * g;
             // Branch-free, so the loop vectorises.
@@ -767,7 +801,7 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant) -> Res
             }
             let grad_norm = clip_norm(&mut grad, s.grad_clip);
             let lr = learning_rate(s.lr, l.state.step, total_steps, s.warmup_fraction) * l.state.lr_scale;
-            l.adam.step(&mut l.model.flow.params, &grad, lr, s.weight_decay, &decay);
+            l.adam.step_on(&workers, &mut l.model.flow.params, &grad, lr, s.weight_decay, &decay);
             l.state.adam_t = l.adam.t;
             l.state.train_sum += nll * chunk.len() as f64;
             l.state.grad_norm_sum += grad_norm;

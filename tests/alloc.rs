@@ -40,7 +40,7 @@ fn a_training_step_allocates_nothing_after_the_first() {
         let decay = vec![true; flow.param_count()];
         let mut step = |flow: &mut Flow, seed: u64| {
             workers.nll_and_grad(flow, &x, Some(&classes), rows, Some((0.1, seed)), &mut grad);
-            adam.step(&mut flow.params, &grad, 1e-3, 1e-4, &decay);
+            adam.step_on(&workers, &mut flow.params, &grad, 1e-3, 1e-4, &decay);
         };
         step(&mut flow, 0);
         let mut per_step = Vec::new();
