@@ -461,6 +461,8 @@ fn stop_on_signals() -> Arc<AtomicBool> {
 fn main() -> ExitCode {
     match run(Cli::parse()) {
         Ok(()) => ExitCode::SUCCESS,
+        // A reader that stopped early (`| head`) is not an error.
+        Err(tidemark::Error::Io { source, .. }) if source.kind() == std::io::ErrorKind::BrokenPipe => ExitCode::SUCCESS,
         Err(e @ tidemark::Error::Interrupted(_)) => {
             eprintln!("{e}");
             ExitCode::from(130)

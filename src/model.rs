@@ -102,20 +102,23 @@ impl Meta {
         line("dead features", format!("{dead} (std <= {:e} x largest std)", p.dead_threshold));
         line(
             "preprocessing",
-            format!("{:?}, log-det {:.4}, floored components {}", p.method, p.log_det, p.floored_components)
-                .to_lowercase(),
+            format!(
+                "{:?}, {} whitened dims, log-det {:.4}, null components left out {}, shrinkage {}",
+                p.method, p.whitened_dims, p.log_det, p.floored_components, p.shrinkage
+            )
+            .to_lowercase(),
         );
         line(
             "flow",
             format!(
                 "{} coupling layers over the leading {} of {} whitened dims; conditioner {} x {} (soft clamp {})",
-                self.flow.layers, self.flow_dims, p.live_features, self.flow.depth, self.flow.hidden, self.flow.clamp
+                self.flow.layers, self.flow_dims, p.whitened_dims, self.flow.depth, self.flow.hidden, self.flow.clamp
             ),
         );
         line("seed", self.seed.to_string());
         line("rows", format!("{} train, {} validation", t.train_rows, t.validation_rows));
         line("epochs", format!("{} run, best {} (0 = untrained flow, i.e. Gaussian)", t.epochs_run, t.best_epoch));
-        let per_dim = |v: f64| v / p.live_features as f64;
+        let per_dim = |v: f64| v / p.whitened_dims as f64;
         line("train NLL", format!("{:.4} nats/vector ({:.4} nats/dim)", t.best_train_nll, per_dim(t.best_train_nll)));
         line(
             "validation NLL",
@@ -153,6 +156,9 @@ impl Meta {
 pub struct PreprocessingMeta {
     pub method: Method,
     pub live_features: usize,
+    /// Dimensions of the whitened space the density is over (live features
+    /// less null principal directions).
+    pub whitened_dims: usize,
     /// Input columns kept out of the model because they do not vary.
     pub dead_features: Vec<usize>,
     pub dead_threshold: f64,
@@ -237,6 +243,9 @@ pub struct Evaluation {
     pub background_log_likelihood: Vec<f64>,
     /// Largest absolute deviation on dead features from their training value.
     pub dead_deviation: Vec<f64>,
+    /// Distance from the span of the training rows' principal directions
+    /// (input units; 0 when the training rows span every live direction).
+    pub subspace_residual: Vec<f64>,
 }
 
 /// Rows per thread whitened and pushed through the flow at a time: bounds
@@ -275,7 +284,9 @@ impl Model {
         for chunk in idx.chunks(cap) {
             let n = chunk.len();
             x.gather(chunk, &mut rows);
-            self.pre.transform(&rows, n, &mut whitened);
+            let mut residual = vec![0.0f64; n];
+            self.pre.transform(&rows, n, &mut whitened, Some(&mut residual));
+            out.subspace_residual.extend(residual);
             self.evaluate_whitened(&whitened[..n * self.dim()], n, &mut workers, &mut out);
             out.dead_deviation.extend(rows.chunks(x.cols).map(|r| self.pre.dead_deviation(r)));
         }
@@ -402,12 +413,12 @@ impl Model {
             tensors.push((name.to_string(), dtype, shape, bytes));
         };
         let pre = &self.pre;
-        let d = pre.dim();
-        put("preprocess.mean", Dtype::F64, vec![d], le_bytes_f64(&pre.mean));
-        put("preprocess.scale", Dtype::F64, vec![d], le_bytes_f64(&pre.scale));
-        put("preprocess.live_features", Dtype::I64, vec![d], le_bytes_i64(&pre.live));
+        let (live, k) = (pre.live.len(), pre.dim());
+        put("preprocess.mean", Dtype::F64, vec![live], le_bytes_f64(&pre.mean));
+        put("preprocess.scale", Dtype::F64, vec![k], le_bytes_f64(&pre.scale));
+        put("preprocess.live_features", Dtype::I64, vec![live], le_bytes_i64(&pre.live));
         if let Some(c) = &pre.components {
-            put("preprocess.components", Dtype::F32, vec![d, d], le_bytes_f32(c));
+            put("preprocess.components", Dtype::F32, vec![k, live], le_bytes_f32(c));
         }
         if !pre.dead.is_empty() {
             put("preprocess.dead_values", Dtype::F64, vec![pre.dead.len()], le_bytes_f64(&pre.dead_value));
@@ -492,7 +503,10 @@ impl Model {
             Ok(t.data().to_vec())
         };
         let pm = &meta.preprocessing;
-        let d = pm.live_features;
+        let (d, k) = (pm.live_features, pm.whitened_dims);
+        if k > d || (pm.method == Method::Standardize && k != d) {
+            return Err(Error::model(path, "whitened dimensions do not match the live features"));
+        }
         let live: Vec<usize> = from_i64(&get("preprocess.live_features", Dtype::I64, d)?);
         let mut is_live = vec![false; meta.input_dim];
         for &j in &live {
@@ -517,14 +531,14 @@ impl Model {
             dead,
             mean: from_f64(&get("preprocess.mean", Dtype::F64, d)?),
             components: match pm.method {
-                Method::Pca => Some(from_f32(&get("preprocess.components", Dtype::F32, d * d)?)),
+                Method::Pca => Some(from_f32(&get("preprocess.components", Dtype::F32, k * d)?)),
                 Method::Standardize => None,
             },
-            scale: from_f64(&get("preprocess.scale", Dtype::F64, d)?),
+            scale: from_f64(&get("preprocess.scale", Dtype::F64, k)?),
             floored: pm.floored_components,
             shrinkage: pm.shrinkage,
         };
-        if meta.flow.dim != meta.flow_dims || meta.flow_dims > d || meta.flow.depth == 0 {
+        if meta.flow.dim != meta.flow_dims || meta.flow_dims > k || meta.flow.depth == 0 {
             return Err(Error::model(path, "flow dimensions do not match the preprocessing"));
         }
         let flow = read_flow(path, &get, "flow", &meta.flow)?;

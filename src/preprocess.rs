@@ -21,9 +21,12 @@ pub enum Method {
 /// fraction of the largest feature standard deviation.
 pub const DEFAULT_DEAD_THRESHOLD: f64 = 1e-6;
 
-/// Principal-component variances below this fraction of the largest are
-/// raised to it, so that rank-deficient data never divides by zero.
-pub const EIGENVALUE_FLOOR: f64 = 1e-12;
+/// Principal components whose variance is at most this fraction of the
+/// largest (the square of the dead-feature threshold) carry no variance of
+/// the training rows: the null space of rank-deficient data, for example
+/// fewer rows than features. They are kept out of the density, and a
+/// vector's distance from the remaining subspace is reported instead.
+pub const NULL_VARIANCE: f64 = 1e-12;
 
 /// Rows per block when streaming over the data.
 const BLOCK: usize = 2048;
@@ -88,11 +91,13 @@ pub struct Preprocessor {
     pub dead_value: Vec<f64>,
     /// Training mean of each live column.
     pub mean: Vec<f64>,
-    /// PCA only: `d x d`, row i is the i-th principal direction.
+    /// PCA only: `k x live`, row i is the i-th principal direction (null
+    /// directions left out, so k <= live).
     pub components: Option<Vec<f32>>,
     /// Per output dimension: the standard deviation it is divided by.
     pub scale: Vec<f64>,
-    /// Principal-component variances that were raised to the floor.
+    /// Principal directions left out because the training rows have no
+    /// variance along them.
     pub floored: usize,
     /// Ledoit-Wolf shrinkage intensity applied to the covariance (0: none).
     pub shrinkage: f64,
@@ -156,9 +161,9 @@ impl Preprocessor {
         Ok(pre)
     }
 
-    /// Number of whitened dimensions (live features).
+    /// Number of whitened dimensions (the density's dimension).
     pub fn dim(&self) -> usize {
-        self.live.len()
+        self.scale.len()
     }
 
     /// Covariance (maximum-likelihood, divided by n) of the live features
@@ -166,7 +171,7 @@ impl Preprocessor {
     /// in f64 over row blocks; also the sum of squared squared row norms
     /// that the Ledoit-Wolf intensity needs, for rows scaled by `std`.
     fn covariance(&self, x: &Dataset, idx: &[usize], how: &Covariance, std: &[f64]) -> (Vec<f64>, f64) {
-        let d = self.dim();
+        let d = self.live.len();
         let mut cov = vec![0.0f64; d * d];
         let mut sum_norm4 = 0.0;
         let mut rows = Vec::new();
@@ -199,7 +204,7 @@ impl Preprocessor {
     }
 
     fn fit_pca(&mut self, x: &Dataset, idx: &[usize], how: &Covariance, std: &[f64]) {
-        let d = self.dim();
+        let d = self.live.len();
         let (mut cov, sum_norm4) = self.covariance(x, idx, how, std);
         if how.ledoit_wolf {
             // Shrink the correlation matrix, so that the result does not
@@ -221,9 +226,11 @@ impl Preprocessor {
         let mut order: Vec<usize> = (0..d).collect();
         order.sort_by(|&a, &b| eig.eigenvalues[b].total_cmp(&eig.eigenvalues[a]));
         let top = eig.eigenvalues[order[0]].max(f64::MIN_POSITIVE);
-        let mut components = vec![0.0f32; d * d];
-        let mut scale = Vec::with_capacity(d);
-        for (i, &k) in order.iter().enumerate() {
+        let kept: Vec<usize> = order.iter().copied().filter(|&k| eig.eigenvalues[k] > NULL_VARIANCE * top).collect();
+        self.floored = d - kept.len();
+        let mut components = vec![0.0f32; kept.len() * d];
+        let mut scale = Vec::with_capacity(kept.len());
+        for (i, &k) in kept.iter().enumerate() {
             let v = eig.eigenvectors.column(k);
             // Sign convention: the entry of largest magnitude is positive.
             let lead = v.iter().cloned().fold(0.0f64, |m, e| if e.abs() > m.abs() { e } else { m });
@@ -231,11 +238,7 @@ impl Preprocessor {
             for j in 0..d {
                 components[i * d + j] = (sign * v[j]) as f32;
             }
-            let lambda = eig.eigenvalues[k];
-            if lambda < EIGENVALUE_FLOOR * top {
-                self.floored += 1;
-            }
-            scale.push(lambda.max(EIGENVALUE_FLOOR * top).sqrt());
+            scale.push(eig.eigenvalues[k].sqrt());
         }
         self.components = Some(components);
         self.scale = scale;
@@ -246,26 +249,38 @@ impl Preprocessor {
         -self.scale.iter().map(|s| s.ln()).sum::<f64>()
     }
 
-    /// Whiten `rows` input rows (`rows x input_dim`) into `out` (`rows x dim`).
-    pub fn transform(&self, x: &[f32], rows: usize, out: &mut [f32]) {
-        let (d, cols) = (self.dim(), self.input_dim);
-        let mut centered = vec![0.0f32; rows * d];
+    /// Whiten `rows` input rows (`rows x input_dim`) into `out` (`rows x
+    /// dim`); when `residual` is given, also each row's distance from the
+    /// span of the kept principal directions (input units; 0 without PCA).
+    pub fn transform(&self, x: &[f32], rows: usize, out: &mut [f32], residual: Option<&mut [f64]>) {
+        let (live, k, cols) = (self.live.len(), self.dim(), self.input_dim);
+        let mut centered = vec![0.0f32; rows * live];
         for r in 0..rows {
             let row = &x[r * cols..(r + 1) * cols];
             for (i, &j) in self.live.iter().enumerate() {
                 // Subtract in f64: features with a large mean and a small
                 // spread would lose their digits in f32.
-                centered[r * d + i] = (row[j] as f64 - self.mean[i]) as f32;
+                centered[r * live + i] = (row[j] as f64 - self.mean[i]) as f32;
             }
         }
-        if let Some(comp) = &self.components {
-            matmul(&mut out[..rows * d], d, false, View::rows(&centered, rows, d, d), View::transposed(comp, d, d));
-        } else {
-            out[..rows * d].copy_from_slice(&centered);
+        match &self.components {
+            Some(comp) => {
+                let (c, proj) = (View::rows(&centered, rows, live, live), View::transposed(comp, k, live));
+                matmul(&mut out[..rows * k], k, false, c, proj);
+            }
+            None => out[..rows * k].copy_from_slice(&centered),
+        }
+        if let Some(res) = residual {
+            for r in 0..rows {
+                // ||c||^2 - ||projection||^2 (the directions are orthonormal).
+                let total: f64 = centered[r * live..(r + 1) * live].iter().map(|&v| (v as f64).powi(2)).sum();
+                let kept: f64 = out[r * k..(r + 1) * k].iter().map(|&v| (v as f64).powi(2)).sum();
+                res[r] = if self.components.is_some() && k < live { (total - kept).max(0.0).sqrt() } else { 0.0 };
+            }
         }
         let inv: Vec<f32> = self.scale.iter().map(|s| (1.0 / s) as f32).collect();
         for r in 0..rows {
-            for (v, s) in out[r * d..(r + 1) * d].iter_mut().zip(&inv) {
+            for (v, s) in out[r * k..(r + 1) * k].iter_mut().zip(&inv) {
                 *v *= s;
             }
         }
@@ -274,17 +289,17 @@ impl Preprocessor {
     /// Map whitened vectors (`rows x dim`) back to input space; dead
     /// features take their training value.
     pub fn inverse(&self, u: &[f32], rows: usize) -> Vec<f32> {
-        let (d, cols) = (self.dim(), self.input_dim);
-        let mut scaled = u[..rows * d].to_vec();
+        let (live, k, cols) = (self.live.len(), self.dim(), self.input_dim);
+        let mut scaled = u[..rows * k].to_vec();
         for r in 0..rows {
-            for (v, s) in scaled[r * d..(r + 1) * d].iter_mut().zip(&self.scale) {
+            for (v, s) in scaled[r * k..(r + 1) * k].iter_mut().zip(&self.scale) {
                 *v *= *s as f32;
             }
         }
         let centered = match &self.components {
             Some(comp) => {
-                let mut c = vec![0.0f32; rows * d];
-                matmul(&mut c, d, false, View::rows(&scaled, rows, d, d), View::rows(comp, d, d, d));
+                let mut c = vec![0.0f32; rows * live];
+                matmul(&mut c, live, false, View::rows(&scaled, rows, k, k), View::rows(comp, k, live, live));
                 c
             }
             None => scaled,
@@ -292,7 +307,7 @@ impl Preprocessor {
         let mut out = vec![0.0f32; rows * cols];
         for r in 0..rows {
             for (i, &j) in self.live.iter().enumerate() {
-                out[r * cols + j] = (centered[r * d + i] as f64 + self.mean[i]) as f32;
+                out[r * cols + j] = (centered[r * live + i] as f64 + self.mean[i]) as f32;
             }
             for (&j, &v) in self.dead.iter().zip(&self.dead_value) {
                 out[r * cols + j] = v as f32;
@@ -356,7 +371,7 @@ mod tests {
             let (ds, idx) = all(&x);
             let pre = Preprocessor::fit(&ds, &idx, method, DEFAULT_DEAD_THRESHOLD).unwrap();
             let mut u = vec![0.0; 500 * 3];
-            pre.transform(&x.data, 500, &mut u);
+            pre.transform(&x.data, 500, &mut u, None);
             let cov =
                 |i: usize, j: usize| (0..500).map(|r| u[r * 3 + i] as f64 * u[r * 3 + j] as f64).sum::<f64>() / 500.0;
             for i in 0..3 {

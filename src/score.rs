@@ -45,6 +45,9 @@ pub fn column_help(name: &str) -> &'static str {
         "predicted_class" => "most probable class label",
         "class_probability" => "posterior probability of the predicted class",
         "dead_feature_deviation" => "largest |x_j - training value| on dead features; higher = more anomalous",
+        "subspace_residual" => {
+            "distance from the span of the training rows' principal directions (input units); higher = more anomalous"
+        }
         "p_value" => "conformal p-value of the calibrated score; lower = more anomalous",
         "flagged" => "1 when the p-value is at most the calibrated false-alarm rate",
         _ => "log p(x | class), nats, input space; higher = more typical",
@@ -56,9 +59,13 @@ pub fn column_help(name: &str) -> &'static str {
 /// are not anomaly scores (predicted class, log-det).
 pub fn higher_is_anomalous(name: &str) -> Option<bool> {
     match name {
-        "bits_per_dim" | "mahalanobis_sq" | "typicality" | "multi_statistic" | "dead_feature_deviation" | "flagged" => {
-            Some(true)
-        }
+        "bits_per_dim"
+        | "mahalanobis_sq"
+        | "typicality"
+        | "multi_statistic"
+        | "dead_feature_deviation"
+        | "subspace_residual"
+        | "flagged" => Some(true),
         "log_likelihood" | "base_log_density" | "log_likelihood_ratio" | "class_probability" | "p_value" => Some(false),
         n if n.starts_with("class_log_likelihood_") => Some(false),
         _ => None,
@@ -90,6 +97,9 @@ pub fn available_columns(model: &Model, calibrated: bool) -> Vec<String> {
         cols.extend(model.meta.classes.iter().map(|c| format!("class_log_likelihood_{}", c.label)));
     }
     cols.push("dead_feature_deviation".into());
+    if model.pre.floored > 0 {
+        cols.push("subspace_residual".into());
+    }
     if calibrated {
         cols.push("p_value".into());
         cols.push("flagged".into());
@@ -150,6 +160,7 @@ impl<'a> Scorer<'a> {
             "predicted_class" => m.meta.classes[e.predicted_class[r]].label as f64,
             "class_probability" => e.class_probability[r],
             "dead_feature_deviation" => e.dead_deviation[r],
+            "subspace_residual" => e.subspace_residual[r],
             "p_value" | "flagged" => {
                 let cal = self.calibration.expect("calibrated columns need a calibration");
                 let p = cal.p_value(self.value(e, &cal.score, r));

@@ -505,7 +505,7 @@ fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
         // The class-Gaussian base means are the whitened class means.
         let row: Vec<f32> = mean.iter().map(|&v| v as f32).collect();
         let mut u = vec![0.0f32; pre.dim()];
-        pre.transform(&row, 1, &mut u);
+        pre.transform(&row, 1, &mut u, None);
         let at = flow.class_means + c * flow.spec.dim;
         flow.params[at..at + flow.spec.dim].copy_from_slice(&u);
     }
@@ -630,7 +630,8 @@ fn skeleton_meta(cols: usize, pre: &Preprocessor, flow: &Flow, s: &Settings, cla
         input_dim: cols,
         preprocessing: PreprocessingMeta {
             method: pre.method,
-            live_features: pre.dim(),
+            live_features: pre.live.len(),
+            whitened_dims: pre.dim(),
             dead_features: pre.dead.clone(),
             dead_threshold: s.dead_threshold,
             floored_components: pre.floored,
@@ -720,7 +721,7 @@ impl<'a> Rows<'a> {
         let mut raw = Vec::new();
         self.data.gather(idx, &mut raw);
         let mut u = vec![0.0f32; idx.len() * d];
-        model.pre.transform(&raw, idx.len(), &mut u);
+        model.pre.transform(&raw, idx.len(), &mut u, None);
         if k == d {
             return u;
         }

@@ -35,7 +35,7 @@ fn whitening_matches_numpy_and_handles_dead_columns() {
     assert!((pre.log_det() - log_det).abs() < 1e-9 * log_det.abs());
 
     let mut u = vec![0.0f32; 5 * pre.dim()];
-    pre.transform(&x.data, 5, &mut u);
+    pre.transform(&x.data, 5, &mut u, None);
     for (a, b) in u.iter().zip(common::floats(&want["whitened_first_rows"])) {
         assert!((*a as f64 - b).abs() < 1e-4, "whitened {a} vs {b}");
     }
@@ -69,4 +69,55 @@ fn identity_flow_log_likelihood_equals_scipy_gaussian_logpdf() {
             assert!((a - b).abs() < 1e-4 * b.abs().max(1.0), "{method:?}: {a} vs scipy {b}");
         }
     }
+}
+
+/// Rows that span only a 5-d subspace of 12 features (invented): the 7 null
+/// principal directions are left out of the density instead of being
+/// whitened into huge log-determinants, and a vector's distance from the
+/// subspace is reported: for x = m + A w + n with n orthogonal to the span
+/// of A, `subspace_residual` is ||n|| (Pythagoras).
+#[test]
+fn null_directions_are_left_out_and_the_residual_is_the_distance_to_the_subspace() {
+    let (d, r, n) = (12, 5, 40);
+    // Orthonormal columns: unit vectors on features 0..5, rotated in pairs.
+    let basis = |j: usize, f: usize| -> f64 {
+        let (c, s) = (0.6, 0.8);
+        match (f, j) {
+            (f, j) if f == 2 * j && j < r => c,
+            (f, j) if f == 2 * j + 1 && j < r => s,
+            _ => 0.0,
+        }
+    };
+    let mean: Vec<f64> = (0..d).map(|f| 3.0 + f as f64).collect();
+    let point = |w: &[f64], off: &[f64]| -> Vec<f32> {
+        (0..d).map(|f| (mean[f] + (0..r).map(|j| basis(j, f) * w[j]).sum::<f64>() + off[f]) as f32).collect()
+    };
+    let zero = vec![0.0; d];
+    let mut data = Vec::new();
+    for i in 0..n {
+        let w: Vec<f64> =
+            (0..r).map(|j| (i as f64 * (0.37 + 0.29 * j as f64) + j as f64).sin() * (1.0 + j as f64)).collect();
+        data.extend(point(&w, &zero));
+    }
+    let x = Dataset::in_memory(tidemark::data::Matrix::new(n, d, data));
+    let all: Vec<usize> = (0..n).collect();
+    let pre = Preprocessor::fit(&x, &all, Method::Pca, DEFAULT_DEAD_THRESHOLD).unwrap();
+    // Features 10 and 11 never vary: dead. Of the 10 live ones, 5 are null directions.
+    assert_eq!((pre.dead.clone(), pre.dim(), pre.floored), (vec![10, 11], r, 10 - r));
+    assert!(pre.log_det().abs() < 50.0, "log-det {}", pre.log_det());
+    // Off the subspace: along (-0.8, 0.6) on features 0, 1 (length 2) and on
+    // features 8, 9 (length 1.5); and 0.7 on the dead feature 11, which the
+    // residual leaves to dead_feature_deviation.
+    let mut off = vec![0.0; d];
+    off[0] = -0.8 * 2.0;
+    off[1] = 0.6 * 2.0;
+    off[8] = -0.8 * 1.5;
+    off[9] = 0.6 * 1.5;
+    off[11] = 0.7;
+    let v = point(&[0.3, -0.2, 0.1, 0.5, -0.4], &off);
+    let (mut u, mut res) = (vec![0.0f32; r], vec![0.0f64; 1]);
+    pre.transform(&v, 1, &mut u, Some(&mut res));
+    let want = (2.0f64 * 2.0 + 1.5 * 1.5).sqrt();
+    assert!((res[0] - want).abs() < 1e-3, "residual {} vs {want}", res[0]);
+    assert!((pre.dead_deviation(&v) - 0.7).abs() < 1e-5);
 }
