@@ -583,33 +583,6 @@ fn read_csv_labels(path: &Path) -> Result<Vec<i64>, DataError> {
         .collect()
 }
 
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn parses_header_variants() {
-        let h = parse_npy_header("{'descr': '<f8', 'fortran_order': True, 'shape': (3, 4), }").unwrap();
-        assert_eq!((h.descr.as_str(), h.fortran_order, h.shape), ("<f8", true, vec![3, 4]));
-        let h = parse_npy_header("{'descr': '|u1', 'fortran_order': False, 'shape': (7,), }").unwrap();
-        assert_eq!(h.shape, vec![7]);
-    }
-
-    #[test]
-    fn npy_round_trip() {
-        let m = Matrix::new(2, 3, vec![1.0, -2.5, 3.25, 0.0, 1e-8, 7.0]);
-        let dir = tempfile::tempdir().unwrap();
-        let p = dir.path().join("m.npy");
-        let mut f = std::fs::File::create(&p).unwrap();
-        write_npy(&mut f, &m).unwrap();
-        drop(f);
-        assert_eq!(read_matrix(&p, None).unwrap(), m);
-        // The whole header block is 64-byte aligned, as numpy writes it.
-        let bytes = std::fs::read(&p).unwrap();
-        assert_eq!((bytes.len() - 24) % 64, 0);
-    }
-}
-
 // ---------------------------------------------------------------- score files
 
 /// Read a score file written by `tidemark score`: CSV with a header, `.npy`
@@ -689,4 +662,31 @@ pub fn read_score_table(path: &Path) -> Result<(Vec<String>, Vec<Vec<f64>>), Dat
     }
     let columns = (0..names.len()).map(|c| rows.iter().map(|r| r[c]).collect()).collect();
     Ok((names, columns))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn parses_header_variants() {
+        let h = parse_npy_header("{'descr': '<f8', 'fortran_order': True, 'shape': (3, 4), }").unwrap();
+        assert_eq!((h.descr.as_str(), h.fortran_order, h.shape), ("<f8", true, vec![3, 4]));
+        let h = parse_npy_header("{'descr': '|u1', 'fortran_order': False, 'shape': (7,), }").unwrap();
+        assert_eq!(h.shape, vec![7]);
+    }
+
+    #[test]
+    fn npy_round_trip() {
+        let m = Matrix::new(2, 3, vec![1.0, -2.5, 3.25, 0.0, 1e-8, 7.0]);
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("m.npy");
+        let mut f = std::fs::File::create(&p).unwrap();
+        write_npy(&mut f, &m).unwrap();
+        drop(f);
+        assert_eq!(read_matrix(&p, None).unwrap(), m);
+        // The whole header block is 64-byte aligned, as numpy writes it.
+        let bytes = std::fs::read(&p).unwrap();
+        assert_eq!((bytes.len() - 24) % 64, 0);
+    }
 }

@@ -207,34 +207,6 @@ pub fn median(v: &[f64]) -> f64 {
     s[s.len() / 2]
 }
 
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    /// By definition: the share of (inlier, outlier) pairs ranked right,
-    /// ties one half, counted pair by pair.
-    #[test]
-    fn auroc_counts_pairs_with_ties_as_half() {
-        let inl = [0.1, 0.4, 0.4, 0.8, 0.3];
-        let out = [0.4, 0.9, 0.35, 0.8];
-        let mut pairs = 0.0;
-        for &o in &out {
-            for &i in &inl {
-                pairs += if o > i {
-                    1.0
-                } else if o == i {
-                    0.5
-                } else {
-                    0.0
-                };
-            }
-        }
-        assert!((auroc(&inl, &out) - pairs / 20.0).abs() < 1e-12);
-        assert_eq!(auroc(&[0.0, 1.0], &[2.0, 3.0]), 1.0);
-        assert_eq!(auroc(&[2.0, 3.0], &[0.0, 1.0]), 0.0);
-    }
-}
-
 /// What `tidemark evaluate` was asked to do.
 pub struct EvaluateOptions<'a> {
     pub id: &'a std::path::Path,
@@ -352,4 +324,32 @@ pub fn table(results: &Results) -> String {
         }
     }
     s
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// By definition: the share of (inlier, outlier) pairs ranked right,
+    /// ties one half, counted pair by pair.
+    #[test]
+    fn auroc_counts_pairs_with_ties_as_half() {
+        let inl = [0.1, 0.4, 0.4, 0.8, 0.3];
+        let out = [0.4, 0.9, 0.35, 0.8];
+        let mut pairs = 0.0;
+        for &o in &out {
+            for &i in &inl {
+                pairs += if o > i {
+                    1.0
+                } else if o == i {
+                    0.5
+                } else {
+                    0.0
+                };
+            }
+        }
+        assert!((auroc(&inl, &out) - pairs / 20.0).abs() < 1e-12);
+        assert_eq!(auroc(&[0.0, 1.0], &[2.0, 3.0]), 1.0);
+        assert_eq!(auroc(&[2.0, 3.0], &[0.0, 1.0]), 0.0);
+    }
 }

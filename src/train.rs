@@ -852,7 +852,7 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant) -> Res
         write_log(run, &l.state.log)?;
         let done = l.state.since_best >= s.patience || l.state.epoch > s.epochs;
         l.state.finished = done;
-        if improved || epoch % s.checkpoint_every == 0 || done {
+        if improved || epoch.is_multiple_of(s.checkpoint_every) || done {
             save_checkpoint(run, l)?;
             last_checkpoint = Instant::now();
         }
