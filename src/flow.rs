@@ -335,10 +335,7 @@ fn forward_layer(flow: &Flow, k: usize, ws: &mut Workspace, rows: usize, dropout
         ws.col_b[j] = shift[src as usize];
     }
     for r in 0..rows {
-        let (xi, pr) = (&input[r * dim..(r + 1) * dim], &mut p[r * dim..(r + 1) * dim]);
-        for (j, &src) in perm.iter().enumerate() {
-            pr[j] = xi[src as usize] * ws.col_a[j] + ws.col_b[j];
-        }
+        actnorm_permute_row(&input[r * dim..(r + 1) * dim], perm, &ws.col_a, &ws.col_b, &mut p[r * dim..(r + 1) * dim]);
     }
     let actnorm_logdet: f64 = log_scale.iter().map(|&v| v as f64).sum();
 
@@ -470,6 +467,27 @@ elementwise! {
 }
 
 elementwise! {
+    /// `sums += ` the column sums of `rows` (row-major, `sums.len()` wide).
+    fn column_sums(sums: &mut [f32], rows: &[f32]) {
+        for row in rows.chunks_exact(sums.len()) {
+            for (s, &v) in sums.iter_mut().zip(row) {
+                *s += v;
+            }
+        }
+    }
+}
+
+elementwise! {
+    /// ActNorm and the permutation for one row: p[j] = x[perm[j]] a[j] + b[j]
+    /// (scale and shift already in permuted order).
+    fn actnorm_permute_row(x: &[f32], perm: &[u32], a: &[f32], b: &[f32], p: &mut [f32]) {
+        for (((pv, &src), &av), &bv) in p.iter_mut().zip(perm).zip(a).zip(b) {
+            *pv = x[src as usize] * av + bv;
+        }
+    }
+}
+
+elementwise! {
     /// The affine half of a coupling for one row: y = x e + t.
     fn affine_row(y: &mut [f32], x: &[f32], e: &[f32], t: &[f32]) {
         for (((y, &x), &e), &t) in y.iter_mut().zip(x).zip(e).zip(t) {
@@ -581,11 +599,7 @@ pub fn backward_nll(
             // gW += g_cur^T * inp ; gb += column sums of g_cur.
             let (gw, gb) = grad[lin.weight..lin.bias + lin.out].split_at_mut(lin.out * lin.inp);
             matmul(gw, lin.inp, true, View::transposed(g_cur, rows, lin.out), inp);
-            for r in 0..rows {
-                for (b, &gv) in gb.iter_mut().zip(&g_cur[r * lin.out..(r + 1) * lin.out]) {
-                    *b += gv;
-                }
-            }
+            column_sums(gb, &g_cur[..rows * lin.out]);
             let w = View::rows(&params[lin.weight..lin.weight + lin.out * lin.inp], lin.out, lin.inp, lin.inp);
             let g_cur = View::rows(g_cur, rows, lin.out, lin.out);
             if i == 0 {
