@@ -236,3 +236,27 @@ fn resume_refuses_changed_data() {
     let stderr = String::from_utf8_lossy(&out.get_output().stderr);
     assert!(stderr.contains("other.npy: differs from the data this run was started on (500 x 6"), "{stderr}");
 }
+
+/// A second Ctrl-C exits at once (status 130) without waiting for the
+/// checkpoint; whatever checkpoint is on disk is whole (files are only ever
+/// renamed into place) and resumes.
+#[test]
+fn a_second_interrupt_exits_at_once_and_leaves_a_loadable_checkpoint() {
+    let dir = tempfile::tempdir().unwrap();
+    let train = dir.path().join("train.npy");
+    common::save(&train, &data(20_000, 0.2));
+    let (model, checkpoint) = (dir.path().join("model.safetensors"), dir.path().join("ck.safetensors"));
+    let args = ["--epochs", "3", "--checkpoint-minutes", "0", "--threads", "1", "-q"];
+    let child = std::process::Command::new(bin())
+        .args(["fit", s(&train), "-o", s(&model), "--checkpoint", s(&checkpoint)])
+        .args(args)
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    wait_for(&checkpoint, Duration::from_secs(60));
+    send(child.id(), "-INT");
+    send(child.id(), "-INT");
+    let out = child.wait_with_output().unwrap();
+    assert_eq!(out.status.code(), Some(130));
+    Command::new(bin()).args(["fit", s(&train), "-o", s(&model), "--resume", s(&checkpoint)]).args(args).assert().success();
+}
