@@ -38,8 +38,14 @@ fn contents(path: &Path) -> (Vec<u8>, serde_json::Value) {
 }
 
 fn send(pid: u32, signal: &str) {
-    let ok = std::process::Command::new("kill").args([signal, &pid.to_string()]).status().unwrap().success();
-    assert!(ok, "kill {signal} {pid}");
+    let sig = match signal {
+        "-TERM" => libc::SIGTERM,
+        "-INT" => libc::SIGINT,
+        _ => libc::SIGKILL,
+    };
+    // SAFETY: kill(2) on a child process this test spawned and has not reaped.
+    let rc = unsafe { libc::kill(pid as libc::pid_t, sig) };
+    assert_eq!(rc, 0, "kill {signal} {pid}");
 }
 
 fn wait_for(path: &Path, limit: Duration) {
@@ -258,5 +264,9 @@ fn a_second_interrupt_exits_at_once_and_leaves_a_loadable_checkpoint() {
     send(child.id(), "-INT");
     let out = child.wait_with_output().unwrap();
     assert_eq!(out.status.code(), Some(130));
-    Command::new(bin()).args(["fit", s(&train), "-o", s(&model), "--resume", s(&checkpoint)]).args(args).assert().success();
+    Command::new(bin())
+        .args(["fit", s(&train), "-o", s(&model), "--resume", s(&checkpoint)])
+        .args(args)
+        .assert()
+        .success();
 }
