@@ -14,51 +14,20 @@ import time
 
 import torch
 
+from pytorch_flow import flow
+from pytorch_flow import nll as flow_nll
+
 dim, hidden, layers, batch, threads = (int(a) for a in sys.argv[1:6])
 seconds = float(sys.argv[6])
 torch.set_num_threads(threads)
 torch.manual_seed(7)
-d1, d2, clamp = dim // 2, dim - dim // 2, 3.0
 
 
-class Layer(torch.nn.Module):
-    def __init__(self):
-        super().__init__()
-        self.log_scale = torch.nn.Parameter(torch.zeros(dim))
-        self.bias = torch.nn.Parameter(torch.zeros(dim))
-        self.register_buffer("perm", torch.randperm(dim))
-        self.net = torch.nn.Sequential(
-            torch.nn.Linear(d1, hidden), torch.nn.ReLU(),
-            torch.nn.Linear(hidden, hidden), torch.nn.ReLU(),
-            torch.nn.Linear(hidden, 2 * d2),
-        )
-        for lin in self.net[:-1]:
-            if isinstance(lin, torch.nn.Linear):
-                b = 1.0 / lin.in_features ** 0.5
-                torch.nn.init.uniform_(lin.weight, -b, b)
-                torch.nn.init.zeros_(lin.bias)
-        torch.nn.init.uniform_(self.net[-1].weight, -0.01, 0.01)
-        torch.nn.init.zeros_(self.net[-1].bias)
-
-    def forward(self, x):
-        a = x * self.log_scale.exp() + self.bias
-        p = a[:, self.perm]
-        p1, p2 = p[:, :d1], p[:, d1:]
-        r, t = self.net(p1).chunk(2, dim=1)
-        s = clamp * torch.tanh(r / clamp)
-        return torch.cat([p1, p2 * s.exp() + t], dim=1), self.log_scale.sum() + s.sum(1)
-
-
-model = torch.nn.ModuleList([Layer() for _ in range(layers)])
-half_ln_2pi = 0.9189385332046727
+model = flow(dim, hidden, layers, last_scale=0.01)
 
 
 def nll(x):
-    logdet = torch.zeros(x.shape[0])
-    for layer in model:
-        x, ld = layer(x)
-        logdet = logdet + ld
-    return (0.5 * (x * x).sum(1) + dim * half_ln_2pi - logdet).mean()
+    return flow_nll(model, x).mean()
 
 
 data = torch.randn(batch * 8, dim)

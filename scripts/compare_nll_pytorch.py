@@ -23,11 +23,13 @@ import tempfile
 import numpy as np
 import torch
 
+from pytorch_flow import flow, nll
+
 binary = sys.argv[1]
 epochs = int(sys.argv[2]) if len(sys.argv) > 2 else 10
 seeds = int(sys.argv[3]) if len(sys.argv) > 3 else 3
 torch.set_num_threads(1)
-D, HIDDEN, LAYERS, BATCH, CLAMP = 16, 128, 8, 256, 3.0
+D, HIDDEN, LAYERS, BATCH = 16, 128, 8, 256
 
 rng = np.random.default_rng(0)
 
@@ -45,46 +47,11 @@ mu, cov = train.mean(0), np.cov(train.T, bias=True)
 w, v = np.linalg.eigh(cov)
 white = v / np.sqrt(w)
 train, val = ((train - mu) @ white).astype(np.float32), ((val - mu) @ white).astype(np.float32)
-d1, d2 = D // 2, D - D // 2
-
-
-class Layer(torch.nn.Module):
-    def __init__(self):
-        super().__init__()
-        self.log_scale = torch.nn.Parameter(torch.zeros(D))
-        self.bias = torch.nn.Parameter(torch.zeros(D))
-        self.register_buffer("perm", torch.randperm(D))
-        self.net = torch.nn.Sequential(
-            torch.nn.Linear(d1, HIDDEN), torch.nn.ReLU(),
-            torch.nn.Linear(HIDDEN, HIDDEN), torch.nn.ReLU(),
-            torch.nn.Linear(HIDDEN, 2 * d2))
-        for lin in (self.net[0], self.net[2]):
-            b = 1.0 / lin.in_features ** 0.5
-            torch.nn.init.uniform_(lin.weight, -b, b)
-            torch.nn.init.zeros_(lin.bias)
-        torch.nn.init.zeros_(self.net[4].weight)
-        torch.nn.init.zeros_(self.net[4].bias)
-
-    def forward(self, x):
-        a = x * self.log_scale.exp() + self.bias
-        p = a[:, self.perm]
-        p1, p2 = p[:, :d1], p[:, d1:]
-        r, t = self.net(p1).chunk(2, dim=1)
-        s = CLAMP * torch.tanh(r / CLAMP)
-        return torch.cat([p1, p2 * s.exp() + t], 1), self.log_scale.sum() + s.sum(1)
-
-
-def nll(model, x):
-    logdet = torch.zeros(x.shape[0])
-    for layer in model:
-        x, ld = layer(x)
-        logdet = logdet + ld
-    return 0.5 * (x * x).sum(1) + D * 0.5 * math.log(2 * math.pi) - logdet
 
 
 def torch_run(seed):
     torch.manual_seed(seed)
-    model = torch.nn.ModuleList([Layer() for _ in range(LAYERS)])
+    model = flow(D, HIDDEN, LAYERS)
     with torch.no_grad():  # ActNorm data initialisation, layer by layer
         h = torch.from_numpy(train[:4096])
         for layer in model:
