@@ -384,7 +384,19 @@ impl Model {
         let (d, k) = (self.dim(), self.meta.flow_dims);
         let mut rng = rand::rngs::StdRng::seed_from_u64(seed);
         let z: Vec<f32> = (0..n * d).map(|_| StandardNormal.sample(&mut rng)).collect();
-        let head = flow::inverse(&self.flow, &leading_columns(&z, n, d, k), n);
+        let mut head_z = leading_columns(&z, n, d, k);
+        if self.classes() > 0 {
+            // A class from the priors, then the base around its mean.
+            let priors: Vec<f64> = self.log_priors().iter().map(|p| p.exp()).collect();
+            let pick = rand_distr::weighted::WeightedIndex::new(&priors).expect("class priors are positive");
+            for row in head_z.chunks_mut(k) {
+                let c = pick.sample(&mut rng);
+                for (v, m) in row.iter_mut().zip(self.flow.class_mean(c)) {
+                    *v += m;
+                }
+            }
+        }
+        let head = flow::inverse(&self.flow, &head_z, n);
         let mut u = z;
         for r in 0..n {
             u[r * d..r * d + k].copy_from_slice(&head[r * k..(r + 1) * k]);

@@ -107,6 +107,20 @@ fn class_conditional_marginal_is_a_density_and_posteriors_sum_to_one() {
     let e = model.evaluate(&g, 2);
     let mass: f64 = e.log_likelihood.iter().map(|ll| ll.exp()).sum::<f64>() * (h as f64).powi(2);
     assert!((mass - 1.0).abs() < 0.02, "integral of the marginal density = {mass}");
+    // Samples come from the mixture: a class by its prior, then a standard
+    // normal latent around its mean. So the squared distance to the nearest
+    // class mean averages at most D = 2 (chi-square mean; the nearest mean
+    // can only be closer than the one drawn around), and the classes the
+    // model predicts for its own samples follow the priors (1/3 each) up to
+    // the overlap between classes.
+    let samples = Dataset::in_memory(model.sample(6000, 5));
+    let s = model.evaluate(&samples, 2);
+    let mean_sq = s.mahalanobis_sq.iter().sum::<f64>() / s.mahalanobis_sq.len() as f64;
+    assert!(mean_sq < 2.1, "mean squared distance to the nearest class mean {mean_sq}");
+    for c in 0..3 {
+        let share = s.predicted_class.iter().filter(|&&p| p == c).count() as f64 / 6000.0;
+        assert!((share - 1.0 / 3.0).abs() < 0.05, "class {c}: {share} of the samples");
+    }
     let priors: Vec<f64> = model.meta.classes.iter().map(|c| (c.rows as f64 / n as f64).ln()).collect();
     for r in (0..g.rows).step_by(997) {
         let total: f64 =
