@@ -50,12 +50,24 @@ impl Matrix {
 #[derive(Clone, Copy, Debug)]
 enum Elem {
     F16,
+    BF16,
     F32,
     F64,
 }
 
-/// Rows of embeddings for the pipeline: in memory, or a `.npy` file
-/// memory-mapped so that a dump larger than memory is never copied whole.
+impl Elem {
+    fn width(self) -> usize {
+        match self {
+            Elem::F16 | Elem::BF16 => 2,
+            Elem::F32 => 4,
+            Elem::F64 => 8,
+        }
+    }
+}
+
+/// Rows of embeddings for the pipeline: in memory (CSV), or a `.npy` or
+/// `.safetensors` file memory-mapped so that a dump larger than memory is
+/// never copied whole.
 pub struct Dataset {
     pub path: PathBuf,
     pub rows: usize,
@@ -69,13 +81,29 @@ enum Storage {
 }
 
 impl Dataset {
-    /// Open embeddings for streaming: `.npy` is memory-mapped, other formats
-    /// are read into memory. Every value is checked, as in [`read_matrix`].
+    /// Open embeddings for streaming: `.npy` and `.safetensors` are
+    /// memory-mapped, CSV is read into memory. Every value is checked.
     pub fn open(path: &Path, tensor: Option<&str>) -> Result<Dataset, DataError> {
-        if extension(path) != "npy" {
-            let m = read_matrix(path, tensor)?;
-            return Ok(Dataset::from_matrix(path, m));
-        }
+        let ds = match extension(path).as_str() {
+            "npy" => Dataset::map_npy(path)?,
+            "safetensors" => Dataset::map_safetensors(path, tensor)?,
+            "csv" => Dataset::from_matrix(path, read_csv_matrix(path)?),
+            other => {
+                return fail(path, format!("unsupported file type '.{other}' (expected .npy, .safetensors or .csv)"))
+            }
+        };
+        ds.check_values()?;
+        Ok(ds)
+    }
+
+    fn map(path: &Path) -> Result<memmap2::Mmap, DataError> {
+        let file = open(path)?;
+        // SAFETY: the map is read-only; a file changed underneath by another
+        // process could change values, which the data checksum on resume catches.
+        unsafe { memmap2::Mmap::map(&file) }.or_else(|e| fail(path, format!("cannot map: {e}")))
+    }
+
+    fn map_npy(path: &Path) -> Result<Dataset, DataError> {
         let (header, offset) = npy_header(path)?;
         check_matrix_shape(path, &header.shape)?;
         let elem = match &header.descr[1..] {
@@ -83,46 +111,34 @@ impl Dataset {
             "f4" => Elem::F32,
             "f8" => Elem::F64,
             _ => {
+                let d = &header.descr;
                 return fail(
                     path,
-                    format!(
-                        "unsupported dtype '{}' for embeddings (expected float32, float64 or float16)",
-                        header.descr
-                    ),
-                )
+                    format!("unsupported dtype '{d}' for embeddings (expected float32, float64 or float16)"),
+                );
             }
         };
-        let file = open(path)?;
-        // SAFETY: the map is read-only; a file changed underneath by another
-        // process could change values, which the data checksum on resume catches.
-        let map = unsafe { memmap2::Mmap::map(&file) }.or_else(|e| fail(path, format!("cannot map: {e}")))?;
+        let map = Dataset::map(path)?;
         let (rows, cols) = (header.shape[0], header.shape[1]);
-        let width = dtype_width(&header.descr).unwrap_or(4);
+        let need = rows * cols * elem.width();
         let have = map.len().saturating_sub(offset);
-        if have < rows * cols * width {
-            return fail(
-                path,
-                format!(
-                    "truncated: shape {:?} needs {} data bytes, file has {have}",
-                    header.shape,
-                    rows * cols * width
-                ),
-            );
+        if have < need {
+            return fail(path, format!("truncated: shape {:?} needs {need} data bytes, file has {have}", header.shape));
         }
-        let ds = Dataset {
+        let (big_endian, fortran) = (header.descr.starts_with('>'), header.fortran_order);
+        Ok(Dataset {
             path: path.to_path_buf(),
             rows,
             cols,
-            storage: Storage::Mapped {
-                map,
-                offset,
-                elem,
-                big_endian: header.descr.starts_with('>'),
-                fortran: header.fortran_order,
-            },
-        };
-        ds.check_values()?;
-        Ok(ds)
+            storage: Storage::Mapped { map, offset, elem, big_endian, fortran },
+        })
+    }
+
+    fn map_safetensors(path: &Path, tensor: Option<&str>) -> Result<Dataset, DataError> {
+        let map = Dataset::map(path)?;
+        let (offset, rows, cols, elem) = locate_tensor(path, &map, tensor)?;
+        let storage = Storage::Mapped { map, offset, elem, big_endian: false, fortran: false };
+        Ok(Dataset { path: path.to_path_buf(), rows, cols, storage })
     }
 
     /// Rows already in memory (no file behind them).
@@ -139,14 +155,10 @@ impl Dataset {
             Storage::Owned(v) => v[r * self.cols + c],
             Storage::Mapped { map, offset, elem, big_endian, fortran } => {
                 let i = if *fortran { c * self.rows + r } else { r * self.cols + c };
-                let width = match elem {
-                    Elem::F16 => 2,
-                    Elem::F32 => 4,
-                    Elem::F64 => 8,
-                };
-                let b = element(&map[*offset..], i, width, *big_endian);
+                let b = element(&map[*offset..], i, elem.width(), *big_endian);
                 match elem {
                     Elem::F16 => f16::from_le_bytes([b[0], b[1]]).to_f32(),
+                    Elem::BF16 => bf16::from_le_bytes([b[0], b[1]]).to_f32(),
                     Elem::F32 => f32::from_le_bytes([b[0], b[1], b[2], b[3]]),
                     Elem::F64 => f64::from_le_bytes(b) as f32,
                 }
@@ -227,26 +239,10 @@ pub fn mix64(mut z: u64) -> u64 {
     z ^ (z >> 31)
 }
 
-/// Read an embedding matrix, choosing the format by extension. `tensor`
-/// names the tensor inside a `.safetensors` file holding several.
+/// Read an embedding matrix into memory, choosing the format by extension,
+/// with every value checked (see [`Dataset::open`] for large files).
 pub fn read_matrix(path: &Path, tensor: Option<&str>) -> Result<Matrix, DataError> {
-    let m = match extension(path).as_str() {
-        "npy" => read_npy_matrix(path)?,
-        "safetensors" => read_safetensors_matrix(path, tensor)?,
-        "csv" => read_csv_matrix(path)?,
-        other => return fail(path, format!("unsupported file type '.{other}' (expected .npy, .safetensors or .csv)")),
-    };
-    if m.rows == 0 {
-        return fail(path, "has zero rows");
-    }
-    if m.cols == 0 {
-        return fail(path, "has zero columns");
-    }
-    if let Some(i) = m.data.iter().position(|v| !v.is_finite()) {
-        let what = if m.data[i].is_nan() { "NaN" } else { "infinite" };
-        return fail(path, format!("row {}, column {} (0-based) is {what}", i / m.cols, i % m.cols));
-    }
-    Ok(m)
+    Ok(Dataset::open(path, tensor)?.to_matrix())
 }
 
 /// Read one integer class label per row from `.npy` (any integer dtype) or
@@ -398,24 +394,6 @@ fn element(bytes: &[u8], i: usize, width: usize, big_endian: bool) -> [u8; 8] {
     out
 }
 
-fn decode_floats(path: &Path, descr: &str, bytes: &[u8], n: usize) -> Result<Vec<f32>, DataError> {
-    let big = descr.starts_with('>');
-    let kind = &descr[1..];
-    let width = dtype_width(descr).unwrap_or(0);
-    let conv: fn([u8; 8]) -> f32 = match kind {
-        "f4" => |b| f32::from_le_bytes([b[0], b[1], b[2], b[3]]),
-        "f8" => |b| f64::from_le_bytes(b) as f32,
-        "f2" => |b| f16::from_le_bytes([b[0], b[1]]).to_f32(),
-        _ => {
-            return fail(
-                path,
-                format!("unsupported dtype '{descr}' for embeddings (expected float32, float64 or float16)"),
-            )
-        }
-    };
-    Ok((0..n).map(|i| conv(element(bytes, i, width, big))).collect())
-}
-
 fn decode_ints(path: &Path, descr: &str, bytes: &[u8], n: usize) -> Result<Vec<i64>, DataError> {
     let big = descr.starts_with('>');
     let width = dtype_width(descr).unwrap_or(0);
@@ -440,26 +418,6 @@ fn check_matrix_shape(path: &Path, shape: &[usize]) -> Result<(), DataError> {
     Ok(())
 }
 
-fn read_npy_matrix(path: &Path) -> Result<Matrix, DataError> {
-    let (header, bytes) = read_npy(path)?;
-    check_matrix_shape(path, &header.shape)?;
-    let (rows, cols) = (header.shape[0], header.shape[1]);
-    let data = decode_floats(path, &header.descr, &bytes, rows * cols)?;
-    let data = if header.fortran_order { transpose(&data, cols, rows) } else { data };
-    Ok(Matrix::new(rows, cols, data))
-}
-
-/// Transpose a row-major `rows x cols` buffer.
-fn transpose(data: &[f32], rows: usize, cols: usize) -> Vec<f32> {
-    let mut out = vec![0.0; data.len()];
-    for r in 0..rows {
-        for c in 0..cols {
-            out[c * rows + r] = data[r * cols + c];
-        }
-    }
-    out
-}
-
 /// Write a float32 2-D `.npy` file (format 1.0) to `w`.
 pub fn write_npy<W: std::io::Write + ?Sized>(w: &mut W, m: &Matrix) -> std::io::Result<()> {
     let mut header = format!("{{'descr': '<f4', 'fortran_order': False, 'shape': ({}, {}), }}", m.rows, m.cols);
@@ -479,9 +437,10 @@ pub fn write_npy<W: std::io::Write + ?Sized>(w: &mut W, m: &Matrix) -> std::io::
 
 // ---------------------------------------------------------------- .safetensors
 
-fn read_safetensors_matrix(path: &Path, tensor: Option<&str>) -> Result<Matrix, DataError> {
-    let bytes = std::fs::read(path).or_else(|e| fail(path, format!("cannot read: {e}")))?;
-    let st = safetensors::SafeTensors::deserialize(&bytes)
+/// Find the 2-D tensor to read in a safetensors file: its byte offset in
+/// the file, its shape and its element type.
+fn locate_tensor(path: &Path, bytes: &[u8], tensor: Option<&str>) -> Result<(usize, usize, usize, Elem), DataError> {
+    let st = safetensors::SafeTensors::deserialize(bytes)
         .or_else(|e| fail(path, format!("not a valid safetensors file ({e})")))?;
     let mut names: Vec<&str> = st.names().into_iter().collect();
     names.sort();
@@ -499,13 +458,12 @@ fn read_safetensors_matrix(path: &Path, tensor: Option<&str>) -> Result<Matrix, 
     if shape.len() != 2 {
         return fail(path, format!("tensor '{name}' is {}-D {shape:?}; expected 2-D (rows x features)", shape.len()));
     }
-    let raw = view.data();
     use safetensors::Dtype;
-    let data: Vec<f32> = match view.dtype() {
-        Dtype::F32 => raw.chunks_exact(4).map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]])).collect(),
-        Dtype::F64 => raw.chunks_exact(8).map(|b| f64::from_le_bytes(b.try_into().expect("8 bytes")) as f32).collect(),
-        Dtype::F16 => raw.chunks_exact(2).map(|b| f16::from_le_bytes([b[0], b[1]]).to_f32()).collect(),
-        Dtype::BF16 => raw.chunks_exact(2).map(|b| bf16::from_le_bytes([b[0], b[1]]).to_f32()).collect(),
+    let elem = match view.dtype() {
+        Dtype::F32 => Elem::F32,
+        Dtype::F64 => Elem::F64,
+        Dtype::F16 => Elem::F16,
+        Dtype::BF16 => Elem::BF16,
         other => {
             return fail(
                 path,
@@ -513,7 +471,8 @@ fn read_safetensors_matrix(path: &Path, tensor: Option<&str>) -> Result<Matrix, 
             )
         }
     };
-    Ok(Matrix::new(shape[0], shape[1], data))
+    let offset = view.data().as_ptr() as usize - bytes.as_ptr() as usize;
+    Ok((offset, shape[0], shape[1], elem))
 }
 
 // ---------------------------------------------------------------- .csv
