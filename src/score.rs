@@ -263,7 +263,9 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
     let columns = select_columns(model, &opts.columns, opts.calibration.is_some())?;
     let format = Format::of(output)?;
     let scorer = Scorer::new(model, opts.calibration.as_ref());
-    let mut batch_nll: Vec<f64> = Vec::new();
+    // Per batch of the batch test: (sum of NLLs, rows), kept as the rows
+    // stream past so memory grows with batches, not rows.
+    let mut batches: Vec<(f64, usize)> = Vec::new();
     crate::output::write_atomic(output, |w| {
         let io = |source| Error::Io { path: output.to_path_buf(), source };
         match format {
@@ -275,7 +277,16 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
         for chunk in idx.chunks(SCORE_CHUNK) {
             let e = model.evaluate_rows(x, chunk, opts.threads);
             if opts.batch.is_some() {
-                batch_nll.extend(e.log_likelihood.iter().map(|v| -v));
+                let size = opts.batch.as_ref().map(|b| b.size).unwrap_or(1);
+                for ll in &e.log_likelihood {
+                    match batches.last_mut() {
+                        Some((sum, n)) if *n < size => {
+                            *sum -= ll;
+                            *n += 1;
+                        }
+                        _ => batches.push((-ll, 1)),
+                    }
+                }
             }
             for r in 0..chunk.len() {
                 let values: Vec<f64> = columns.iter().map(|c| scorer.value(&e, c, r)).collect();
@@ -295,7 +306,7 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
         })?;
     }
     if let Some(b) = &opts.batch {
-        write_batch_test(model, &batch_nll, b)?;
+        write_batch_test(model, &batches, b)?;
     }
     Ok(())
 }
@@ -360,7 +371,7 @@ pub fn batch_threshold(model: &Model, size: usize, alpha: f64) -> f64 {
 /// Bootstrap resamples behind the batch threshold.
 const BOOTSTRAP: usize = 2000;
 
-fn write_batch_test(model: &Model, nll: &[f64], b: &BatchTest) -> Result<()> {
+fn write_batch_test(model: &Model, batches: &[(f64, usize)], b: &BatchTest) -> Result<()> {
     if model.refs.validation_nll.is_empty() {
         return Err(Error::Invalid("this model stores no validation NLLs for the batch test".into()));
     }
@@ -369,12 +380,11 @@ fn write_batch_test(model: &Model, nll: &[f64], b: &BatchTest) -> Result<()> {
     crate::output::write_atomic(&b.output, |w| {
         let io = |source| Error::Io { path: b.output.clone(), source };
         writeln!(w, "batch,first_row,rows,mean_nll,statistic,threshold,alpha,out_of_distribution").map_err(io)?;
-        for (i, chunk) in nll.chunks(b.size).enumerate() {
-            let mean = chunk.iter().sum::<f64>() / chunk.len() as f64;
+        for (i, &(sum, rows)) in batches.iter().enumerate() {
+            let mean = sum / rows as f64;
             let stat = (mean - entropy).abs();
             let verdict = stat > threshold;
-            writeln!(w, "{i},{},{},{mean},{stat},{threshold},{},{verdict}", i * b.size, chunk.len(), b.alpha)
-                .map_err(io)?;
+            writeln!(w, "{i},{},{rows},{mean},{stat},{threshold},{},{verdict}", i * b.size, b.alpha).map_err(io)?;
         }
         Ok(())
     })

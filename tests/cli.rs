@@ -265,6 +265,13 @@ fn output_formats_columns_batch_test_and_background_ratio() {
         "batch,first_row,rows,mean_nll,statistic,threshold,alpha,out_of_distribution"
     );
     assert_eq!(batches.lines().count(), 1 + 12);
+    // Each batch's mean NLL is the mean of its rows' -log_likelihood.
+    for (b, line) in batches.lines().skip(1).enumerate() {
+        let mean: f64 = line.split(',').nth(3).unwrap().parse().unwrap();
+        let want =
+            -lines[b * 50..(b + 1) * 50].iter().map(|l| l["log_likelihood"].as_f64().unwrap()).sum::<f64>() / 50.0;
+        assert!((mean - want).abs() < 1e-9 * want.abs().max(1.0), "batch {b}: {mean} vs {want}");
+    }
 
     let bad = dir.path().join("bad.csv");
     refuses(
