@@ -723,10 +723,6 @@ impl Workers {
         Workers { chunk_cap, pool, threads }
     }
 
-    pub fn threads(&self) -> usize {
-        self.pool.len()
-    }
-
     /// Run `f(offset, a, b, c)` over matching `PARAM_BLOCK`-sized blocks of
     /// three equally long parameter arrays on the worker threads (in order
     /// on one thread); `offset` is where the blocks start.

@@ -279,6 +279,7 @@ impl Model {
         let mut out = Evaluation::default();
         let cap = (CHUNK_ROWS * threads.max(1)).min(idx.len()).max(1);
         let mut workers = Workers::new(&self.flow, threads, cap);
+        let mut bg_workers = self.background.as_ref().map(|bg| Workers::new(bg, threads, cap));
         let mut whitened = vec![0.0f32; cap * self.dim()];
         let mut rows = Vec::new();
         for chunk in idx.chunks(cap) {
@@ -287,7 +288,7 @@ impl Model {
             let mut residual = vec![0.0f64; n];
             self.pre.transform(&rows, n, &mut whitened, Some(&mut residual));
             out.subspace_residual.extend(residual);
-            self.evaluate_whitened(&whitened[..n * self.dim()], n, &mut workers, &mut out);
+            self.evaluate_whitened(&whitened[..n * self.dim()], n, &mut workers, bg_workers.as_mut(), &mut out);
             out.dead_deviation.extend(rows.chunks(x.cols).map(|r| self.pre.dead_deviation(r)));
         }
         out
@@ -322,7 +323,14 @@ impl Model {
     }
 
     /// Evaluate whitened rows (`rows x dim`), appending to `out`.
-    fn evaluate_whitened(&self, u: &[f32], rows: usize, workers: &mut Workers, out: &mut Evaluation) {
+    fn evaluate_whitened(
+        &self,
+        u: &[f32],
+        rows: usize,
+        workers: &mut Workers,
+        bg_workers: Option<&mut Workers>,
+        out: &mut Evaluation,
+    ) {
         let (d, k) = (self.dim(), self.meta.flow_dims);
         let head = leading_columns(u, rows, d, k);
         let mut z = vec![0.0f32; rows * k];
@@ -331,10 +339,9 @@ impl Model {
         let pre_log_det = self.pre.log_det();
         let priors = self.log_priors();
         let mut per_class = vec![0.0f64; self.classes()];
-        if let Some(bg) = &self.background {
+        if let (Some(bg), Some(bg_workers)) = (&self.background, bg_workers) {
             let mut bz = vec![0.0f32; rows * k];
             let mut bg_logdet = vec![0.0f64; rows];
-            let mut bg_workers = Workers::new(bg, workers.threads(), rows);
             bg_workers.latent(bg, &head, rows, &mut bz, &mut bg_logdet);
             for r in 0..rows {
                 let sq: f64 =
