@@ -420,19 +420,25 @@ fn check_matrix_shape(path: &Path, shape: &[usize]) -> Result<(), DataError> {
 
 /// Write a float32 2-D `.npy` file (format 1.0) to `w`.
 pub fn write_npy<W: std::io::Write + ?Sized>(w: &mut W, m: &Matrix) -> std::io::Result<()> {
-    let mut header = format!("{{'descr': '<f4', 'fortran_order': False, 'shape': ({}, {}), }}", m.rows, m.cols);
+    write_npy_header(w, m.rows, m.cols)?;
+    let mut buf = Vec::with_capacity(m.data.len() * 4);
+    for v in &m.data {
+        buf.extend_from_slice(&v.to_le_bytes());
+    }
+    w.write_all(&buf)
+}
+
+/// The header of a float32 2-D `.npy` file (format 1.0) of `rows x cols`;
+/// the little-endian values follow, row by row.
+pub fn write_npy_header<W: std::io::Write + ?Sized>(w: &mut W, rows: usize, cols: usize) -> std::io::Result<()> {
+    let mut header = format!("{{'descr': '<f4', 'fortran_order': False, 'shape': ({rows}, {cols}), }}");
     // Pad so that magic + length + header + newline is a multiple of 64.
     let unpadded = 10 + header.len() + 1;
     header.push_str(&" ".repeat(unpadded.next_multiple_of(64) - unpadded));
     header.push('\n');
     w.write_all(b"\x93NUMPY\x01\x00")?;
     w.write_all(&(header.len() as u16).to_le_bytes())?;
-    w.write_all(header.as_bytes())?;
-    let mut buf = Vec::with_capacity(m.data.len() * 4);
-    for v in &m.data {
-        buf.extend_from_slice(&v.to_le_bytes());
-    }
-    w.write_all(&buf)
+    w.write_all(header.as_bytes())
 }
 
 // ---------------------------------------------------------------- .safetensors

@@ -270,7 +270,7 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
         let io = |source| Error::Io { path: output.to_path_buf(), source };
         match format {
             Format::Csv => writeln!(w, "{}", columns.join(",")).map_err(io)?,
-            Format::Npy => write_npy_header(w, x.rows, columns.len()).map_err(io)?,
+            Format::Npy => crate::data::write_npy_header(w, x.rows, columns.len()).map_err(io)?,
             Format::JsonLines => {}
         }
         let idx: Vec<usize> = (0..x.rows).collect();
@@ -309,16 +309,6 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
         write_batch_test(model, &batches, b)?;
     }
     Ok(())
-}
-
-fn write_npy_header(w: &mut dyn Write, rows: usize, cols: usize) -> std::io::Result<()> {
-    let mut header = format!("{{'descr': '<f4', 'fortran_order': False, 'shape': ({rows}, {cols}), }}");
-    let unpadded = 10 + header.len() + 1;
-    header.push_str(&" ".repeat(unpadded.next_multiple_of(64) - unpadded));
-    header.push('\n');
-    w.write_all(b"\x93NUMPY\x01\x00")?;
-    w.write_all(&(header.len() as u16).to_le_bytes())?;
-    w.write_all(header.as_bytes())
 }
 
 fn write_row(w: &mut dyn Write, format: Format, columns: &[String], values: &[f64]) -> std::io::Result<()> {
