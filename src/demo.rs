@@ -8,7 +8,7 @@ use crate::calibrate::{calibrate, Calibration};
 use crate::data::{check_label_count, read_labels, Dataset};
 use crate::error::{Error, Result};
 use crate::evaluate::{self, EvaluateOptions, Results};
-use crate::model::Model;
+use crate::model::{Evaluation, Model};
 use crate::score::{batch_threshold, score_to_file, ScoreOptions, Scorer};
 use crate::train::{fit_run, read_log, FitOptions, Run};
 use std::path::{Path, PathBuf};
@@ -77,11 +77,8 @@ pub fn run(data_dir: &Path, out_dir: &Path, threads: usize) -> Result<()> {
         let scores = out(&format!("scores_{set}.csv"));
         let opts = ScoreOptions { columns: vec![], threads, batch: None, calibration: Some(calibrations[0].clone()) };
         score_to_file(&model, &data, &scores, &opts)?;
-        rows.push((
-            set,
-            flagged_shares(&model, &scorer, &calibrations, &data, threads),
-            batch_flags(&model, &data, threads),
-        ));
+        let e = model.evaluate(&data, threads);
+        rows.push((set, flagged_shares(&scorer, &calibrations, &e), batch_flags(&model, &e)));
     }
     println!("3. scored every set: {}", out("scores_*.csv").display());
 
@@ -111,16 +108,16 @@ pub fn run(data_dir: &Path, out_dir: &Path, threads: usize) -> Result<()> {
 }
 
 /// Share of a set's vectors flagged by each calibrated score.
-fn flagged_shares(model: &Model, scorer: &Scorer, cals: &[Calibration], data: &Dataset, threads: usize) -> Vec<f64> {
-    let e = model.evaluate(data, threads);
+fn flagged_shares(scorer: &Scorer, cals: &[Calibration], e: &Evaluation) -> Vec<f64> {
+    let rows = e.log_likelihood.len();
     cals.iter()
-        .map(|c| (0..data.rows).filter(|&r| c.flagged(scorer.value(&e, &c.score, r))).count() as f64 / data.rows as f64)
+        .map(|c| (0..rows).filter(|&r| c.flagged(scorer.value(e, &c.score, r))).count() as f64 / rows as f64)
         .collect()
 }
 
 /// (flagged, total) batches of the batch typicality test.
-fn batch_flags(model: &Model, data: &Dataset, threads: usize) -> (usize, usize) {
-    let nll: Vec<f64> = model.evaluate(data, threads).log_likelihood.iter().map(|v| -v).collect();
+fn batch_flags(model: &Model, e: &Evaluation) -> (usize, usize) {
+    let nll: Vec<f64> = e.log_likelihood.iter().map(|v| -v).collect();
     let threshold = batch_threshold(model, BATCH, FALSE_ALARM);
     let entropy = -model.meta.train_log_likelihood.mean;
     let flags: Vec<bool> =
