@@ -152,17 +152,29 @@ impl Flow {
     /// layer after layer.
     pub fn init_actnorm(&mut self, x: &[f32], rows: usize) {
         let dim = self.spec.dim;
+        // At the identity, the permuted ActNorm output a layer's predecessor
+        // writes is exactly that layer's input, permuted.
+        for slot in &self.slots {
+            self.params[slot.log_scale..slot.log_scale + 2 * dim].fill(0.0);
+        }
         let mut ws = Workspace::new(&self.spec, rows);
-        ws.acts[..rows * dim].copy_from_slice(&x[..rows * dim]);
         for k in 0..self.spec.layers {
-            let input = &ws.acts[k * ws.cap * dim..k * ws.cap * dim + rows * dim];
+            if k == 0 {
+                enter_first_layer(self, &mut ws, x, rows);
+            }
             let slot = &self.slots[k];
-            for j in 0..dim {
-                let mean = (0..rows).map(|r| input[r * dim + j] as f64).sum::<f64>() / rows as f64;
-                let var = (0..rows).map(|r| (input[r * dim + j] as f64 - mean).powi(2)).sum::<f64>() / rows as f64;
-                let log_scale = -0.5 * (var + 1e-6).ln();
-                self.params[slot.log_scale + j] = log_scale as f32;
-                self.params[slot.bias + j] = (-mean * log_scale.exp()) as f32;
+            let p = &mut ws.perm[k * ws.cap * dim..k * ws.cap * dim + rows * dim];
+            for (q, &src) in self.perms[k].iter().enumerate() {
+                let mean = (0..rows).map(|r| p[r * dim + q] as f64).sum::<f64>() / rows as f64;
+                let var = (0..rows).map(|r| (p[r * dim + q] as f64 - mean).powi(2)).sum::<f64>() / rows as f64;
+                let log_scale = (-0.5 * (var + 1e-6).ln()) as f32;
+                let bias = (-mean * (log_scale as f64).exp()) as f32;
+                self.params[slot.log_scale + src as usize] = log_scale;
+                self.params[slot.bias + src as usize] = bias;
+                let scale = log_scale.exp();
+                for r in 0..rows {
+                    p[r * dim + q] = p[r * dim + q] * scale + bias;
+                }
             }
             forward_layer(self, k, &mut ws, rows, None);
         }
@@ -194,9 +206,10 @@ pub struct Dropout {
 /// ActNorm output, hidden activations and log-scales, plus backward scratch.
 pub struct Workspace {
     pub cap: usize,
-    /// `layers + 1` blocks of `cap x dim`: block k is layer k's input, the
-    /// last block is the latent `z`.
-    pub acts: Vec<f32>,
+    /// The latent `z` (`cap x dim`).
+    latent: Vec<f32>,
+    /// `layers` blocks of `cap x dim`: block k is layer k's input after its
+    /// ActNorm and permutation.
     perm: Vec<f32>,
     hidden: Vec<f32>,
     s: Vec<f32>,
@@ -215,6 +228,8 @@ pub struct Workspace {
     /// Per-feature scratch (ActNorm scale and shift, and their gradients).
     col_a: Vec<f32>,
     col_b: Vec<f32>,
+    /// One row of a coupling layer's output, before the next ActNorm.
+    row: Vec<f32>,
 }
 
 impl Workspace {
@@ -223,7 +238,7 @@ impl Workspace {
         let (dim, k, h) = (spec.dim, spec.layers, spec.hidden);
         Workspace {
             cap,
-            acts: vec![0.0; (k + 1) * cap * dim],
+            latent: vec![0.0; cap * dim],
             perm: vec![0.0; k * cap * dim],
             hidden: vec![0.0; k * spec.depth * cap * h],
             s: vec![0.0; k * cap * d2],
@@ -239,13 +254,13 @@ impl Workspace {
             keep_inv: 1.0,
             col_a: vec![0.0; spec.dim],
             col_b: vec![0.0; spec.dim],
+            row: vec![0.0; spec.dim],
         }
     }
 
     /// The latent vectors of the last forward pass (`rows x dim`).
-    pub fn latent(&self, dim: usize, layers: usize, rows: usize) -> &[f32] {
-        let at = layers * self.cap * dim;
-        &self.acts[at..at + rows * dim]
+    pub fn latent(&self, dim: usize, rows: usize) -> &[f32] {
+        &self.latent[..rows * dim]
     }
 }
 
@@ -313,38 +328,52 @@ fn run_conditioner(
     }
 }
 
+/// ActNorm's scale `exp(log_scale)` and shift of layer `k`, in the layer's
+/// permuted order.
+fn permuted_actnorm(flow: &Flow, k: usize, scale: &mut [f32], shift: &mut [f32]) {
+    let slot = &flow.slots[k];
+    for (j, &src) in flow.perms[k].iter().enumerate() {
+        scale[j] = flow.params[slot.log_scale + src as usize].exp();
+        shift[j] = flow.params[slot.bias + src as usize];
+    }
+}
+
+/// Layer 0's permuted ActNorm output from the flow's input `x`.
+fn enter_first_layer(flow: &Flow, ws: &mut Workspace, x: &[f32], rows: usize) {
+    let dim = flow.spec.dim;
+    permuted_actnorm(flow, 0, &mut ws.col_a, &mut ws.col_b);
+    for r in 0..rows {
+        let p = &mut ws.perm[r * dim..(r + 1) * dim];
+        actnorm_permute_row(&x[r * dim..(r + 1) * dim], &flow.perms[0], &ws.col_a, &ws.col_b, p);
+    }
+}
+
 /// Forward pass of layer `k` over the first `rows` rows of the workspace:
-/// reads block k of `acts`, writes block k+1 and adds to `logdet`.
+/// reads block k of `perm` and writes the next layer's block of `perm`
+/// (its ActNorm and permutation applied on the way, so the coupling output
+/// never makes a round trip through memory) or, after the last layer, the
+/// latent; adds to `logdet`.
 fn forward_layer(flow: &Flow, k: usize, ws: &mut Workspace, rows: usize, dropout: Option<Dropout>) {
     let spec = &flow.spec;
     let (dim, hid, cap) = (spec.dim, spec.hidden, ws.cap);
     let (d1, d2) = spec.split();
     let slot = &flow.slots[k];
-    let params = &flow.params;
-    let perm = &flow.perms[k];
-    let log_scale = &params[slot.log_scale..slot.log_scale + dim];
-    let shift = &params[slot.bias..slot.bias + dim];
-
-    let (before, after) = ws.acts.split_at_mut((k + 1) * cap * dim);
-    let input = &before[k * cap * dim..k * cap * dim + rows * dim];
-    let output = &mut after[..rows * dim];
-    let p = &mut ws.perm[k * cap * dim..k * cap * dim + rows * dim];
-    // exp(log_scale) and the shift, already in permuted order.
-    for (j, &src) in perm.iter().enumerate() {
-        ws.col_a[j] = log_scale[src as usize].exp();
-        ws.col_b[j] = shift[src as usize];
-    }
-    for r in 0..rows {
-        actnorm_permute_row(&input[r * dim..(r + 1) * dim], perm, &ws.col_a, &ws.col_b, &mut p[r * dim..(r + 1) * dim]);
-    }
+    let log_scale = &flow.params[slot.log_scale..slot.log_scale + dim];
     let actnorm_logdet: f64 = log_scale.iter().map(|&v| v as f64).sum();
+    let last = k + 1 == spec.layers;
+    if !last {
+        permuted_actnorm(flow, k + 1, &mut ws.col_a, &mut ws.col_b);
+    }
+    let (before, after) = ws.perm.split_at_mut((k + 1) * cap * dim);
+    let p = &before[k * cap * dim..k * cap * dim + rows * dim];
+    let next = if last { &mut ws.latent[..rows * dim] } else { &mut after[..rows * dim] };
 
     // Conditioner MLP on p1 = p[:, ..d1].
     let hidden_block = cap * hid;
     let layer_hidden = &mut ws.hidden[k * spec.depth * hidden_block..(k + 1) * spec.depth * hidden_block];
     let out = &mut ws.out[..rows * 2 * d2];
     let masks = dropout.map(|d| (d, k));
-    run_conditioner(flow, k, View::rows(&p[..], rows, d1, dim), layer_hidden, hidden_block, out, masks);
+    run_conditioner(flow, k, View::rows(p, rows, d1, dim), layer_hidden, hidden_block, out, masks);
 
     let s = &mut ws.s[k * cap * d2..k * cap * d2 + rows * d2];
     let es = &mut ws.es[k * cap * d2..k * cap * d2 + rows * d2];
@@ -352,8 +381,13 @@ fn forward_layer(flow: &Flow, k: usize, ws: &mut Workspace, rows: usize, dropout
         let o = &out[r * 2 * d2..(r + 1) * 2 * d2];
         let (sr, er) = (&mut s[r * d2..(r + 1) * d2], &mut es[r * d2..(r + 1) * d2]);
         soft_clamp_exp(&o[..d2], spec.clamp, sr, er);
-        affine_row(&mut output[r * dim + d1..(r + 1) * dim], &p[r * dim + d1..(r + 1) * dim], er, &o[d2..]);
-        output[r * dim..r * dim + d1].copy_from_slice(&p[r * dim..r * dim + d1]);
+        let (pr, nr) = (&p[r * dim..(r + 1) * dim], &mut next[r * dim..(r + 1) * dim]);
+        let y = if last { &mut nr[..] } else { &mut ws.row[..] };
+        y[..d1].copy_from_slice(&pr[..d1]);
+        affine_row(&mut y[d1..], &pr[d1..], er, &o[d2..]);
+        if !last {
+            actnorm_permute_row(&ws.row, &flow.perms[k + 1], &ws.col_a, &ws.col_b, nr);
+        }
         ws.logdet[r] += actnorm_logdet + sr.iter().map(|&v| v as f64).sum::<f64>();
     }
 }
@@ -501,9 +535,13 @@ elementwise! {
 pub fn forward(flow: &Flow, ws: &mut Workspace, x: &[f32], rows: usize, dropout: Option<Dropout>) {
     let dim = flow.spec.dim;
     assert!(rows <= ws.cap, "batch larger than workspace");
-    ws.acts[..rows * dim].copy_from_slice(&x[..rows * dim]);
     ws.logdet[..rows].fill(0.0);
     ws.keep_inv = 1.0 / (1.0 - dropout.map(|d| d.rate).unwrap_or(0.0));
+    if flow.spec.layers == 0 {
+        ws.latent[..rows * dim].copy_from_slice(&x[..rows * dim]);
+        return;
+    }
+    enter_first_layer(flow, ws, x, rows);
     for k in 0..flow.spec.layers {
         forward_layer(flow, k, ws, rows, dropout);
     }
@@ -514,8 +552,7 @@ pub fn forward(flow: &Flow, ws: &mut Workspace, x: &[f32], rows: usize, dropout:
 /// row's class mean (zero without a class).
 fn row_nll(flow: &Flow, ws: &Workspace, r: usize, class: Option<u32>) -> f64 {
     let dim = flow.spec.dim;
-    let at = flow.spec.layers * ws.cap * dim + r * dim;
-    let z = &ws.acts[at..at + dim];
+    let z = &ws.latent[r * dim..(r + 1) * dim];
     let sq: f64 = match class {
         Some(c) => z.iter().zip(flow.class_mean(c as usize)).map(|(&v, &m)| ((v - m) as f64).powi(2)).sum(),
         None => z.iter().map(|&v| (v as f64) * (v as f64)).sum(),
@@ -524,8 +561,9 @@ fn row_nll(flow: &Flow, ws: &Workspace, r: usize, class: Option<u32>) -> f64 {
 }
 
 /// Backward pass of `scale * sum_rows NLL` after [`forward`] on the same
-/// rows (with their class labels, for a class-conditional flow); adds the
-/// gradient with respect to every parameter into `grad`.
+/// rows (with their class labels, for a class-conditional flow); writes the
+/// gradient with respect to every parameter into `grad` (each weight
+/// gradient is one product, so nothing needs zeroing or accumulating).
 pub fn backward_nll(
     flow: &Flow,
     ws: &mut Workspace,
@@ -539,14 +577,15 @@ pub fn backward_nll(
     let (d1, d2) = spec.split();
     let c = spec.clamp;
     let params = &flow.params;
-    let Workspace { acts, perm, hidden, s, es, g, gp, gout, gh_a, gh_b, gx1, keep_inv, col_a, col_b, .. } = ws;
+    let Workspace { latent, perm, hidden, s, es, g, gp, gout, gh_a, gh_b, gx1, keep_inv, col_a, col_b, .. } = ws;
     let keep_inv = *keep_inv;
     // dL/dz = scale * z.
-    let z = &acts[spec.layers * cap * dim..spec.layers * cap * dim + rows * dim];
+    let z = &latent[..rows * dim];
     for (gv, &zv) in g[..rows * dim].iter_mut().zip(z) {
         *gv = scale * zv;
     }
     // With class means: dL/dz = scale (z - mu_c) and dL/dmu_c = -sum of those.
+    grad[flow.class_means..flow.class_means + spec.classes * dim].fill(0.0);
     if let Some(classes) = classes {
         for (r, &c) in classes[..rows].iter().enumerate() {
             let at = flow.class_means + c as usize * dim;
@@ -598,7 +637,8 @@ pub fn backward_nll(
             };
             // gW += g_cur^T * inp ; gb += column sums of g_cur.
             let (gw, gb) = grad[lin.weight..lin.bias + lin.out].split_at_mut(lin.out * lin.inp);
-            matmul(gw, lin.inp, true, View::transposed(g_cur, rows, lin.out), inp);
+            matmul(gw, lin.inp, false, View::transposed(g_cur, rows, lin.out), inp);
+            gb.fill(0.0);
             column_sums(gb, &g_cur[..rows * lin.out]);
             let w = View::rows(&params[lin.weight..lin.weight + lin.out * lin.inp], lin.out, lin.inp, lin.inp);
             let g_cur = View::rows(g_cur, rows, lin.out, lin.out);
@@ -638,8 +678,8 @@ pub fn backward_nll(
         }
         for (j, &src) in perm_k.iter().enumerate() {
             let src = src as usize;
-            grad[slot.log_scale + src] += col_a[j] - scale * rows as f32;
-            grad[slot.bias + src] += col_b[j];
+            grad[slot.log_scale + src] = col_a[j] - scale * rows as f32;
+            grad[slot.bias + src] = col_b[j];
             col_a[j] = log_scale[src].exp();
         }
         for r in 0..rows {
@@ -769,34 +809,49 @@ impl Workers {
         assert!(parts <= self.pool.len(), "batch larger than the workers were sized for");
         let per = rows.div_ceil(parts);
         let scale = 1.0 / rows as f32;
-        let job = |idx: usize, w: &mut Worker| {
+        let job = |idx: usize, ws: &mut Workspace, total: &mut f64, grad: &mut [f32]| {
             let start = (idx * per).min(rows);
             let n = per.min(rows - start);
-            w.grad.fill(0.0);
-            w.total = 0.0;
+            *total = 0.0;
             if n == 0 {
+                grad.fill(0.0);
                 return;
             }
             let d = dropout.map(|(rate, seed)| Dropout { rate, seed, row_offset: start });
-            forward(flow, &mut w.ws, &x[start * dim..(start + n) * dim], n, d);
+            forward(flow, ws, &x[start * dim..(start + n) * dim], n, d);
             let cls = classes.map(|c| &c[start..start + n]);
-            w.total = (0..n).map(|r| row_nll(flow, &w.ws, r, cls.map(|c| c[r]))).sum();
-            backward_nll(flow, &mut w.ws, n, cls, scale, &mut w.grad);
+            *total = (0..n).map(|r| row_nll(flow, ws, r, cls.map(|c| c[r]))).sum();
+            backward_nll(flow, ws, n, cls, scale, grad);
         };
-        let items = &mut self.pool[..parts];
+        // The first chunk's gradient goes straight into `grad`; the others'
+        // are added to it below.
+        let (first, rest) = self.pool[..parts].split_first_mut().expect("at least one worker");
         match &self.threads {
             Some(tp) if parts > 1 => {
                 use rayon::prelude::*;
-                tp.install(|| items.par_iter_mut().enumerate().for_each(|(i, w)| job(i, w)));
+                tp.install(|| {
+                    rayon::join(
+                        || job(0, &mut first.ws, &mut first.total, grad),
+                        || {
+                            rest.par_iter_mut()
+                                .enumerate()
+                                .for_each(|(i, w)| job(i + 1, &mut w.ws, &mut w.total, &mut w.grad))
+                        },
+                    )
+                });
             }
-            _ => items.iter_mut().enumerate().for_each(|(i, w)| job(i, w)),
+            _ => {
+                job(0, &mut first.ws, &mut first.total, grad);
+                for (i, w) in rest.iter_mut().enumerate() {
+                    job(i + 1, &mut w.ws, &mut w.total, &mut w.grad);
+                }
+            }
         }
-        // Sum the threads' gradients in thread order (bit-identical for a
-        // fixed thread count), in parallel over parameter blocks.
+        // Add the other chunks' gradients in thread order (bit-identical for
+        // a fixed thread count), in parallel over parameter blocks.
         let items = &self.pool[..parts];
         let reduce = |(b, out): (usize, &mut [f32])| {
             let at = b * PARAM_BLOCK;
-            out.copy_from_slice(&items[0].grad[at..at + out.len()]);
             for w in &items[1..] {
                 for (a, g) in out.iter_mut().zip(&w.grad[at..]) {
                     *a += g;
@@ -808,7 +863,8 @@ impl Workers {
                 use rayon::prelude::*;
                 tp.install(|| grad.par_chunks_mut(PARAM_BLOCK).enumerate().for_each(reduce));
             }
-            _ => grad.chunks_mut(PARAM_BLOCK).enumerate().for_each(reduce),
+            _ if parts > 1 => grad.chunks_mut(PARAM_BLOCK).enumerate().for_each(reduce),
+            _ => {}
         }
         items.iter().map(|w| w.total).sum::<f64>() / rows as f64
     }
@@ -829,7 +885,7 @@ impl Workers {
             let job = |w: &mut Worker, xc: &[f32], zc: &mut [f32], lc: &mut [f64]| {
                 let m = lc.len();
                 forward(flow, &mut w.ws, xc, m, None);
-                zc.copy_from_slice(w.ws.latent(dim, flow.spec.layers, m));
+                zc.copy_from_slice(w.ws.latent(dim, m));
                 lc.copy_from_slice(&w.ws.logdet[..m]);
             };
             let items = &mut self.pool[..parts];
@@ -959,7 +1015,7 @@ mod tests {
         let mut ws = Workspace::new(&flow.spec, rows);
         forward(&flow, &mut ws, &x, rows, None);
         let r = reference::evaluate(&flow, &x, None, rows).unwrap();
-        for (a, b) in ws.latent(5, 4, rows).iter().zip(&r.z) {
+        for (a, b) in ws.latent(5, rows).iter().zip(&r.z) {
             assert!((*a as f64 - b).abs() < 1e-4 * b.abs().max(1.0));
         }
         for (a, b) in ws.logdet[..rows].iter().zip(&r.logdet) {
@@ -1003,7 +1059,7 @@ mod tests {
             let x = normal(rows, dim, 1);
             let mut ws = Workspace::new(&flow.spec, rows);
             forward(&flow, &mut ws, &x, rows, None);
-            let back = inverse(&flow, ws.latent(dim, flow.spec.layers, rows), rows);
+            let back = inverse(&flow, ws.latent(dim, rows), rows);
             for (a, b) in back.iter().zip(&x) {
                 assert!((a - b).abs() < 1e-4 * b.abs().max(1.0), "{a} vs {b}");
             }

@@ -568,7 +568,7 @@ fn init_class_means(flow: &mut Flow, rows: &Rows, head: &[f32], idx: &[usize]) {
     let Some(classes) = rows.classes_of(idx) else { return };
     let mut ws = crate::flow::Workspace::new(&flow.spec, idx.len());
     crate::flow::forward(flow, &mut ws, head, idx.len(), None);
-    let z = ws.latent(k, flow.spec.layers, idx.len());
+    let z = ws.latent(k, idx.len());
     let mut sums = vec![0.0f64; flow.spec.classes * k];
     let mut counts = vec![0usize; flow.spec.classes];
     for (r, &c) in classes.iter().enumerate() {
