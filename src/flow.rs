@@ -16,6 +16,7 @@
 //! this one to it.
 
 use crate::linalg::{matmul, View};
+use crate::simd::elementwise;
 use rand::rngs::StdRng;
 use rand::seq::SliceRandom;
 use rand::{Rng, SeedableRng};
@@ -218,23 +219,26 @@ pub struct Workspace {
     /// Per-row log-determinant of the whole flow.
     pub logdet: Vec<f64>,
     g: Vec<f32>,
-    gp: Vec<f32>,
     gout: Vec<f32>,
     gh_a: Vec<f32>,
     gh_b: Vec<f32>,
-    gx1: Vec<f32>,
+    /// Column sums of the running conditioner gradient (its bias gradient).
+    gsum: Vec<f32>,
     /// 1 / (1 - dropout rate) of the last forward pass.
     keep_inv: f32,
-    /// Per-feature scratch (ActNorm scale and shift, and their gradients).
-    col_a: Vec<f32>,
-    col_b: Vec<f32>,
+    /// ActNorm's scale and shift in permuted order, and (backward) their
+    /// gradients.
+    an_scale: Vec<f32>,
+    an_shift: Vec<f32>,
+    an_gscale: Vec<f32>,
+    an_gshift: Vec<f32>,
     /// One row of a coupling layer's output, before the next ActNorm.
     row: Vec<f32>,
 }
 
 impl Workspace {
     pub fn new(spec: &FlowSpec, cap: usize) -> Workspace {
-        let (d1, d2) = spec.split();
+        let d2 = spec.split().1;
         let (dim, k, h) = (spec.dim, spec.layers, spec.hidden);
         Workspace {
             cap,
@@ -246,14 +250,15 @@ impl Workspace {
             out: vec![0.0; cap * 2 * d2],
             logdet: vec![0.0; cap],
             g: vec![0.0; cap * dim],
-            gp: vec![0.0; cap * dim],
             gout: vec![0.0; cap * 2 * d2],
             gh_a: vec![0.0; cap * h],
             gh_b: vec![0.0; cap * h],
-            gx1: vec![0.0; cap * d1],
+            gsum: vec![0.0; (2 * d2).max(h)],
             keep_inv: 1.0,
-            col_a: vec![0.0; spec.dim],
-            col_b: vec![0.0; spec.dim],
+            an_scale: vec![0.0; spec.dim],
+            an_shift: vec![0.0; spec.dim],
+            an_gscale: vec![0.0; spec.dim],
+            an_gshift: vec![0.0; spec.dim],
             row: vec![0.0; spec.dim],
         }
     }
@@ -341,10 +346,10 @@ fn permuted_actnorm(flow: &Flow, k: usize, scale: &mut [f32], shift: &mut [f32])
 /// Layer 0's permuted ActNorm output from the flow's input `x`.
 fn enter_first_layer(flow: &Flow, ws: &mut Workspace, x: &[f32], rows: usize) {
     let dim = flow.spec.dim;
-    permuted_actnorm(flow, 0, &mut ws.col_a, &mut ws.col_b);
+    permuted_actnorm(flow, 0, &mut ws.an_scale, &mut ws.an_shift);
     for r in 0..rows {
         let p = &mut ws.perm[r * dim..(r + 1) * dim];
-        actnorm_permute_row(&x[r * dim..(r + 1) * dim], &flow.perms[0], &ws.col_a, &ws.col_b, p);
+        actnorm_permute_row(&x[r * dim..(r + 1) * dim], &flow.perms[0], &ws.an_scale, &ws.an_shift, p);
     }
 }
 
@@ -362,7 +367,7 @@ fn forward_layer(flow: &Flow, k: usize, ws: &mut Workspace, rows: usize, dropout
     let actnorm_logdet: f64 = log_scale.iter().map(|&v| v as f64).sum();
     let last = k + 1 == spec.layers;
     if !last {
-        permuted_actnorm(flow, k + 1, &mut ws.col_a, &mut ws.col_b);
+        permuted_actnorm(flow, k + 1, &mut ws.an_scale, &mut ws.an_shift);
     }
     let (before, after) = ws.perm.split_at_mut((k + 1) * cap * dim);
     let p = &before[k * cap * dim..k * cap * dim + rows * dim];
@@ -386,41 +391,10 @@ fn forward_layer(flow: &Flow, k: usize, ws: &mut Workspace, rows: usize, dropout
         y[..d1].copy_from_slice(&pr[..d1]);
         affine_row(&mut y[d1..], &pr[d1..], er, &o[d2..]);
         if !last {
-            actnorm_permute_row(&ws.row, &flow.perms[k + 1], &ws.col_a, &ws.col_b, nr);
+            actnorm_permute_row(&ws.row, &flow.perms[k + 1], &ws.an_scale, &ws.an_shift, nr);
         }
         ws.logdet[r] += actnorm_logdet + sr.iter().map(|&v| v as f64).sum::<f64>();
     }
-}
-
-/// Whether this CPU runs the AVX2 + FMA versions of the element-wise loops.
-#[cfg(target_arch = "x86_64")]
-fn has_avx2() -> bool {
-    static FLAG: std::sync::OnceLock<bool> = std::sync::OnceLock::new();
-    *FLAG.get_or_init(|| is_x86_feature_detected!("avx2") && is_x86_feature_detected!("fma"))
-}
-
-/// Defines an element-wise function twice: for the baseline target and,
-/// on x86-64, compiled for AVX2 + FMA (8 lanes) and chosen at run time.
-macro_rules! elementwise {
-    ($(#[$meta:meta])* fn $name:ident($($arg:ident : $ty:ty),* $(,)?) $body:block) => {
-        $(#[$meta])*
-        fn $name($($arg: $ty),*) {
-            #[inline(always)]
-            fn body($($arg: $ty),*) $body
-            #[cfg(target_arch = "x86_64")]
-            {
-                #[target_feature(enable = "avx2,fma")]
-                unsafe fn wide($($arg: $ty),*) {
-                    body($($arg),*)
-                }
-                if has_avx2() {
-                    // SAFETY: the CPU has AVX2 and FMA (checked above).
-                    return unsafe { wide($($arg),*) };
-                }
-            }
-            body($($arg),*)
-        }
-    };
 }
 
 /// e^x in f32 for |x| < 87, to about 2e-7 relative: x = k ln 2 + f with
@@ -467,46 +441,58 @@ elementwise! {
 
 elementwise! {
     /// Backward of one row's affine half, y2 = p2 e^s + t with s = c tanh(r/c)
-    /// and the -scale * sum(s) log-det term: gradients for r, t and p2.
+    /// and the -scale * sum(s) log-det term: gradients for r and t (into
+    /// `g_out = [g_r, g_t]`, whose column sums collect in `sums`), and for
+    /// p2, written over `g2`.
     #[allow(clippy::too_many_arguments)]
     fn coupling_backward_row(
-        g2: &[f32],
+        g2: &mut [f32],
         p2: &[f32],
         s: &[f32],
         es: &[f32],
         c: f32,
         scale: f32,
-        g_raw: &mut [f32],
-        g_t: &mut [f32],
-        g_p2: &mut [f32],
+        g_out: &mut [f32],
+        sums: &mut [f32],
     ) {
         let inv_c = 1.0 / c;
-        for j in 0..g2.len() {
+        let d2 = g2.len();
+        let (g_raw, g_t) = g_out.split_at_mut(d2);
+        let (sum_raw, sum_t) = sums.split_at_mut(d2);
+        for j in 0..d2 {
             let (gv, e, sv) = (g2[j], es[j], s[j] * inv_c);
-            g_raw[j] = (gv * p2[j] * e - scale) * (1.0 - sv * sv);
+            let gr = (gv * p2[j] * e - scale) * (1.0 - sv * sv);
+            g_raw[j] = gr;
             g_t[j] = gv;
-            g_p2[j] = gv * e;
+            sum_raw[j] += gr;
+            sum_t[j] += gv;
+            g2[j] = gv * e;
         }
     }
 }
 
 elementwise! {
     /// Through ReLU and dropout: zero where the stored output is 0, scaled
-    /// by 1/keep where it was kept.
-    fn relu_dropout_backward(g: &mut [f32], h: &[f32], keep_inv: f32) {
-        for (gv, &hv) in g.iter_mut().zip(h) {
-            *gv = if hv > 0.0 { *gv * keep_inv } else { 0.0 };
+    /// by 1/keep where it was kept; the column sums of the result (rows of
+    /// `sums.len()`) are added to `sums`.
+    fn relu_dropout_backward(g: &mut [f32], h: &[f32], keep_inv: f32, sums: &mut [f32]) {
+        for (grow, hrow) in g.chunks_exact_mut(sums.len()).zip(h.chunks_exact(sums.len())) {
+            for ((gv, &hv), sv) in grow.iter_mut().zip(hrow).zip(sums.iter_mut()) {
+                *gv = if hv > 0.0 { *gv * keep_inv } else { 0.0 };
+                *sv += *gv;
+            }
         }
     }
 }
 
 elementwise! {
-    /// `sums += ` the column sums of `rows` (row-major, `sums.len()` wide).
-    fn column_sums(sums: &mut [f32], rows: &[f32]) {
-        for row in rows.chunks_exact(sums.len()) {
-            for (s, &v) in sums.iter_mut().zip(row) {
-                *s += v;
-            }
+    /// ActNorm's parameter gradients from one row, in permuted order:
+    /// `g_scale += gp (p - shift)` (times the scale, that is the log-scale
+    /// gradient) and `g_shift += gp`.
+    fn actnorm_backward_row(gp: &[f32], p: &[f32], shift: &[f32], g_scale: &mut [f32], g_shift: &mut [f32]) {
+        for ((((&gv, &pv), &sh), gs), gb) in gp.iter().zip(p).zip(shift).zip(g_scale.iter_mut()).zip(g_shift.iter_mut()) {
+            *gs += gv * (pv - sh);
+            *gb += gv;
         }
     }
 }
@@ -577,11 +563,11 @@ pub fn backward_nll(
     let (d1, d2) = spec.split();
     let c = spec.clamp;
     let params = &flow.params;
-    let Workspace { latent, perm, hidden, s, es, g, gp, gout, gh_a, gh_b, gx1, keep_inv, col_a, col_b, .. } = ws;
-    let keep_inv = *keep_inv;
-    // dL/dz = scale * z.
-    let z = &latent[..rows * dim];
-    for (gv, &zv) in g[..rows * dim].iter_mut().zip(z) {
+    let keep_inv = ws.keep_inv;
+    // dL/dz = scale * z. `g` then holds the gradient of each layer's output,
+    // updated in place into the gradient of its input, layer by layer.
+    let g = &mut ws.g[..rows * dim];
+    for (gv, &zv) in g.iter_mut().zip(&ws.latent[..rows * dim]) {
         *gv = scale * zv;
     }
     // With class means: dL/dz = scale (z - mu_c) and dL/dmu_c = -sum of those.
@@ -599,93 +585,82 @@ pub fn backward_nll(
     let hidden_block = cap * hid;
     for k in (0..spec.layers).rev() {
         let slot = &flow.slots[k];
-        let p = &perm[k * cap * dim..k * cap * dim + rows * dim];
-        let s = &s[k * cap * d2..k * cap * d2 + rows * d2];
-        let es = &es[k * cap * d2..k * cap * d2 + rows * d2];
-        // Through y2 = p2 * exp(s) + t and the -scale * sum(s) logdet term.
+        let p = &ws.perm[k * cap * dim..k * cap * dim + rows * dim];
+        let s = &ws.s[k * cap * d2..k * cap * d2 + rows * d2];
+        let es = &ws.es[k * cap * d2..k * cap * d2 + rows * d2];
+        // Through y2 = p2 * exp(s) + t and the -scale * sum(s) logdet term:
+        // g2 becomes the gradient of p2.
+        let gsum = &mut ws.gsum[..2 * d2];
+        gsum.fill(0.0);
         for r in 0..rows {
-            let (g2, p2) = (&g[r * dim + d1..(r + 1) * dim], &p[r * dim + d1..(r + 1) * dim]);
-            let (gs, gt) = gout[r * 2 * d2..(r + 1) * 2 * d2].split_at_mut(d2);
-            let coupling = (&s[r * d2..(r + 1) * d2], &es[r * d2..(r + 1) * d2]);
             coupling_backward_row(
-                g2,
-                p2,
-                coupling.0,
-                coupling.1,
+                &mut g[r * dim + d1..(r + 1) * dim],
+                &p[r * dim + d1..(r + 1) * dim],
+                &s[r * d2..(r + 1) * d2],
+                &es[r * d2..(r + 1) * d2],
                 c,
                 scale,
-                gs,
-                gt,
-                &mut gp[r * dim + d1..(r + 1) * dim],
+                &mut ws.gout[r * 2 * d2..(r + 1) * 2 * d2],
+                gsum,
             );
         }
         // Through the conditioner MLP, last layer first; the running gradient
-        // ping-pongs between the two hidden scratch buffers.
-        let layer_hidden = &hidden[k * spec.depth * hidden_block..(k + 1) * spec.depth * hidden_block];
+        // ping-pongs between the two hidden scratch buffers, and `gsum` holds
+        // its column sums, the bias gradient.
+        let layer_hidden = &ws.hidden[k * spec.depth * hidden_block..(k + 1) * spec.depth * hidden_block];
         let mut src_is_a: Option<bool> = None;
         for i in (0..=spec.depth).rev() {
             let lin = &slot.linears[i];
             let (g_cur, dst): (&[f32], &mut [f32]) = match src_is_a {
-                None => (&gout[..rows * 2 * d2], &mut gh_a[..]),
-                Some(true) => (&gh_a[..rows * hid], &mut gh_b[..]),
-                Some(false) => (&gh_b[..rows * hid], &mut gh_a[..]),
+                None => (&ws.gout[..rows * 2 * d2], &mut ws.gh_a[..]),
+                Some(true) => (&ws.gh_a[..rows * hid], &mut ws.gh_b[..]),
+                Some(false) => (&ws.gh_b[..rows * hid], &mut ws.gh_a[..]),
             };
             let inp = if i == 0 {
                 View::rows(p, rows, d1, dim)
             } else {
                 View::rows(&layer_hidden[(i - 1) * hidden_block..(i - 1) * hidden_block + rows * hid], rows, hid, hid)
             };
-            // gW += g_cur^T * inp ; gb += column sums of g_cur.
+            // gW = g_cur^T * inp ; gb = column sums of g_cur.
             let (gw, gb) = grad[lin.weight..lin.bias + lin.out].split_at_mut(lin.out * lin.inp);
             matmul(gw, lin.inp, false, View::transposed(g_cur, rows, lin.out), inp);
-            gb.fill(0.0);
-            column_sums(gb, &g_cur[..rows * lin.out]);
+            gb.copy_from_slice(&ws.gsum[..lin.out]);
             let w = View::rows(&params[lin.weight..lin.weight + lin.out * lin.inp], lin.out, lin.inp, lin.inp);
             let g_cur = View::rows(g_cur, rows, lin.out, lin.out);
             if i == 0 {
-                matmul(&mut gx1[..rows * d1], d1, false, g_cur, w);
+                // g1 += the conditioner's input gradient: `g` is now the
+                // gradient of the whole permuted ActNorm output.
+                matmul(g, dim, true, g_cur, w);
             } else {
-                // Into the previous hidden layer's output, then through ReLU and
-                // dropout: zero where the stored output is 0, scaled by 1/keep
-                // where it was kept.
+                // Into the previous hidden layer's output, then through ReLU
+                // and dropout.
                 let gh = &mut dst[..rows * hid];
                 matmul(gh, hid, false, g_cur, w);
                 let h = &layer_hidden[(i - 1) * hidden_block..(i - 1) * hidden_block + rows * hid];
-                relu_dropout_backward(gh, h, keep_inv);
+                let gsum = &mut ws.gsum[..hid];
+                gsum.fill(0.0);
+                relu_dropout_backward(gh, h, keep_inv, gsum);
                 src_is_a = Some(!src_is_a.unwrap_or(false));
             }
         }
-        // gp1 = g1 + the conditioner's input gradient; then back through the
-        // permutation and ActNorm.
+        // ActNorm's gradients in permuted order, then each row's gradient
+        // back through the permutation and the scale.
+        permuted_actnorm(flow, k, &mut ws.an_scale, &mut ws.an_shift);
+        ws.an_gscale.fill(0.0);
+        ws.an_gshift.fill(0.0);
         for r in 0..rows {
-            for j in 0..d1 {
-                gp[r * dim + j] = g[r * dim + j] + gx1[r * d1 + j];
-            }
+            let (gr, pr) = (&g[r * dim..(r + 1) * dim], &p[r * dim..(r + 1) * dim]);
+            actnorm_backward_row(gr, pr, &ws.an_shift, &mut ws.an_gscale, &mut ws.an_gshift);
         }
-        // Row by row (contiguous), accumulating the ActNorm gradients per
-        // permuted position: g_ls += gp (p - shift), g_b += gp.
-        let perm_k = &flow.perms[k];
-        let log_scale = &params[slot.log_scale..slot.log_scale + dim];
-        let shift = &params[slot.bias..slot.bias + dim];
-        col_a.fill(0.0);
-        col_b.fill(0.0);
-        for r in 0..rows {
-            let (gpr, pr) = (&gp[r * dim..(r + 1) * dim], &p[r * dim..(r + 1) * dim]);
-            for (j, &src) in perm_k.iter().enumerate() {
-                col_a[j] += gpr[j] * (pr[j] - shift[src as usize]);
-                col_b[j] += gpr[j];
-            }
-        }
-        for (j, &src) in perm_k.iter().enumerate() {
-            let src = src as usize;
-            grad[slot.log_scale + src] = col_a[j] - scale * rows as f32;
-            grad[slot.bias + src] = col_b[j];
-            col_a[j] = log_scale[src].exp();
+        for (j, &src) in flow.perms[k].iter().enumerate() {
+            grad[slot.log_scale + src as usize] = ws.an_gscale[j] - scale * rows as f32;
+            grad[slot.bias + src as usize] = ws.an_gshift[j];
         }
         for r in 0..rows {
-            let (gr, gpr) = (&mut g[r * dim..(r + 1) * dim], &gp[r * dim..(r + 1) * dim]);
-            for (j, &src) in perm_k.iter().enumerate() {
-                gr[src as usize] = gpr[j] * col_a[j];
+            let gr = &mut g[r * dim..(r + 1) * dim];
+            ws.row.copy_from_slice(gr);
+            for ((&src, &gv), &a) in flow.perms[k].iter().zip(&ws.row).zip(&ws.an_scale) {
+                gr[src as usize] = gv * a;
             }
         }
     }

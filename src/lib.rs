@@ -21,6 +21,7 @@ pub mod output;
 pub mod preprocess;
 pub mod report;
 pub mod score;
+pub mod simd;
 pub mod train;
 
 pub use error::{Error, Result};

@@ -11,6 +11,7 @@ use crate::model::{
     ClassCount, Kind, Meta, Model, PreprocessingMeta, ScoringMeta, ScoringRefs, Spread, TrainingSummary, FORMAT_VERSION,
 };
 use crate::preprocess::{ColumnStats, Covariance, Method, Preprocessor, DEFAULT_DEAD_THRESHOLD};
+use crate::simd::elementwise;
 use indicatif::{ProgressBar, ProgressStyle};
 use rand::rngs::StdRng;
 use rand::seq::SliceRandom;
@@ -237,7 +238,7 @@ impl Adam {
     /// One update; `decay[i]` says whether parameter i takes weight decay.
     pub fn step(&mut self, params: &mut [f32], grad: &[f32], lr: f64, weight_decay: f64, decay: &[bool]) {
         let (step, eps, shrink) = self.advance(lr, weight_decay);
-        Adam::update(params, grad, &mut self.m, &mut self.v, decay, step, eps, shrink);
+        adam_update(params, grad, &mut self.m, &mut self.v, decay, step, eps, shrink);
     }
 
     /// [`Adam::step`] split over the workers' threads (same result).
@@ -253,7 +254,7 @@ impl Adam {
         let (step, eps, shrink) = self.advance(lr, weight_decay);
         workers.for_param_blocks(params, &mut self.m, &mut self.v, |at, p, m, v| {
             let n = p.len();
-            Adam::update(p, &grad[at..at + n], m, v, &decay[at..at + n], step, eps, shrink);
+            adam_update(p, &grad[at..at + n], m, v, &decay[at..at + n], step, eps, shrink);
         });
     }
 
@@ -264,9 +265,12 @@ impl Adam {
         let c2 = 1.0 - (Self::BETA2 as f64).powi(self.t as i32);
         ((lr * c2.sqrt() / c1) as f32, Self::EPS * c2.sqrt() as f32, (lr * weight_decay) as f32)
     }
+}
 
+elementwise! {
+    /// One AdamW update of a block of parameters with its moments.
     #[allow(clippy::too_many_arguments)]
-    fn update(
+    fn adam_update(
         p: &mut [f32],
         g: &[f32],
         m: &mut [f32],
@@ -276,9 +280,10 @@ impl Adam {
         eps: f32,
         shrink: f32,
     ) {
+        let (b1, b2) = (Adam::BETA1, Adam::BETA2);
         for ((((p, &g), m), v), &d) in p.iter_mut().zip(g).zip(m).zip(v).zip(decay) {
-            *m = Self::BETA1 * *m + (1.0 - Self::BETA1) * g;
-            *v = Self::BETA2 * *v + (1.0 - Self::BETA2) * g * g;
+            *m = b1 * *m + (1.0 - b1) * g;
+            *v = b2 * *v + (1.0 - b2) * g * g;
             // Branch-free, so the loop vectorises.
             let decayed = *p - f32::from(u8::from(d)) * shrink * *p;
             *p = decayed - step * *m / (v.sqrt() + eps);
