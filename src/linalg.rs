@@ -5,6 +5,18 @@
 //! `gemm`, so callers stay in safe code.
 
 use gemm::Parallelism;
+use std::cell::Cell;
+
+thread_local! {
+    static IN_GEMM: Cell<bool> = const { Cell::new(false) };
+}
+
+/// Whether this thread is inside a `gemm` call. It lets a counting
+/// allocator (in the tests) tell `gemm`'s own packing buffers, which it
+/// allocates in every call, from allocations of this crate.
+pub fn inside_gemm() -> bool {
+    IN_GEMM.with(Cell::get)
+}
 
 /// A strided read-only view of a matrix inside a flat buffer.
 #[derive(Clone, Copy)]
@@ -65,6 +77,7 @@ pub fn matmul<T: Copy + 'static + From<f32>>(
     // SAFETY: every index the kernel touches lies inside the checked views and
     // the checked destination block; `dst` does not alias `a` or `b` because it
     // is borrowed mutably.
+    IN_GEMM.with(|f| f.set(true));
     unsafe {
         gemm::gemm(
             m,
@@ -88,6 +101,7 @@ pub fn matmul<T: Copy + 'static + From<f32>>(
             Parallelism::None,
         );
     }
+    IN_GEMM.with(|f| f.set(false));
 }
 
 #[cfg(test)]

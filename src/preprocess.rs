@@ -103,6 +103,13 @@ pub struct Preprocessor {
     pub shrinkage: f64,
 }
 
+/// Buffers that [`Preprocessor::transform_with`] reuses between calls.
+#[derive(Default)]
+pub struct TransformScratch {
+    centered: Vec<f32>,
+    inv: Vec<f32>,
+}
+
 /// Which covariance PCA whitening decomposes.
 #[derive(Default)]
 pub struct Covariance<'a> {
@@ -253,8 +260,23 @@ impl Preprocessor {
     /// dim`); when `residual` is given, also each row's distance from the
     /// span of the kept principal directions (input units; 0 without PCA).
     pub fn transform(&self, x: &[f32], rows: usize, out: &mut [f32], residual: Option<&mut [f64]>) {
+        self.transform_with(x, rows, out, residual, &mut TransformScratch::default());
+    }
+
+    /// [`Preprocessor::transform`] with its intermediate buffers kept in
+    /// `scratch`, so that repeated calls (one per training batch) allocate
+    /// nothing once the buffers have grown.
+    pub fn transform_with(
+        &self,
+        x: &[f32],
+        rows: usize,
+        out: &mut [f32],
+        residual: Option<&mut [f64]>,
+        scratch: &mut TransformScratch,
+    ) {
         let (live, k, cols) = (self.live.len(), self.dim(), self.input_dim);
-        let mut centered = vec![0.0f32; rows * live];
+        let TransformScratch { centered, inv } = scratch;
+        centered.resize(rows * live, 0.0);
         for r in 0..rows {
             let row = &x[r * cols..(r + 1) * cols];
             for (i, &j) in self.live.iter().enumerate() {
@@ -265,10 +287,10 @@ impl Preprocessor {
         }
         match &self.components {
             Some(comp) => {
-                let (c, proj) = (View::rows(&centered, rows, live, live), View::transposed(comp, k, live));
+                let (c, proj) = (View::rows(centered, rows, live, live), View::transposed(comp, k, live));
                 matmul(&mut out[..rows * k], k, false, c, proj);
             }
-            None => out[..rows * k].copy_from_slice(&centered),
+            None => out[..rows * k].copy_from_slice(&centered[..rows * k]),
         }
         if let Some(res) = residual {
             for r in 0..rows {
@@ -278,9 +300,10 @@ impl Preprocessor {
                 res[r] = if self.components.is_some() && k < live { (total - kept).max(0.0).sqrt() } else { 0.0 };
             }
         }
-        let inv: Vec<f32> = self.scale.iter().map(|s| (1.0 / s) as f32).collect();
+        inv.clear();
+        inv.extend(self.scale.iter().map(|s| (1.0 / s) as f32));
         for r in 0..rows {
-            for (v, s) in out[r * k..(r + 1) * k].iter_mut().zip(&inv) {
+            for (v, s) in out[r * k..(r + 1) * k].iter_mut().zip(inv.iter()) {
                 *v *= s;
             }
         }

@@ -13,15 +13,15 @@ pub fn has_avx2() -> bool {
 /// Defines an element-wise function twice: for the baseline target and,
 /// on x86-64, compiled for AVX2 + FMA (8 lanes) and chosen at run time.
 macro_rules! elementwise {
-    ($(#[$meta:meta])* fn $name:ident($($arg:ident : $ty:ty),* $(,)?) $body:block) => {
+    ($(#[$meta:meta])* fn $name:ident($($arg:ident : $ty:ty),* $(,)?) $(-> $ret:ty)? $body:block) => {
         $(#[$meta])*
-        fn $name($($arg: $ty),*) {
+        fn $name($($arg: $ty),*) $(-> $ret)? {
             #[inline(always)]
-            fn body($($arg: $ty),*) $body
+            fn body($($arg: $ty),*) $(-> $ret)? $body
             #[cfg(target_arch = "x86_64")]
             {
                 #[target_feature(enable = "avx2,fma")]
-                unsafe fn wide($($arg: $ty),*) {
+                unsafe fn wide($($arg: $ty),*) $(-> $ret)? {
                     body($($arg),*)
                 }
                 if $crate::simd::has_avx2() {

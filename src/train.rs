@@ -10,7 +10,7 @@ use crate::flow::{Flow, FlowSpec, Workers, HALF_LN_2PI};
 use crate::model::{
     ClassCount, Kind, Meta, Model, PreprocessingMeta, ScoringMeta, ScoringRefs, Spread, TrainingSummary, FORMAT_VERSION,
 };
-use crate::preprocess::{ColumnStats, Covariance, Method, Preprocessor, DEFAULT_DEAD_THRESHOLD};
+use crate::preprocess::{ColumnStats, Covariance, Method, Preprocessor, TransformScratch, DEFAULT_DEAD_THRESHOLD};
 use crate::simd::elementwise;
 use indicatif::{ProgressBar, ProgressStyle};
 use rand::rngs::StdRng;
@@ -556,10 +556,11 @@ fn new_learned(run: &Run, model: Model, settings: Settings, finished: bool) -> R
     learned.state.best_val = gaussian;
     if !finished {
         let init_rows = &rows.train[..rows.train.len().min(4096)];
-        let head = rows.whitened_head(&learned.model, init_rows);
-        learned.model.flow.init_actnorm(&head, init_rows.len());
+        let mut batch = BatchBuffers::default();
+        rows.prepare_batch(&learned.model, init_rows, &mut batch);
+        learned.model.flow.init_actnorm(&batch.head, init_rows.len());
         if learned.model.classes() > 0 {
-            init_class_means(&mut learned.model.flow, &rows, &head, init_rows);
+            init_class_means(&mut learned.model.flow, &batch.head, &batch.classes);
         }
     }
     Ok(learned)
@@ -568,12 +569,11 @@ fn new_learned(run: &Run, model: Model, settings: Settings, finished: bool) -> R
 /// Start each class's base mean at the mean latent of its rows under the
 /// freshly initialised flow, so training starts from the class-Gaussian fit
 /// rather than from one shared mean.
-fn init_class_means(flow: &mut Flow, rows: &Rows, head: &[f32], idx: &[usize]) {
+fn init_class_means(flow: &mut Flow, head: &[f32], classes: &[u32]) {
     let k = flow.spec.dim;
-    let Some(classes) = rows.classes_of(idx) else { return };
-    let mut ws = crate::flow::Workspace::new(&flow.spec, idx.len());
-    crate::flow::forward(flow, &mut ws, head, idx.len(), None);
-    let z = ws.latent(k, idx.len());
+    let mut ws = crate::flow::Workspace::new(&flow.spec, classes.len());
+    crate::flow::forward(flow, &mut ws, head, classes.len(), None);
+    let z = ws.latent(k, classes.len());
     let mut sums = vec![0.0f64; flow.spec.classes * k];
     let mut counts = vec![0usize; flow.spec.classes];
     for (r, &c) in classes.iter().enumerate() {
@@ -716,21 +716,19 @@ impl<'a> Rows<'a> {
     }
 
     /// Class indices of the rows `idx` (class-conditional models).
-    fn classes_of(&self, idx: &[usize]) -> Option<Vec<u32>> {
-        self.class_of.as_ref().map(|of| idx.iter().map(|&r| of[r]).collect())
-    }
-
-    /// The flow's part of the whitened rows `idx` of the training data.
-    fn whitened_head(&self, model: &Model, idx: &[usize]) -> Vec<f32> {
+    /// The flow's part of the whitened rows `idx` of the training data, and
+    /// their classes, into `b` (reused from batch to batch).
+    fn prepare_batch(&self, model: &Model, idx: &[usize], b: &mut BatchBuffers) {
         let (d, k) = (model.dim(), model.meta.flow_dims);
-        let mut raw = Vec::new();
-        self.data.gather(idx, &mut raw);
-        let mut u = vec![0.0f32; idx.len() * d];
-        model.pre.transform(&raw, idx.len(), &mut u, None);
-        if k == d {
-            return u;
+        self.data.gather(idx, &mut b.raw);
+        b.whitened.resize(idx.len() * d, 0.0);
+        model.pre.transform_with(&b.raw, idx.len(), &mut b.whitened, None, &mut b.scratch);
+        b.head.clear();
+        b.head.extend(b.whitened.chunks(d).flat_map(|r| &r[..k]));
+        b.classes.clear();
+        if let Some(of) = &self.class_of {
+            b.classes.extend(idx.iter().map(|&r| of[r]));
         }
-        u.chunks(d).flat_map(|r| r[..k].iter().copied()).collect()
     }
 
     /// Mean negative log-likelihood of the validation rows, nats per vector.
@@ -738,6 +736,18 @@ impl<'a> Rows<'a> {
         let ll = model.evaluate_rows(self.val_data, &self.val, threads).log_likelihood;
         -ll.iter().sum::<f64>() / ll.len() as f64
     }
+}
+
+/// One training batch on its way from the data file to the flow; kept
+/// across steps so that a step allocates nothing once they have grown.
+#[derive(Default)]
+struct BatchBuffers {
+    raw: Vec<f32>,
+    whitened: Vec<f32>,
+    /// The flow's input: the first `flow_dims` whitened features of each row.
+    head: Vec<f32>,
+    classes: Vec<u32>,
+    scratch: TransformScratch,
 }
 
 /// Why the training loop stopped before its end.
@@ -755,6 +765,7 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant) -> Res
     let total_steps = steps_per_epoch * s.epochs;
     let mut workers = Workers::new(&l.model.flow, s.threads, s.batch_size);
     let mut grad = vec![0.0f32; l.model.flow.param_count()];
+    let mut batch = BatchBuffers::default();
     let decay = decay_mask(&l.model.flow);
     let progress = Progress::new(s.epochs, l.state.epoch - 1, opts.quiet);
     let seconds_before = l.state.seconds;
@@ -772,22 +783,24 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant) -> Res
         }
         while l.state.batch < steps_per_epoch {
             let chunk = &order[l.state.batch * s.batch_size..((l.state.batch + 1) * s.batch_size).min(n_train)];
-            let mut batch = rows.whitened_head(&l.model, chunk);
+            rows.prepare_batch(&l.model, chunk, &mut batch);
             if s.noise > 0.0 {
                 let mut rng = StdRng::seed_from_u64(derive(s.seed, 3, l.state.step as u64));
                 let noise = s.noise as f32;
-                for v in &mut batch {
+                for v in &mut batch.head {
                     *v += noise * <StandardNormal as Distribution<f32>>::sample(&StandardNormal, &mut rng);
                 }
             }
             let dropout = (s.dropout > 0.0).then(|| (s.dropout as f32, derive(s.seed, 4, l.state.step as u64)));
-            let classes = rows.classes_of(chunk);
-            let nll = workers.nll_and_grad(&l.model.flow, &batch, classes.as_deref(), chunk.len(), dropout, &mut grad);
+            let classes = rows.class_of.is_some().then_some(&batch.classes[..]);
+            let nll = workers.nll_and_grad(&l.model.flow, &batch.head, classes, chunk.len(), dropout, &mut grad);
             if opts.inject_nan_at_step == Some(l.state.step) && !injected {
                 injected = true;
                 grad[0] = f32::NAN;
             }
-            if !nll.is_finite() || grad.iter().any(|g| !g.is_finite()) {
+            // Non-finite when any gradient is.
+            let grad_norm = sum_of_squares(&grad).sqrt();
+            if !nll.is_finite() || !grad_norm.is_finite() {
                 if l.state.retries >= s.max_retries {
                     stop_early(run, l, Halt::Diverged(l.state.epoch))?;
                 }
@@ -805,7 +818,7 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant) -> Res
                 }
                 continue 'epochs;
             }
-            let grad_norm = clip_norm(&mut grad, s.grad_clip);
+            clip_norm(&mut grad, grad_norm, s.grad_clip);
             let lr = learning_rate(s.lr, l.state.step, total_steps, s.warmup_fraction) * l.state.lr_scale;
             l.adam.step_on(&workers, &mut l.model.flow.params, &grad, lr, s.weight_decay, &decay);
             l.state.adam_t = l.adam.t;
@@ -1025,15 +1038,29 @@ fn class_counts(labels: &[i64]) -> Vec<ClassCount> {
     counts.into_iter().map(|(label, rows)| ClassCount { label, rows }).collect()
 }
 
-/// Scale `g` down to global norm `max` when it is longer; returns the norm
-/// before clipping.
-fn clip_norm(g: &mut [f32], max: f64) -> f64 {
-    let norm = g.iter().map(|&v| (v as f64) * (v as f64)).sum::<f64>().sqrt();
+/// Scale `g`, whose global norm is `norm`, down to norm `max` when it is
+/// longer.
+fn clip_norm(g: &mut [f32], norm: f64, max: f64) {
     if norm > max {
         let s = (max / norm) as f32;
         g.iter_mut().for_each(|v| *v *= s);
     }
-    norm
+}
+
+elementwise! {
+    /// The sum of squares in f64, in eight interleaved partial sums so that
+    /// the loop vectorises. Infinite or NaN when any value is.
+    fn sum_of_squares(g: &[f32]) -> f64 {
+        let mut acc = [0.0f64; 8];
+        let chunks = g.chunks_exact(8);
+        let tail: f64 = chunks.remainder().iter().map(|&v| (v as f64) * (v as f64)).sum();
+        for c in chunks {
+            for (a, &v) in acc.iter_mut().zip(c) {
+                *a += (v as f64) * (v as f64);
+            }
+        }
+        acc.iter().sum::<f64>() + tail
+    }
 }
 
 /// Epoch progress on stderr: a bar on a terminal, one line per epoch otherwise.

@@ -1,21 +1,28 @@
-//! A training step of the compute core (forward, backward, gradient
-//! reduction, Adam) allocates nothing of its own once its workspace exists,
-//! counted with a counting global allocator. The only allocations left are
-//! the `gemm` crate's: it allocates its packing buffers inside every matrix
-//! product (at most two per call), which this crate cannot reuse.
+//! A training step (gathering a minibatch from a memory-mapped `.npy`,
+//! whitening it, forward, backward, gradient reduction, Adam) allocates
+//! nothing of its own once its buffers exist, counted with a counting global
+//! allocator. The only allocations left are the `gemm` crate's: it allocates
+//! its packing buffers inside every matrix product, which this crate cannot
+//! reuse; they are counted apart (`linalg::inside_gemm`).
 
 use std::alloc::{GlobalAlloc, Layout, System};
 use std::sync::atomic::{AtomicUsize, Ordering};
+use tidemark::data::{write_npy, Dataset, Matrix};
 use tidemark::flow::{Flow, FlowSpec, Workers};
+use tidemark::linalg::inside_gemm;
+use tidemark::preprocess::{Method, Preprocessor, TransformScratch, DEFAULT_DEAD_THRESHOLD};
 use tidemark::train::Adam;
 
 struct Counting;
 
-static ALLOCATIONS: AtomicUsize = AtomicUsize::new(0);
+/// Allocations outside `gemm`, and inside it.
+static OURS: AtomicUsize = AtomicUsize::new(0);
+static GEMM: AtomicUsize = AtomicUsize::new(0);
 
 unsafe impl GlobalAlloc for Counting {
     unsafe fn alloc(&self, layout: Layout) -> *mut u8 {
-        ALLOCATIONS.fetch_add(1, Ordering::SeqCst);
+        let counter = if inside_gemm() { &GEMM } else { &OURS };
+        counter.fetch_add(1, Ordering::SeqCst);
         unsafe { System.alloc(layout) }
     }
     unsafe fn dealloc(&self, ptr: *mut u8, layout: Layout) {
@@ -28,38 +35,44 @@ static GLOBAL: Counting = Counting;
 
 #[test]
 fn a_training_step_allocates_nothing_after_the_first() {
+    let (n, dim, rows) = (1024, 24, 256);
+    let x: Vec<f32> = (0..n * dim).map(|i| ((i * 7919) % 1000) as f32 / 500.0 - 1.0).collect();
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("train.npy");
+    write_npy(&mut std::fs::File::create(&path).unwrap(), &Matrix::new(n, dim, x)).unwrap();
+    let data = Dataset::open(&path, None).unwrap();
+    let all: Vec<usize> = (0..n).collect();
+    let pre = Preprocessor::fit(&data, &all, Method::Pca, DEFAULT_DEAD_THRESHOLD).unwrap();
+    let k = pre.dim();
     for threads in [1, 2] {
-        let spec = FlowSpec { dim: 24, layers: 4, hidden: 64, depth: 2, clamp: 3.0, classes: 3 };
+        let spec = FlowSpec { dim: k, layers: 4, hidden: 64, depth: 2, clamp: 3.0, classes: 3 };
         let mut flow = Flow::new(spec, 1);
-        let rows = 256;
-        let x: Vec<f32> = (0..rows * 24).map(|i| ((i * 7919) % 1000) as f32 / 500.0 - 1.0).collect();
         let classes: Vec<u32> = (0..rows as u32).map(|r| r % 3).collect();
         let mut workers = Workers::new(&flow, threads, rows);
         let mut grad = vec![0.0f32; flow.param_count()];
         let mut adam = Adam::new(flow.param_count());
         let decay = vec![true; flow.param_count()];
-        let mut step = |flow: &mut Flow, seed: u64| {
-            workers.nll_and_grad(flow, &x, Some(&classes), rows, Some((0.1, seed)), &mut grad);
+        let (mut raw, mut batch, mut scratch) = (Vec::new(), vec![0.0f32; rows * k], TransformScratch::default());
+        let mut step = |flow: &mut Flow, s: usize| {
+            let idx: Vec<usize> = (0..rows).map(|r| (r * 37 + s * 101) % n).collect();
+            let before = (OURS.load(Ordering::SeqCst), GEMM.load(Ordering::SeqCst));
+            data.gather(&idx, &mut raw);
+            pre.transform_with(&raw, rows, &mut batch, None, &mut scratch);
+            workers.nll_and_grad(flow, &batch, Some(&classes), rows, Some((0.1, s as u64)), &mut grad);
             adam.step_on(&workers, &mut flow.params, &grad, 1e-3, 1e-4, &decay);
+            (OURS.load(Ordering::SeqCst) - before.0, GEMM.load(Ordering::SeqCst) - before.1)
         };
-        // Warm-up: each pool thread allocates gemm's thread-local buffer on
-        // its first product, whenever the scheduler first hands it one.
+        // Warm-up: the buffers grow, and each pool thread allocates gemm's
+        // thread-local buffer on its first product.
         for s in 0..3 {
             step(&mut flow, s);
         }
-        let mut per_step = Vec::new();
-        for s in 3..8 {
-            let before = ALLOCATIONS.load(Ordering::SeqCst);
-            step(&mut flow, s);
-            per_step.push(ALLOCATIONS.load(Ordering::SeqCst) - before);
-        }
+        let per_step: Vec<(usize, usize)> = (3..8).map(|s| step(&mut flow, s)).collect();
+        assert!(per_step.iter().all(|&(ours, _)| ours == 0), "{threads} thread(s): (ours, gemm's) {per_step:?}");
         // Matrix products per step: (depth + 1) per layer forward, twice that
-        // backward (weight and input gradients), in each thread's share.
-        let products = threads * 4 * 3 * 3;
-        // One thread: exactly the same every step. Two: the pool's scheduling
-        // moves a few of gemm's buffer allocations between steps.
-        let (lo, hi) = (*per_step.iter().min().unwrap(), *per_step.iter().max().unwrap());
-        assert!(hi - lo <= 4 * (threads - 1), "{threads} thread(s): allocations vary: {per_step:?}");
-        assert!(hi <= 2 * products, "{threads} thread(s): {hi} allocations for {products} products");
+        // backward (weight and input gradients), in each thread's share, and
+        // the whitening projection; gemm allocates one or two buffers in each.
+        let products = threads * 4 * 3 * 3 + 1;
+        assert!(per_step.iter().all(|&(_, g)| g <= 2 * products), "{threads} thread(s): {per_step:?}");
     }
 }
