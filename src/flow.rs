@@ -203,6 +203,38 @@ pub struct Dropout {
     pub row_offset: usize,
 }
 
+impl Dropout {
+    /// Key of the mask of one row of one conditioner hidden layer.
+    fn row_key(&self, layer: usize, hidden: usize, r: usize) -> u32 {
+        let unit = ((layer * 64 + hidden) as u64) << 40;
+        mix(self.seed ^ mix(unit ^ (self.row_offset + r) as u64)) as u32
+    }
+
+    /// Entries whose mask hash falls below this are dropped.
+    fn threshold(&self) -> u32 {
+        (self.rate as f64 * u32::MAX as f64) as u32
+    }
+
+    /// Whether entry `j` of row `r` of hidden layer `hidden` of coupling
+    /// layer `layer` is dropped.
+    #[cfg(test)]
+    fn drops(&self, layer: usize, hidden: usize, r: usize, j: usize) -> bool {
+        mask_hash(self.row_key(layer, hidden, r), j) < self.threshold()
+    }
+}
+
+/// The mask hash of entry `j` of a row: a multiply-xorshift finaliser on
+/// 32-bit lanes, so the loops using it vectorise.
+#[inline(always)]
+fn mask_hash(key: u32, j: usize) -> u32 {
+    let mut h = key ^ (j as u32).wrapping_mul(0x9E37_79B9);
+    h ^= h >> 16;
+    h = h.wrapping_mul(0x7FEB_352D);
+    h ^= h >> 15;
+    h = h.wrapping_mul(0x846C_A68B);
+    h ^ (h >> 16)
+}
+
 /// Preallocated buffers for up to `cap` rows: every layer's input, permuted
 /// ActNorm output, hidden activations and log-scales, plus backward scratch.
 pub struct Workspace {
@@ -309,14 +341,9 @@ fn run_conditioner(
         match dropout {
             Some((d, layer)) if d.rate > 0.0 => {
                 let scale = 1.0 / (1.0 - d.rate);
-                let threshold = (d.rate as f64 * u64::MAX as f64) as u64;
                 for r in 0..rows {
-                    let unit = ((layer * 64 + i) as u64) << 40;
-                    let mut state = mix(d.seed ^ mix(unit ^ (d.row_offset + r) as u64));
-                    for (v, b) in cur[r * hid..(r + 1) * hid].iter_mut().zip(bias) {
-                        state = mix(state);
-                        *v = if state < threshold { 0.0 } else { (*v + b).max(0.0) * scale };
-                    }
+                    let key = d.row_key(layer, i, r);
+                    bias_relu_dropout(&mut cur[r * hid..(r + 1) * hid], bias, key, d.threshold(), scale);
                 }
             }
             _ => bias_relu(cur, bias),
@@ -424,6 +451,17 @@ elementwise! {
             let t = exp_f32((r * inv).max(-40.0).min(40.0));
             *sv = c * (1.0 - 2.0 / (t + 1.0));
             *ev = exp_f32(*sv);
+        }
+    }
+}
+
+elementwise! {
+    /// One row of `v = max(v + bias, 0)` under dropout: entry j is dropped
+    /// when its mask hash falls below `threshold`, and scaled by `scale` =
+    /// 1 / keep rate otherwise.
+    fn bias_relu_dropout(v: &mut [f32], bias: &[f32], key: u32, threshold: u32, scale: f32) {
+        for (j, (x, b)) in v.iter_mut().zip(bias).enumerate() {
+            *x = if mask_hash(key, j) < threshold { 0.0 } else { (*x + b).max(0.0) * scale };
         }
     }
 }
@@ -945,9 +983,28 @@ mod tests {
         std::env::set_var("CANDLE_NUM_THREADS", "1");
     }
 
+    /// Every parameter tensor's gradient agrees with the reference's to 1e-4
+    /// relative to the tensor's largest reference entry.
+    fn assert_gradients_match(flow: &Flow, grad: &[f32], r: &reference::Reference) {
+        let dim = flow.spec.dim;
+        let mut tensors = vec![(flow.class_means, flow.spec.classes * dim)];
+        for layer in &flow.slots {
+            tensors.extend([(layer.log_scale, dim), (layer.bias, dim)]);
+            for lin in &layer.linears {
+                tensors.extend([(lin.weight, lin.out * lin.inp), (lin.bias, lin.out)]);
+            }
+        }
+        for (at, n) in tensors {
+            let want = &r.grad[at..at + n];
+            let top = want.iter().fold(0.0f64, |m, v| m.max(v.abs())).max(1e-3);
+            for (i, (&g, &w)) in grad[at..at + n].iter().zip(want).enumerate() {
+                assert!((g as f64 - w).abs() <= 1e-4 * top, "dim {dim}: param {} grad {g} vs {w}", at + i);
+            }
+        }
+    }
+
     /// Every parameter gradient of the hand-written backward pass agrees with
-    /// candle's autograd (reference implementation, f64) to 1e-4 relative to
-    /// the largest gradient entry of its tensor.
+    /// candle's autograd (reference implementation, f64).
     #[test]
     fn gradients_match_candle_autograd() {
         init_candle();
@@ -958,25 +1015,9 @@ mod tests {
             let labels: Vec<u32> = (0..rows as u32).map(|r| r % classes.max(1) as u32).collect();
             let labels = (classes > 0).then_some(&labels[..]);
             let (nll, grad) = fast_classes(&flow, &x, labels, rows, None);
-            let r = reference::evaluate(&flow, &x, labels, rows).unwrap();
+            let r = reference::evaluate(&flow, &x, labels, rows, None).unwrap();
             assert!((nll - r.mean_nll).abs() <= 1e-5 * r.mean_nll.abs().max(1.0), "{nll} vs {}", r.mean_nll);
-            for layer in &flow.slots {
-                let mut tensors = vec![(layer.log_scale, dim), (layer.bias, dim)];
-                for lin in &layer.linears {
-                    tensors.push((lin.weight, lin.out * lin.inp));
-                    tensors.push((lin.bias, lin.out));
-                }
-                if layer.log_scale == 0 {
-                    tensors.push((flow.class_means, classes * dim));
-                }
-                for (at, n) in tensors {
-                    let want = &r.grad[at..at + n];
-                    let top = want.iter().fold(0.0f64, |m, v| m.max(v.abs())).max(1e-3);
-                    for (i, (&g, &w)) in grad[at..at + n].iter().zip(want).enumerate() {
-                        assert!((g as f64 - w).abs() <= 1e-4 * top, "dim {dim}: param {} grad {g} vs {w}", at + i);
-                    }
-                }
-            }
+            assert_gradients_match(&flow, &grad, &r);
         }
     }
 
@@ -989,7 +1030,7 @@ mod tests {
         let x = normal(rows, 5, 9);
         let mut ws = Workspace::new(&flow.spec, rows);
         forward(&flow, &mut ws, &x, rows, None);
-        let r = reference::evaluate(&flow, &x, None, rows).unwrap();
+        let r = reference::evaluate(&flow, &x, None, rows, None).unwrap();
         for (a, b) in ws.latent(5, rows).iter().zip(&r.z) {
             assert!((*a as f64 - b).abs() < 1e-4 * b.abs().max(1.0));
         }
@@ -1062,28 +1103,48 @@ mod tests {
         }
     }
 
-    /// With dropout the gradient is still the derivative of the (fixed-mask)
-    /// loss: a central finite difference along a random direction.
+    /// With dropout, the gradient is that of the loss with the same masks
+    /// applied, as candle's autograd computes it (f64 reference, masks given
+    /// explicitly).
     #[test]
-    fn dropout_gradient_matches_directional_finite_difference() {
-        let mut flow = random_flow(spec(6, 2, 32, 2), 5);
+    fn dropout_gradients_match_candle_autograd() {
+        init_candle();
+        let flow = random_flow(spec(6, 2, 32, 3), 5);
         let rows = 40;
         let x = normal(rows, 6, 3);
-        let drop = Some((0.3, 1234));
-        let (_, grad) = fast(&flow, &x, rows, drop);
-        let mut rng = StdRng::seed_from_u64(9);
-        let dir: Vec<f32> = (0..flow.param_count()).map(|_| rng.random_range(-1.0f32..1.0)).collect();
-        let slope: f64 = grad.iter().zip(&dir).map(|(g, d)| (*g as f64) * (*d as f64)).sum();
-        let eps = 1e-3f32;
-        let base = flow.params.clone();
-        let at = |flow: &mut Flow, sign: f32| {
-            for ((p, b), d) in flow.params.iter_mut().zip(&base).zip(&dir) {
-                *p = b + sign * eps * d;
+        let (nll, grad) = fast(&flow, &x, rows, Some((0.3, 1234)));
+        let d = Dropout { rate: 0.3, seed: 1234, row_offset: 0 };
+        let r = reference::evaluate(&flow, &x, None, rows, Some(d)).unwrap();
+        assert!((nll - r.mean_nll).abs() <= 1e-5 * r.mean_nll.abs().max(1.0), "{nll} vs {}", r.mean_nll);
+        assert_gradients_match(&flow, &grad, &r);
+    }
+
+    /// Dropout masks: each entry is dropped with the stated probability and
+    /// neighbouring entries independently (binomial, 5 standard deviations;
+    /// 131,072 entries per check).
+    #[test]
+    fn dropout_masks_have_the_stated_rate_and_no_neighbour_correlation() {
+        let (rows, hid, rate) = (256usize, 512usize, 0.3f64);
+        let threshold = (rate * u32::MAX as f64) as u32;
+        let bias = vec![0.0f32; hid];
+        let mut dropped = vec![false; rows * hid];
+        for r in 0..rows {
+            let mut v = vec![1.0f32; hid];
+            bias_relu_dropout(&mut v, &bias, mix(r as u64 ^ 99) as u32, threshold, 1.0);
+            for j in 0..hid {
+                dropped[r * hid + j] = v[j] == 0.0;
             }
-            fast(flow, &x, rows, drop).0
+        }
+        let n = (rows * hid) as f64;
+        let share = |p: f64, hits: usize| {
+            let (got, sd) = (hits as f64 / n, (p * (1.0 - p) / n).sqrt());
+            assert!((got - p).abs() < 5.0 * sd, "share {got}, expected {p} (sd {sd})");
         };
-        let fd = (at(&mut flow, 1.0) - at(&mut flow, -1.0)) / (2.0 * eps as f64);
-        assert!((fd - slope).abs() < 2e-2 * slope.abs().max(1.0), "fd {fd} vs analytic {slope}");
+        share(rate, dropped.iter().filter(|&&d| d).count());
+        let pairs = (0..rows * hid).filter(|&i| dropped[i] && dropped[(i + 1) % (rows * hid)]).count();
+        share(rate * rate, pairs);
+        let stacked = (0..rows * hid).filter(|&i| dropped[i] && dropped[(i + hid) % (rows * hid)]).count();
+        share(rate * rate, stacked);
     }
 
     /// Splitting a batch across threads changes nothing but summation order.

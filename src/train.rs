@@ -1048,11 +1048,12 @@ fn clip_norm(g: &mut [f32], norm: f64, max: f64) {
 }
 
 elementwise! {
-    /// The sum of squares in f64, in eight interleaved partial sums so that
-    /// the loop vectorises. Infinite or NaN when any value is.
+    /// The sum of squares in f64, in sixteen interleaved partial sums so
+    /// that the loop vectorises and hides the add latency. Infinite or NaN
+    /// when any value is.
     fn sum_of_squares(g: &[f32]) -> f64 {
-        let mut acc = [0.0f64; 8];
-        let chunks = g.chunks_exact(8);
+        let mut acc = [0.0f64; 16];
+        let chunks = g.chunks_exact(16);
         let tail: f64 = chunks.remainder().iter().map(|&v| (v as f64) * (v as f64)).sum();
         for c in chunks {
             for (a, &v) in acc.iter_mut().zip(c) {

@@ -1,7 +1,7 @@
 //! The same flow built from candle tensors with candle's autograd, in f64.
 //! Tests hold the hand-written forward, backward and inverse to it.
 
-use super::{Flow, HALF_LN_2PI};
+use super::{Dropout, Flow, HALF_LN_2PI};
 use candle_core::{DType, Device, Tensor, Var};
 
 /// What the reference computes for a batch: the mean NLL, its gradient
@@ -20,9 +20,14 @@ fn var(flow: &Flow, at: usize, shape: &[usize], dev: &Device) -> candle_core::Re
     Var::from_tensor(&Tensor::from_vec(vals, shape, dev)?)
 }
 
-/// Forward map of the flow on `x` (`rows x dim`, f64); returns (z, logdet)
-/// as tensors plus the parameter variables in layout order.
-fn forward(flow: &Flow, x: &Tensor) -> candle_core::Result<(Tensor, Tensor, Vec<(usize, Var)>)> {
+/// Forward map of the flow on `x` (`rows x dim`, f64), with the fast
+/// path's dropout masks when `dropout` is given; returns (z, logdet) as
+/// tensors plus the parameter variables in layout order.
+fn forward(
+    flow: &Flow,
+    x: &Tensor,
+    dropout: Option<Dropout>,
+) -> candle_core::Result<(Tensor, Tensor, Vec<(usize, Var)>)> {
     let dev = x.device();
     let spec = &flow.spec;
     let (d1, d2) = spec.split();
@@ -48,6 +53,13 @@ fn forward(flow: &Flow, x: &Tensor) -> candle_core::Result<(Tensor, Tensor, Vec<
             net = net.matmul(&w.as_tensor().t()?)?.broadcast_add(bias.as_tensor())?;
             if i + 1 < slot.linears.len() {
                 net = net.relu()?;
+                if let Some(d) = dropout {
+                    let keep = 1.0 / (1.0 - d.rate as f64);
+                    let mask: Vec<f64> = (0..rows * lin.out)
+                        .map(|e| if d.drops(k, i, e / lin.out, e % lin.out) { 0.0 } else { keep })
+                        .collect();
+                    net = (net * Tensor::from_vec(mask, (rows, lin.out), dev)?)?;
+                }
             }
             vars.push((lin.weight, w));
             vars.push((lin.bias, bias));
@@ -63,13 +75,19 @@ fn forward(flow: &Flow, x: &Tensor) -> candle_core::Result<(Tensor, Tensor, Vec<
 }
 
 /// Mean NLL of `x` (with per-row class labels for a class-conditional
-/// flow) under the flow and its gradient, by candle autograd.
-pub fn evaluate(flow: &Flow, x: &[f32], classes: Option<&[u32]>, rows: usize) -> candle_core::Result<Reference> {
+/// flow, and dropout masks when given) under the flow and its gradient, by candle autograd.
+pub fn evaluate(
+    flow: &Flow,
+    x: &[f32],
+    classes: Option<&[u32]>,
+    rows: usize,
+    dropout: Option<Dropout>,
+) -> candle_core::Result<Reference> {
     let dev = Device::Cpu;
     let dim = flow.spec.dim;
     let xs: Vec<f64> = x[..rows * dim].iter().map(|&v| v as f64).collect();
     let x = Tensor::from_vec(xs, (rows, dim), &dev)?;
-    let (z, logdet, mut vars) = forward(flow, &x)?;
+    let (z, logdet, mut vars) = forward(flow, &x, dropout)?;
     let centred = match classes {
         Some(c) => {
             let means = var(flow, flow.class_means, &[flow.spec.classes, dim], &dev)?;
@@ -100,6 +118,6 @@ pub fn evaluate(flow: &Flow, x: &[f32], classes: Option<&[u32]>, rows: usize) ->
 /// The forward map of a single row, in f64 (for finite differences).
 pub fn map_row(flow: &Flow, x: &[f64]) -> candle_core::Result<Vec<f64>> {
     let t = Tensor::from_vec(x.to_vec(), (1, x.len()), &Device::Cpu)?;
-    let (z, _, _) = forward(flow, &t)?;
+    let (z, _, _) = forward(flow, &t, None)?;
     z.flatten_all()?.to_vec1::<f64>()
 }
