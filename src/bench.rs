@@ -99,7 +99,7 @@ pub fn run(cfg: &BenchConfig) -> BenchResult {
     }
     let train_samples_per_s = (steps * cfg.batch) as f64 / start.elapsed().as_secs_f64();
 
-    let mut score_workers = Workers::new(&flow, cfg.threads, SCORE_BLOCK * cfg.threads);
+    let mut score_workers = Workers::forward_only(&flow, cfg.threads, SCORE_BLOCK * cfg.threads);
     let (mut z, mut logdet) = (vec![0.0f32; rows * cfg.dim], vec![0.0f64; rows]);
     let (mut passes, start) = (0usize, Instant::now());
     while start.elapsed().as_secs_f64() < cfg.seconds || passes < 2 {

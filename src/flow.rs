@@ -158,13 +158,14 @@ impl Flow {
         for slot in &self.slots {
             self.params[slot.log_scale..slot.log_scale + 2 * dim].fill(0.0);
         }
-        let mut ws = Workspace::new(&self.spec, rows);
+        let mut ws = Workspace::forward_only(&self.spec, rows);
         for k in 0..self.spec.layers {
             if k == 0 {
                 enter_first_layer(self, &mut ws, x, rows);
             }
             let slot = &self.slots[k];
-            let p = &mut ws.perm[k * ws.cap * dim..k * ws.cap * dim + rows * dim];
+            let at = (k % ws.kept) * ws.cap * dim;
+            let p = &mut ws.perm[at..at + rows * dim];
             for (q, &src) in self.perms[k].iter().enumerate() {
                 let mean = (0..rows).map(|r| p[r * dim + q] as f64).sum::<f64>() / rows as f64;
                 let var = (0..rows).map(|r| (p[r * dim + q] as f64 - mean).powi(2)).sum::<f64>() / rows as f64;
@@ -239,10 +240,13 @@ fn mask_hash(key: u32, j: usize) -> u32 {
 /// ActNorm output, hidden activations and log-scales, plus backward scratch.
 pub struct Workspace {
     pub cap: usize,
+    /// Per-layer blocks kept: all layers for training, two (in turn) for the
+    /// forward pass alone; layer k uses block `k % kept`.
+    kept: usize,
     /// The latent `z` (`cap x dim`).
     latent: Vec<f32>,
-    /// `layers` blocks of `cap x dim`: block k is layer k's input after its
-    /// ActNorm and permutation.
+    /// `kept` blocks of `cap x dim`: a layer's input after its ActNorm and
+    /// permutation.
     perm: Vec<f32>,
     hidden: Vec<f32>,
     s: Vec<f32>,
@@ -269,22 +273,36 @@ pub struct Workspace {
 }
 
 impl Workspace {
+    /// Buffers for training: every layer's activations are kept for the
+    /// backward pass.
     pub fn new(spec: &FlowSpec, cap: usize) -> Workspace {
+        Workspace::with_blocks(spec, cap, spec.layers, true)
+    }
+
+    /// Buffers for the forward pass alone: layers take turns in two blocks,
+    /// so memory does not grow with depth (scoring, initialisation).
+    pub fn forward_only(spec: &FlowSpec, cap: usize) -> Workspace {
+        Workspace::with_blocks(spec, cap, spec.layers.min(2), false)
+    }
+
+    fn with_blocks(spec: &FlowSpec, cap: usize, kept: usize, backward: bool) -> Workspace {
         let d2 = spec.split().1;
-        let (dim, k, h) = (spec.dim, spec.layers, spec.hidden);
+        let (dim, h) = (spec.dim, spec.hidden);
+        let back = |n: usize| vec![0.0; if backward { n } else { 0 }];
         Workspace {
             cap,
+            kept,
             latent: vec![0.0; cap * dim],
-            perm: vec![0.0; k * cap * dim],
-            hidden: vec![0.0; k * spec.depth * cap * h],
-            s: vec![0.0; k * cap * d2],
-            es: vec![0.0; k * cap * d2],
+            perm: vec![0.0; kept * cap * dim],
+            hidden: vec![0.0; kept * spec.depth * cap * h],
+            s: vec![0.0; kept * cap * d2],
+            es: vec![0.0; kept * cap * d2],
             out: vec![0.0; cap * 2 * d2],
             logdet: vec![0.0; cap],
-            g: vec![0.0; cap * dim],
-            gout: vec![0.0; cap * 2 * d2],
-            gh_a: vec![0.0; cap * h],
-            gh_b: vec![0.0; cap * h],
+            g: back(cap * dim),
+            gout: back(cap * 2 * d2),
+            gh_a: back(cap * h),
+            gh_b: back(cap * h),
             gsum: vec![0.0; (2 * d2).max(h)],
             keep_inv: 1.0,
             an_scale: vec![0.0; spec.dim],
@@ -396,19 +414,30 @@ fn forward_layer(flow: &Flow, k: usize, ws: &mut Workspace, rows: usize, dropout
     if !last {
         permuted_actnorm(flow, k + 1, &mut ws.an_scale, &mut ws.an_shift);
     }
-    let (before, after) = ws.perm.split_at_mut((k + 1) * cap * dim);
-    let p = &before[k * cap * dim..k * cap * dim + rows * dim];
-    let next = if last { &mut ws.latent[..rows * dim] } else { &mut after[..rows * dim] };
+    let (b, block) = (k % ws.kept, cap * dim);
+    let (p, next) = if last {
+        (&ws.perm[b * block..b * block + rows * dim], &mut ws.latent[..rows * dim])
+    } else {
+        // The next layer's block is b + 1, or 0 when the two blocks of a
+        // forward-only workspace wrap around.
+        let nb = (k + 1) % ws.kept;
+        let (lo, hi) = ws.perm.split_at_mut(b.max(nb) * block);
+        if nb > b {
+            (&lo[b * block..b * block + rows * dim], &mut hi[..rows * dim])
+        } else {
+            (&hi[..rows * dim], &mut lo[nb * block..nb * block + rows * dim])
+        }
+    };
 
     // Conditioner MLP on p1 = p[:, ..d1].
     let hidden_block = cap * hid;
-    let layer_hidden = &mut ws.hidden[k * spec.depth * hidden_block..(k + 1) * spec.depth * hidden_block];
+    let layer_hidden = &mut ws.hidden[b * spec.depth * hidden_block..(b + 1) * spec.depth * hidden_block];
     let out = &mut ws.out[..rows * 2 * d2];
     let masks = dropout.map(|d| (d, k));
     run_conditioner(flow, k, View::rows(p, rows, d1, dim), layer_hidden, hidden_block, out, masks);
 
-    let s = &mut ws.s[k * cap * d2..k * cap * d2 + rows * d2];
-    let es = &mut ws.es[k * cap * d2..k * cap * d2 + rows * d2];
+    let s = &mut ws.s[b * cap * d2..b * cap * d2 + rows * d2];
+    let es = &mut ws.es[b * cap * d2..b * cap * d2 + rows * d2];
     for r in 0..rows {
         let o = &out[r * 2 * d2..(r + 1) * 2 * d2];
         let (sr, er) = (&mut s[r * d2..(r + 1) * d2], &mut es[r * d2..(r + 1) * d2]);
@@ -601,6 +630,7 @@ pub fn backward_nll(
     let (d1, d2) = spec.split();
     let c = spec.clamp;
     let params = &flow.params;
+    assert_eq!(ws.kept, spec.layers, "the backward pass needs a training workspace");
     let keep_inv = ws.keep_inv;
     // dL/dz = scale * z. `g` then holds the gradient of each layer's output,
     // updated in place into the gradient of its input, layer by layer.
@@ -761,13 +791,30 @@ pub const PARAM_BLOCK: usize = 1 << 15;
 const MIN_ROWS_PER_THREAD: usize = 32;
 
 impl Workers {
+    /// Workers for training (forward and backward) on batches of up to
+    /// `batch_cap` rows.
     pub fn new(flow: &Flow, threads: usize, batch_cap: usize) -> Workers {
+        Workers::build(flow, threads, batch_cap, true)
+    }
+
+    /// Workers for the forward pass alone ([`Workers::latent`]), with
+    /// forward-only workspaces and no gradient buffers.
+    pub fn forward_only(flow: &Flow, threads: usize, batch_cap: usize) -> Workers {
+        Workers::build(flow, threads, batch_cap, false)
+    }
+
+    fn build(flow: &Flow, threads: usize, batch_cap: usize, train: bool) -> Workers {
         let threads = threads.max(1);
         let chunk_cap = batch_cap.div_ceil(threads).max(1);
+        // The first worker writes its gradient straight into the caller's.
         let pool = (0..threads)
-            .map(|_| Worker {
-                ws: Workspace::new(&flow.spec, chunk_cap),
-                grad: vec![0.0; flow.param_count()],
+            .map(|i| Worker {
+                ws: if train {
+                    Workspace::new(&flow.spec, chunk_cap)
+                } else {
+                    Workspace::forward_only(&flow.spec, chunk_cap)
+                },
+                grad: vec![0.0; if train && i > 0 { flow.param_count() } else { 0 }],
                 total: 0.0,
             })
             .collect();
@@ -1039,6 +1086,22 @@ mod tests {
         }
     }
 
+    /// The forward-only workspace (two blocks in turn) computes exactly what
+    /// the training workspace does, for even and odd depths.
+    #[test]
+    fn forward_only_workspace_matches_training_workspace() {
+        for layers in [1, 2, 3, 5] {
+            let flow = random_flow(spec(7, layers, 16, 2), 40 + layers as u64);
+            let rows = 33;
+            let x = normal(rows, 7, 12);
+            let (mut full, mut lean) = (Workspace::new(&flow.spec, rows), Workspace::forward_only(&flow.spec, rows));
+            forward(&flow, &mut full, &x, rows, None);
+            forward(&flow, &mut lean, &x, rows, None);
+            assert_eq!(full.latent(7, rows), lean.latent(7, rows), "{layers} layers");
+            assert_eq!(full.logdet[..rows], lean.logdet[..rows], "{layers} layers");
+        }
+    }
+
     /// Change of variables: ln|det J| of the forward map, with J by central
     /// finite differences of the f64 reference map, equals the analytic
     /// log-determinant.
@@ -1090,7 +1153,7 @@ mod tests {
         let flow = Flow::new(spec(dim, 4, 16, 2), 8);
         let rows = 30;
         let x = normal(rows, dim, 2);
-        let mut workers = Workers::new(&flow, 2, 16);
+        let mut workers = Workers::forward_only(&flow, 2, 16);
         let (mut z, mut logdet) = (vec![0.0; rows * dim], vec![0.0; rows]);
         workers.latent(&flow, &x, rows, &mut z, &mut logdet);
         for r in 0..rows {

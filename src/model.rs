@@ -278,8 +278,8 @@ impl Model {
     pub fn evaluate_rows(&self, x: &Dataset, idx: &[usize], threads: usize) -> Evaluation {
         let mut out = Evaluation::default();
         let cap = (CHUNK_ROWS * threads.max(1)).min(idx.len()).max(1);
-        let mut workers = Workers::new(&self.flow, threads, cap);
-        let mut bg_workers = self.background.as_ref().map(|bg| Workers::new(bg, threads, cap));
+        let mut workers = Workers::forward_only(&self.flow, threads, cap);
+        let mut bg_workers = self.background.as_ref().map(|bg| Workers::forward_only(bg, threads, cap));
         let mut whitened = vec![0.0f32; cap * self.dim()];
         let mut rows = Vec::new();
         for chunk in idx.chunks(cap) {
@@ -472,9 +472,16 @@ impl Model {
                 Ok((name.clone(), view))
             })
             .collect::<Result<Vec<_>>>()?;
-        let bytes = safetensors::serialize(views, Some(metadata)).map_err(|e| Error::model(path, e))?;
-        crate::output::write_atomic(path, |w| {
-            w.write_all(&bytes).map_err(|source| Error::Io { path: path.into(), source })
+        if crate::output::is_stdout(path) {
+            let bytes = safetensors::serialize(views, Some(metadata)).map_err(|e| Error::model(path, e))?;
+            return crate::output::write_atomic(path, |w| {
+                w.write_all(&bytes).map_err(|source| Error::Io { path: path.into(), source })
+            });
+        }
+        // Straight from the tensors to the file: no second copy of the
+        // whole file in memory (checkpoints carry the optimizer state).
+        crate::output::write_atomic_via(path, |tmp| {
+            safetensors::serialize_to_file(views, Some(metadata), tmp).map_err(|e| Error::model(path, e))
         })
     }
 

@@ -23,14 +23,26 @@ where
         body(&mut w)?;
         return w.flush().map_err(|source| Error::Io { path: path.into(), source });
     }
+    write_atomic_via(path, |tmp| {
+        let io = |source| Error::Io { path: path.to_path_buf(), source };
+        let mut w = BufWriter::new(std::fs::File::create(tmp).map_err(io)?);
+        body(&mut w)?;
+        w.flush().map_err(io)
+    })
+}
+
+/// Write `path` atomically through a writer that wants a path of its own:
+/// `body` writes the temporary file it is given, which is then synced and
+/// renamed into place (removed on any error).
+pub fn write_atomic_via<F>(path: &Path, body: F) -> Result<()>
+where
+    F: FnOnce(&Path) -> Result<()>,
+{
     let tmp = temp_path(path);
     let io = |source| Error::Io { path: path.to_path_buf(), source };
     let result = (|| {
-        let file = std::fs::File::create(&tmp).map_err(io)?;
-        let mut w = BufWriter::new(file);
-        body(&mut w)?;
-        let file = w.into_inner().map_err(|e| io(e.into_error()))?;
-        file.sync_all().map_err(io)?;
+        body(&tmp)?;
+        std::fs::File::open(&tmp).and_then(|f| f.sync_all()).map_err(io)?;
         std::fs::rename(&tmp, path).map_err(io)
     })();
     if result.is_err() {

@@ -571,7 +571,7 @@ fn new_learned(run: &Run, model: Model, settings: Settings, finished: bool) -> R
 /// rather than from one shared mean.
 fn init_class_means(flow: &mut Flow, head: &[f32], classes: &[u32]) {
     let k = flow.spec.dim;
-    let mut ws = crate::flow::Workspace::new(&flow.spec, classes.len());
+    let mut ws = crate::flow::Workspace::forward_only(&flow.spec, classes.len());
     crate::flow::forward(flow, &mut ws, head, classes.len(), None);
     let z = ws.latent(k, classes.len());
     let mut sums = vec![0.0f64; flow.spec.classes * k];
