@@ -358,6 +358,13 @@ pub fn batch_threshold(model: &Model, size: usize, alpha: f64) -> f64 {
     stats[(((1.0 - alpha) * BOOTSTRAP as f64).ceil() as usize).clamp(1, BOOTSTRAP) - 1]
 }
 
+/// The batch typicality statistic of a batch with mean NLL `mean_nll`: its
+/// distance from the training estimate of the entropy.
+pub fn batch_statistic(model: &Model, mean_nll: f64) -> f64 {
+    let entropy = -model.meta.train_log_likelihood.mean;
+    (mean_nll - entropy).abs()
+}
+
 /// Bootstrap resamples behind the batch threshold.
 const BOOTSTRAP: usize = 2000;
 
@@ -366,13 +373,12 @@ fn write_batch_test(model: &Model, batches: &[(f64, usize)], b: &BatchTest) -> R
         return Err(Error::Invalid("this model stores no validation NLLs for the batch test".into()));
     }
     let threshold = batch_threshold(model, b.size, b.alpha);
-    let entropy = -model.meta.train_log_likelihood.mean;
     crate::output::write_atomic(&b.output, |w| {
         let io = |source| Error::Io { path: b.output.clone(), source };
         writeln!(w, "batch,first_row,rows,mean_nll,statistic,threshold,alpha,out_of_distribution").map_err(io)?;
         for (i, &(sum, rows)) in batches.iter().enumerate() {
             let mean = sum / rows as f64;
-            let stat = (mean - entropy).abs();
+            let stat = batch_statistic(model, mean);
             let verdict = stat > threshold;
             writeln!(w, "{i},{},{rows},{mean},{stat},{threshold},{},{verdict}", i * b.size, b.alpha).map_err(io)?;
         }
