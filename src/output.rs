@@ -51,6 +51,22 @@ where
     result
 }
 
+/// Fail early, before hours of work, when `path` cannot be written because
+/// its directory does not exist.
+pub fn check_directory(path: &Path) -> Result<()> {
+    if is_stdout(path) {
+        return Ok(());
+    }
+    match path.parent() {
+        Some(dir) if !dir.as_os_str().is_empty() && !dir.is_dir() => Err(Error::Invalid(format!(
+            "{}: cannot write here: directory {} does not exist",
+            path.display(),
+            dir.display()
+        ))),
+        _ => Ok(()),
+    }
+}
+
 fn temp_path(path: &Path) -> PathBuf {
     let name = path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
     path.with_file_name(format!(".{name}.{}.tmp", std::process::id()))

@@ -427,6 +427,9 @@ pub fn fit(x: &Dataset, labels: Option<&[i64]>, opts: &FitOptions) -> Result<Mod
 /// log and a stop flag when given.
 pub fn fit_run(run: &Run, opts: &FitOptions) -> Result<Model> {
     let started = Instant::now();
+    for path in [run.output, run.checkpoint.as_deref(), run.log].into_iter().flatten() {
+        crate::output::check_directory(path)?;
+    }
     let mut learned = match run.resume {
         Some(path) => resume(path, run)?,
         None => start(run, opts)?,

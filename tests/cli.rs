@@ -161,6 +161,31 @@ fn bad_inputs_fail_with_one_clear_line_and_no_output() {
     }
 }
 
+/// An output in a directory that does not exist is refused before any
+/// training, whether it is the model, the checkpoint or the log.
+#[test]
+fn outputs_in_missing_directories_are_refused_before_training() {
+    let dir = tempfile::tempdir().unwrap();
+    let train = dir.path().join("train.npy");
+    common::save(&train, &data(200, 0.0));
+    let (t, missing) = (train.to_str().unwrap(), dir.path().join("no_such_dir"));
+    let model = dir.path().join("model.safetensors");
+    for flag in ["-o", "--checkpoint", "--log"] {
+        let target = missing.join("file");
+        let mut args = vec!["fit", t, "--epochs", "3"];
+        if flag != "-o" {
+            args.extend(["-o", model.to_str().unwrap()]);
+        }
+        args.extend([flag, target.to_str().unwrap()]);
+        let out = tidemark().args(&args).assert().failure();
+        let stderr = String::from_utf8(out.get_output().stderr.clone()).unwrap();
+        let want = format!("directory {} does not exist", missing.display());
+        assert!(stderr.contains(&want), "{flag}: expected '{want}' in: {stderr}");
+        assert!(!stderr.contains("epoch"), "{flag}: trained before refusing: {stderr}");
+        assert!(!model.exists() && !missing.exists());
+    }
+}
+
 #[test]
 fn scoring_data_of_the_wrong_width_is_refused() {
     let dir = tempfile::tempdir().unwrap();
