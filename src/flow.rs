@@ -1086,6 +1086,28 @@ mod tests {
         }
     }
 
+    /// Data-dependent ActNorm initialisation: on the data it was initialised
+    /// with, every layer's ActNorm output has mean 0 and variance 1 per
+    /// feature (its definition), even for a flow whose ActNorm was not at
+    /// the identity before.
+    #[test]
+    fn actnorm_initialisation_standardises_every_layer() {
+        let mut flow = random_flow(spec(6, 3, 16, 2), 17);
+        let rows = 500;
+        let x: Vec<f32> = normal(rows, 6, 18).iter().enumerate().map(|(i, v)| 3.0 * v + (i % 6) as f32).collect();
+        flow.init_actnorm(&x, rows);
+        let mut ws = Workspace::new(&flow.spec, rows);
+        forward(&flow, &mut ws, &x, rows, None);
+        for k in 0..3 {
+            let p = &ws.perm[k * rows * 6..(k + 1) * rows * 6];
+            for j in 0..6 {
+                let mean = (0..rows).map(|r| p[r * 6 + j] as f64).sum::<f64>() / rows as f64;
+                let var = (0..rows).map(|r| (p[r * 6 + j] as f64 - mean).powi(2)).sum::<f64>() / rows as f64;
+                assert!(mean.abs() < 1e-4 && (var - 1.0).abs() < 1e-4, "layer {k} feature {j}: mean {mean} var {var}");
+            }
+        }
+    }
+
     /// The forward-only workspace (two blocks in turn) computes exactly what
     /// the training workspace does, for even and odd depths.
     #[test]
