@@ -232,7 +232,8 @@ impl Dataset {
     }
 }
 
-/// A cheap, well-mixed 64-bit step (splitmix64 finaliser) for checksums.
+/// A cheap, well-mixed 64-bit hash (the splitmix64 finaliser), for
+/// checksums, derived seeds and dropout mask keys.
 pub fn mix64(mut z: u64) -> u64 {
     z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
     z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);

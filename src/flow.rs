@@ -15,6 +15,7 @@
 //! `reference.rs` computes the same function with autograd and the tests hold
 //! this one to it.
 
+use crate::data::mix64;
 use crate::linalg::{matmul, View};
 use crate::simd::elementwise;
 use rand::rngs::StdRng;
@@ -319,17 +320,13 @@ impl Workspace {
     }
 }
 
-/// splitmix64: a tiny, well-mixed hash for dropout masks.
-fn mix(mut z: u64) -> u64 {
-    z = z.wrapping_add(0x9E37_79B9_7F4A_7C15);
-    z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-    z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-    z ^ (z >> 31)
+/// A step of splitmix64: a tiny, well-mixed hash for dropout mask keys.
+fn mix(z: u64) -> u64 {
+    mix64(z.wrapping_add(0x9E37_79B9_7F4A_7C15))
 }
 
-/// Fill `out` (rows x out) with `inp * W^T + b`.
-/// `out = inp * W^T` (the bias is added by the caller, fused with what
-/// follows).
+/// `out = inp * W^T` (rows x out); the bias is added by the caller, fused
+/// with what follows.
 fn linear_forward(params: &[f32], lin: &LinearSlot, inp: View<'_, f32>, out: &mut [f32]) {
     let w = View::transposed(&params[lin.weight..lin.weight + lin.out * lin.inp], lin.out, lin.inp);
     matmul(out, lin.out, false, inp, w);
@@ -630,7 +627,7 @@ pub fn backward_nll(
     let (d1, d2) = spec.split();
     let c = spec.clamp;
     let params = &flow.params;
-    assert_eq!(ws.kept, spec.layers, "the backward pass needs a training workspace");
+    assert!(ws.g.len() >= rows * dim && ws.kept == spec.layers, "the backward pass needs a training workspace");
     let keep_inv = ws.keep_inv;
     // dL/dz = scale * z. `g` then holds the gradient of each layer's output,
     // updated in place into the gradient of its input, layer by layer.
@@ -724,6 +721,10 @@ pub fn backward_nll(
             grad[slot.log_scale + src as usize] = ws.an_gscale[j] - scale * rows as f32;
             grad[slot.bias + src as usize] = ws.an_gshift[j];
         }
+        // The gradient with respect to the flow's input is of no use.
+        if k == 0 {
+            break;
+        }
         for r in 0..rows {
             let gr = &mut g[r * dim..(r + 1) * dim];
             ws.row.copy_from_slice(gr);
@@ -767,10 +768,11 @@ pub fn inverse(flow: &Flow, z: &[f32], rows: usize) -> Vec<f32> {
     y
 }
 
-/// One workspace and one gradient buffer per thread. Batches are split by
-/// rows into contiguous chunks, one per thread, run on a persistent thread
-/// pool; gradients are summed in thread order, so a fixed thread count
-/// gives bit-identical results.
+/// One workspace per thread, and a gradient buffer for each thread after
+/// the first (whose gradient goes straight into the caller's). Batches are
+/// split by rows into contiguous chunks, one per thread, run on a persistent
+/// thread pool; gradients are summed in thread order, so a fixed thread
+/// count gives bit-identical results.
 pub struct Workers {
     chunk_cap: usize,
     pool: Vec<Worker>,

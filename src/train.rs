@@ -4,7 +4,7 @@
 //! is the first candidate, so a fitted flow never ends worse than a Gaussian
 //! on the validation rows.
 
-use crate::data::Dataset;
+use crate::data::{mix64, Dataset};
 use crate::error::{Error, Result};
 use crate::flow::{Flow, FlowSpec, Workers, HALF_LN_2PI};
 use crate::model::{
@@ -301,12 +301,9 @@ pub fn learning_rate(base: f64, step: usize, total: usize, warmup_fraction: f64)
     base * 0.5 * (1.0 + (std::f64::consts::PI * progress.min(1.0)).cos())
 }
 
-/// splitmix64, to derive independent seeds from (seed, purpose, counter).
+/// Independent seeds from (seed, purpose, counter).
 fn derive(seed: u64, purpose: u64, counter: u64) -> u64 {
-    let mut z = seed ^ purpose.wrapping_mul(0x9E37_79B9_7F4A_7C15) ^ counter.wrapping_mul(0xD1B5_4A32_D192_ED03);
-    z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-    z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-    z ^ (z >> 31)
+    mix64(seed ^ purpose.wrapping_mul(0x9E37_79B9_7F4A_7C15) ^ counter.wrapping_mul(0xD1B5_4A32_D192_ED03))
 }
 
 /// Seeded split of row indices into (train, validation).
@@ -718,16 +715,19 @@ impl<'a> Rows<'a> {
         Rows { data: run.data, train, val_data, val, class_of }
     }
 
-    /// Class indices of the rows `idx` (class-conditional models).
     /// The flow's part of the whitened rows `idx` of the training data, and
     /// their classes, into `b` (reused from batch to batch).
     fn prepare_batch(&self, model: &Model, idx: &[usize], b: &mut BatchBuffers) {
-        let (d, k) = (model.dim(), model.meta.flow_dims);
+        let (d, k, n) = (model.dim(), model.meta.flow_dims, idx.len());
         self.data.gather(idx, &mut b.raw);
-        b.whitened.resize(idx.len() * d, 0.0);
-        model.pre.transform_with(&b.raw, idx.len(), &mut b.whitened, None, &mut b.scratch);
-        b.head.clear();
-        b.head.extend(b.whitened.chunks(d).flat_map(|r| &r[..k]));
+        // When the flow models every dimension, whiten straight into `head`.
+        let whitened = if k == d { &mut b.head } else { &mut b.whitened };
+        whitened.resize(n * d, 0.0);
+        model.pre.transform_with(&b.raw, n, whitened, None, &mut b.scratch);
+        if k < d {
+            b.head.clear();
+            b.head.extend(b.whitened.chunks(d).flat_map(|r| &r[..k]));
+        }
         b.classes.clear();
         if let Some(of) = &self.class_of {
             b.classes.extend(idx.iter().map(|&r| of[r]));
@@ -746,6 +746,7 @@ impl<'a> Rows<'a> {
 #[derive(Default)]
 struct BatchBuffers {
     raw: Vec<f32>,
+    /// All whitened features (only when the flow models fewer).
     whitened: Vec<f32>,
     /// The flow's input: the first `flow_dims` whitened features of each row.
     head: Vec<f32>,
