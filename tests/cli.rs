@@ -4,11 +4,12 @@
 mod common;
 
 use assert_cmd::Command;
+use common::{column, mean};
 use std::path::{Path, PathBuf};
 use tidemark::data::Matrix;
 
 fn tidemark() -> Command {
-    Command::cargo_bin("tidemark").unwrap()
+    Command::new(common::bin())
 }
 
 /// Deterministic correlated 4-d data, optionally shifted (invented).
@@ -19,17 +20,6 @@ fn data(n: usize, shift: f32) -> Matrix {
         v.extend([a + shift, 0.5 * a + b + shift, a * b + 0.3 * c, c - 0.2 * b]);
     }
     Matrix::new(n, 4, v)
-}
-
-fn column(csv: &str, name: &str) -> Vec<f64> {
-    let mut lines = csv.lines();
-    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
-    let at = header.iter().position(|h| *h == name).unwrap();
-    lines.map(|l| l.split(',').nth(at).unwrap().parse().unwrap()).collect()
-}
-
-fn mean(v: &[f64]) -> f64 {
-    v.iter().sum::<f64>() / v.len() as f64
 }
 
 #[test]

@@ -1,5 +1,8 @@
 //! The fitted density against closed-form results.
 
+mod common;
+
+use common::mean;
 use rand::rngs::StdRng;
 use rand::SeedableRng;
 use rand_distr::{Distribution, StandardNormal};
@@ -8,10 +11,6 @@ use tidemark::train::{fit, FitOptions};
 
 fn quiet() -> FitOptions {
     FitOptions { quiet: true, threads: Some(2), seed: Some(3), ..Default::default() }
-}
-
-fn mean(v: &[f64]) -> f64 {
-    v.iter().sum::<f64>() / v.len() as f64
 }
 
 /// Samples of N(0, A A^T) for a lower-triangular A (row-major, d x d).

@@ -66,20 +66,18 @@ fn evaluate_refuses_mismatched_or_missing_columns() {
     };
     let id = write("id.csv", "log_likelihood,typicality\n1.0,0.1\n2.0,0.2\n1.5,0.3\n");
     let ood = write("ood.csv", "log_likelihood\n-1.0\n-2.0\n");
-    let out = Command::cargo_bin("tidemark")
-        .unwrap()
-        .args(["evaluate", "--id", &id, "--ood", &format!("x={ood}")])
-        .assert()
-        .failure();
-    let err = String::from_utf8_lossy(&out.get_output().stderr).to_string();
-    assert!(err.contains("ood.csv: has no column 'typicality' (it has: log_likelihood)"), "{err}");
-    let out = Command::cargo_bin("tidemark")
-        .unwrap()
-        .args(["evaluate", "--id", &id, "--ood", &format!("x={ood}"), "--columns", "nope"])
-        .assert()
-        .failure();
-    let err = String::from_utf8_lossy(&out.get_output().stderr).to_string();
-    assert!(err.contains("'nope' is not an anomaly score"), "{err}");
+    let ood_arg = format!("x={ood}");
+    let refused = |extra: &[&str], message: &str| {
+        let out = Command::new(common::bin())
+            .args(["evaluate", "--id", &id, "--ood", &ood_arg])
+            .args(extra)
+            .assert()
+            .failure();
+        let err = String::from_utf8_lossy(&out.get_output().stderr).to_string();
+        assert!(err.contains(message), "{err}");
+    };
+    refused(&[], "ood.csv: has no column 'typicality' (it has: log_likelihood)");
+    refused(&["--columns", "nope"], "'nope' is not an anomaly score");
     let ok = Command::cargo_bin("tidemark")
         .unwrap()
         .args([

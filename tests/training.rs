@@ -5,14 +5,11 @@
 mod common;
 
 use assert_cmd::Command;
-use std::path::{Path, PathBuf};
+use common::{bin, column, mean};
+use std::path::Path;
 use std::process::Stdio;
 use std::time::{Duration, Instant};
 use tidemark::data::Matrix;
-
-fn bin() -> PathBuf {
-    assert_cmd::cargo::cargo_bin("tidemark")
-}
 
 /// Deterministic non-Gaussian 6-d data (invented).
 fn data(n: usize, phase: f32) -> Matrix {
@@ -195,13 +192,7 @@ fn early_stopping_keeps_the_best_epoch_and_its_validation_nll_is_reproducible() 
     assert_eq!(t.epochs_run, t.best_epoch + 3, "stopped 3 epochs after the best");
     let scores = dir.path().join("val.csv");
     Command::new(bin()).args(["score", s(&model), s(&val), "-o", s(&scores)]).assert().success();
-    let ll: Vec<f64> = std::fs::read_to_string(&scores)
-        .unwrap()
-        .lines()
-        .skip(1)
-        .map(|l| l.split(',').next().unwrap().parse().unwrap())
-        .collect();
-    let recomputed = -ll.iter().sum::<f64>() / ll.len() as f64;
+    let recomputed = -mean(&column(&std::fs::read_to_string(&scores).unwrap(), "log_likelihood"));
     assert!(
         (recomputed - t.best_validation_nll).abs() < 1e-9 * recomputed.abs().max(1.0),
         "{recomputed} vs {}",

@@ -27,3 +27,20 @@ pub fn save(path: &Path, m: &Matrix) {
     let mut f = std::fs::File::create(path).unwrap();
     write_npy(&mut f, m).unwrap();
 }
+
+/// The `tidemark` binary built for these tests.
+pub fn bin() -> PathBuf {
+    assert_cmd::cargo::cargo_bin("tidemark")
+}
+
+/// The values of column `name` of a CSV text with a header row.
+pub fn column(csv: &str, name: &str) -> Vec<f64> {
+    let mut lines = csv.lines();
+    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
+    let at = header.iter().position(|h| *h == name).unwrap();
+    lines.map(|l| l.split(',').nth(at).unwrap().parse().unwrap()).collect()
+}
+
+pub fn mean(v: &[f64]) -> f64 {
+    v.iter().sum::<f64>() / v.len() as f64
+}
