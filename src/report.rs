@@ -118,16 +118,25 @@ fn histogram_svg(column: &str, sets: &[(&str, &[f64])], threshold: Option<f64>) 
                 .label("calibrated threshold")
                 .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], BLACK));
         }
-        chart
-            .configure_series_labels()
-            .background_style(WHITE.mix(0.85))
-            .border_style(BLACK)
-            .position(SeriesLabelPosition::UpperRight)
-            .draw()
-            .map_err(plot_error)?;
+        draw_legend(&mut chart, SeriesLabelPosition::UpperRight)?;
         root.present().map_err(plot_error)?;
     }
     Ok(svg)
+}
+
+/// The series legend, on a translucent white box with a black border.
+fn draw_legend<'a, DB, CT>(chart: &mut ChartContext<'a, DB, CT>, position: SeriesLabelPosition) -> Result<()>
+where
+    DB: DrawingBackend + 'a,
+    CT: CoordTranslate,
+{
+    chart
+        .configure_series_labels()
+        .background_style(WHITE.mix(0.85))
+        .border_style(BLACK)
+        .position(position)
+        .draw()
+        .map_err(plot_error)
 }
 
 /// ROC curves (outliers positive) of one column for every outlier set.
@@ -158,13 +167,7 @@ fn roc_svg(column: &str, curves: &[(&str, Vec<(f64, f64, f64)>)]) -> Result<Stri
                 .label(*name)
                 .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], color.stroke_width(2)));
         }
-        chart
-            .configure_series_labels()
-            .background_style(WHITE.mix(0.85))
-            .border_style(BLACK)
-            .position(SeriesLabelPosition::LowerRight)
-            .draw()
-            .map_err(plot_error)?;
+        draw_legend(&mut chart, SeriesLabelPosition::LowerRight)?;
         root.present().map_err(plot_error)?;
     }
     Ok(svg)
@@ -197,12 +200,7 @@ fn training_svg(log: &[LogEntry]) -> Result<String> {
                 .label(name)
                 .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], color.stroke_width(2)));
         }
-        chart
-            .configure_series_labels()
-            .background_style(WHITE.mix(0.85))
-            .border_style(BLACK)
-            .draw()
-            .map_err(plot_error)?;
+        draw_legend(&mut chart, SeriesLabelPosition::MiddleRight)?;
         root.present().map_err(plot_error)?;
     }
     Ok(svg)
