@@ -321,7 +321,7 @@ fn calibrate_then_score_with_p_values() {
     let csv = String::from_utf8(out.get_output().stdout.clone()).unwrap();
     let (p, flagged) = (column(&csv, "p_value"), column(&csv, "flagged"));
     // On the calibration rows themselves at most alpha (n+1)/n are flagged.
-    let share = flagged.iter().sum::<f64>() / flagged.len() as f64;
+    let share = mean(&flagged);
     assert!(share <= 0.05 * 301.0 / 300.0 + 1e-12, "{share}");
     assert!(p.iter().zip(&flagged).all(|(p, f)| (*p <= 0.05) == (*f == 1.0)));
 

@@ -73,7 +73,7 @@ fn latent_norm_of_model_samples_concentrates_at_sqrt_d() {
     .unwrap();
     let samples = Dataset::in_memory(model.sample(2000, 3));
     let e = model.evaluate(&samples, 2);
-    let mean = e.latent_norm.iter().sum::<f64>() / e.latent_norm.len() as f64;
+    let mean = common::mean(&e.latent_norm);
     assert!(close(mean, (d as f64).sqrt(), 0.01), "mean latent norm {mean} vs sqrt(D) = 16");
 }
 
@@ -115,7 +115,7 @@ fn class_conditional_marginal_is_a_density_and_posteriors_sum_to_one() {
     // the overlap between classes.
     let samples = Dataset::in_memory(model.sample(6000, 5));
     let s = model.evaluate(&samples, 2);
-    let mean_sq = s.mahalanobis_sq.iter().sum::<f64>() / s.mahalanobis_sq.len() as f64;
+    let mean_sq = common::mean(&s.mahalanobis_sq);
     assert!(mean_sq < 2.1, "mean squared distance to the nearest class mean {mean_sq}");
     for c in 0..3 {
         let share = s.predicted_class.iter().filter(|&&p| p == c).count() as f64 / 6000.0;
