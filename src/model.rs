@@ -332,7 +332,8 @@ impl Model {
         out: &mut Evaluation,
     ) {
         let (d, k) = (self.dim(), self.meta.flow_dims);
-        let head = leading_columns(u, rows, d, k);
+        // No copy when the flow models every dimension.
+        let head = if k == d { std::borrow::Cow::Borrowed(u) } else { leading_columns(u, rows, d, k).into() };
         let mut z = vec![0.0f32; rows * k];
         let mut flow_logdet = vec![0.0f64; rows];
         workers.latent(&self.flow, &head, rows, &mut z, &mut flow_logdet);
@@ -703,11 +704,16 @@ pub fn log_sum_exp(v: &[f64]) -> f64 {
 }
 
 /// The first `k` of `d` columns of a row-major matrix, contiguous.
+/// The first `k` of every `d` columns of `u` (the flow's part of whitened
+/// rows), into `out`, which is cleared first.
+pub(crate) fn leading_columns_into(u: &[f32], d: usize, k: usize, out: &mut Vec<f32>) {
+    out.clear();
+    out.extend(u.chunks_exact(d).flat_map(|r| &r[..k]));
+}
+
 fn leading_columns(u: &[f32], rows: usize, d: usize, k: usize) -> Vec<f32> {
     let mut out = Vec::with_capacity(rows * k);
-    for r in 0..rows {
-        out.extend_from_slice(&u[r * d..r * d + k]);
-    }
+    leading_columns_into(&u[..rows * d], d, k, &mut out);
     out
 }
 

@@ -8,7 +8,8 @@ use crate::data::{mix64, Dataset};
 use crate::error::{Error, Result};
 use crate::flow::{Flow, FlowSpec, Workers, HALF_LN_2PI};
 use crate::model::{
-    ClassCount, Kind, Meta, Model, PreprocessingMeta, ScoringMeta, ScoringRefs, Spread, TrainingSummary, FORMAT_VERSION,
+    leading_columns_into, ClassCount, Kind, Meta, Model, PreprocessingMeta, ScoringMeta, ScoringRefs, Spread,
+    TrainingSummary, FORMAT_VERSION,
 };
 use crate::preprocess::{ColumnStats, Covariance, Method, Preprocessor, TransformScratch, DEFAULT_DEAD_THRESHOLD};
 use crate::simd::elementwise;
@@ -725,8 +726,7 @@ impl<'a> Rows<'a> {
         whitened.resize(n * d, 0.0);
         model.pre.transform_with(&b.raw, n, whitened, None, &mut b.scratch);
         if k < d {
-            b.head.clear();
-            b.head.extend(b.whitened.chunks(d).flat_map(|r| &r[..k]));
+            leading_columns_into(&b.whitened, d, k, &mut b.head);
         }
         b.classes.clear();
         if let Some(of) = &self.class_of {
