@@ -273,14 +273,13 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
             Format::Npy => crate::data::write_npy_header(w, x.rows, columns.len()).map_err(io)?,
             Format::JsonLines => {}
         }
-        let idx: Vec<usize> = (0..x.rows).collect();
-        for chunk in idx.chunks(SCORE_CHUNK) {
-            let e = model.evaluate_rows(x, chunk, opts.threads);
-            if opts.batch.is_some() {
-                let size = opts.batch.as_ref().map(|b| b.size).unwrap_or(1);
+        for start in (0..x.rows).step_by(SCORE_CHUNK) {
+            let chunk: Vec<usize> = (start..(start + SCORE_CHUNK).min(x.rows)).collect();
+            let e = model.evaluate_rows(x, &chunk, opts.threads);
+            if let Some(b) = &opts.batch {
                 for ll in &e.log_likelihood {
                     match batches.last_mut() {
-                        Some((sum, n)) if *n < size => {
+                        Some((sum, n)) if *n < b.size => {
                             *sum -= ll;
                             *n += 1;
                         }
