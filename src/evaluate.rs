@@ -68,8 +68,13 @@ pub fn roc_curve(negatives: &[f64], positives: &[f64]) -> Vec<(f64, f64, f64)> {
 /// sum over distinct thresholds, sum of (R_k - R_k-1) P_k) with `positives`
 /// scored higher.
 pub fn average_precision(negatives: &[f64], positives: &[f64]) -> f64 {
-    let curve = roc_curve(negatives, positives);
-    let (n_neg, n_pos) = (negatives.len() as f64, positives.len() as f64);
+    precision_area(&roc_curve(negatives, positives), negatives.len(), positives.len())
+}
+
+/// Average precision from a ROC curve of `n_neg` negatives and `n_pos`
+/// positives (see [`average_precision`]).
+fn precision_area(curve: &[(f64, f64, f64)], n_neg: usize, n_pos: usize) -> f64 {
+    let (n_neg, n_pos) = (n_neg as f64, n_pos as f64);
     let mut ap = 0.0;
     for w in curve.windows(2) {
         let (fpr, tpr) = (w[1].0, w[1].1);
@@ -97,11 +102,12 @@ impl Metrics {
         let neg = |v: &[f64]| v.iter().map(|x| -x).collect::<Vec<_>>();
         // ROC with the in-distribution vectors as positives.
         let roc_in = roc_curve(&neg(outliers), &neg(inliers));
+        let aupr_in = precision_area(&roc_in, outliers.len(), inliers.len());
         let fpr_at_95_tpr = roc_in.iter().find(|p| p.1 >= 0.95).map(|p| p.0).unwrap_or(1.0);
         let detection_error = roc_in.iter().map(|p| 0.5 * (1.0 - p.1) + 0.5 * p.0).fold(f64::INFINITY, f64::min);
         Metrics {
             auroc: auroc(inliers, outliers),
-            aupr_in: average_precision(&neg(outliers), &neg(inliers)),
+            aupr_in,
             aupr_out: average_precision(inliers, outliers),
             fpr_at_95_tpr,
             detection_error,
