@@ -4,7 +4,7 @@
 //! measured in the same run.
 
 use crate::flow::{Flow, FlowSpec, Workers};
-use crate::linalg::{matmul, View};
+use crate::linalg::{matmul, time_in_products, View};
 use crate::train::Adam;
 use rand::rngs::StdRng;
 use rand::{Rng, SeedableRng};
@@ -37,6 +37,12 @@ pub struct BenchResult {
     pub train_gflops: f64,
     /// train_gflops / (gemm_peak_gflops x threads).
     pub train_fraction_of_peak: f64,
+    /// Share of the training threads' time spent inside matrix products
+    /// (operand packing included); the rest is element-wise work and AdamW.
+    pub train_product_share: f64,
+    /// The training step's products alone, as a fraction of the peak: what
+    /// training would reach if everything outside the products took no time.
+    pub train_product_fraction_of_peak: f64,
     pub score_samples_per_s: f64,
     pub score_gflops: f64,
     pub score_fraction_of_peak: f64,
@@ -89,6 +95,7 @@ pub fn run(cfg: &BenchConfig) -> BenchResult {
     let mut adam = Adam::new(flow.param_count());
     let decay = vec![false; flow.param_count()];
     let (mut steps, mut at) = (0usize, 0usize);
+    let products_before = time_in_products();
     let start = Instant::now();
     while start.elapsed().as_secs_f64() < cfg.seconds || steps < 3 {
         let x = &data[at * cfg.batch * cfg.dim..(at + 1) * cfg.batch * cfg.dim];
@@ -97,7 +104,9 @@ pub fn run(cfg: &BenchConfig) -> BenchResult {
         steps += 1;
         at = (at + 1) % 8;
     }
-    let train_samples_per_s = (steps * cfg.batch) as f64 / start.elapsed().as_secs_f64();
+    let train_seconds = start.elapsed().as_secs_f64();
+    let product_seconds = (time_in_products() - products_before).as_secs_f64();
+    let train_samples_per_s = (steps * cfg.batch) as f64 / train_seconds;
 
     let mut score_workers = Workers::forward_only(&flow, cfg.threads, SCORE_BLOCK * cfg.threads);
     let (mut z, mut logdet) = (vec![0.0f32; rows * cfg.dim], vec![0.0f64; rows]);
@@ -118,6 +127,11 @@ pub fn run(cfg: &BenchConfig) -> BenchResult {
         train_samples_per_s,
         train_gflops: train_samples_per_s * train_flops / 1e9,
         train_fraction_of_peak: train_samples_per_s * train_flops / 1e9 / peak,
+        train_product_share: product_seconds / (train_seconds * cfg.threads as f64),
+        train_product_fraction_of_peak: (steps * cfg.batch) as f64 * train_flops
+            / 1e9
+            / product_seconds
+            / gemm_peak_gflops,
         score_samples_per_s,
         score_gflops: score_samples_per_s * fwd_flops / 1e9,
         score_fraction_of_peak: score_samples_per_s * fwd_flops / 1e9 / peak,
@@ -128,8 +142,8 @@ pub fn run(cfg: &BenchConfig) -> BenchResult {
 pub fn describe(r: &BenchResult) -> String {
     let c = &r.config;
     format!(
-        "D {} hidden {} layers {} batch {} threads {}: train {:.0} vec/s ({:.1} GFLOP/s, {:.0}% of peak), \
-         score {:.0} vec/s ({:.1} GFLOP/s, {:.0}% of peak); GEMM peak {:.1} GFLOP/s per core; {:.2} MFLOP/vector to train",
+        "D {} hidden {} layers {} batch {} threads {}: train {:.0} vec/s ({:.1} GFLOP/s, {:.0}% of peak; \
+         products {:.0}% of the time at {:.0}% of peak), score {:.0} vec/s ({:.1} GFLOP/s, {:.0}% of peak); GEMM peak {:.1} GFLOP/s per core; {:.2} MFLOP/vector to train",
         c.dim,
         c.hidden,
         c.layers,
@@ -138,6 +152,8 @@ pub fn describe(r: &BenchResult) -> String {
         r.train_samples_per_s,
         r.train_gflops,
         100.0 * r.train_fraction_of_peak,
+        100.0 * r.train_product_share,
+        100.0 * r.train_product_fraction_of_peak,
         r.score_samples_per_s,
         r.score_gflops,
         100.0 * r.score_fraction_of_peak,

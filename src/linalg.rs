@@ -6,6 +6,17 @@
 
 use gemm::Parallelism;
 use std::cell::Cell;
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::time::{Duration, Instant};
+
+/// Nanoseconds spent inside [`matmul`], summed over all threads; `bench`
+/// reads it to split a step into its products and everything else.
+static PRODUCT_NANOS: AtomicU64 = AtomicU64::new(0);
+
+/// Time spent in matrix products so far, summed over all threads.
+pub fn time_in_products() -> Duration {
+    Duration::from_nanos(PRODUCT_NANOS.load(Ordering::Relaxed))
+}
 
 thread_local! {
     static IN_GEMM: Cell<bool> = const { Cell::new(false) };
@@ -78,6 +89,7 @@ pub fn matmul<T: Copy + 'static + From<f32>>(
     // the checked destination block; `dst` does not alias `a` or `b` because it
     // is borrowed mutably.
     IN_GEMM.with(|f| f.set(true));
+    let start = Instant::now();
     unsafe {
         gemm::gemm(
             m,
@@ -101,6 +113,7 @@ pub fn matmul<T: Copy + 'static + From<f32>>(
             Parallelism::None,
         );
     }
+    PRODUCT_NANOS.fetch_add(start.elapsed().as_nanos() as u64, Ordering::Relaxed);
     IN_GEMM.with(|f| f.set(false));
 }
 
