@@ -144,10 +144,15 @@ from scipy.stats import gaussian_kde
 
 kde_points = rng.normal(size=(200, 2)) @ np.array([[1.0, 0.4], [0.0, 0.6]]) + np.array([3.0, -1.0])
 kde_queries = rng.normal(size=(10, 2)) * 1.5 + np.array([3.0, -1.0])
+# Far from every point: each kernel term underflows in a direct sum.
+kde_far = np.array([[40.0, 25.0], [-30.0, -45.0], [3.0, 20.0]])
+kde = gaussian_kde(kde_points.T, bw_method="scott")
 expected["kde"] = {
     "points": kde_points.tolist(),
     "queries": kde_queries.tolist(),
-    "logpdf": gaussian_kde(kde_points.T, bw_method="scott").logpdf(kde_queries.T).tolist(),
+    "logpdf": kde.logpdf(kde_queries.T).tolist(),
+    "far_queries": kde_far.tolist(),
+    "far_logpdf": kde.logpdf(kde_far.T).tolist(),
 }
 
 # Ledoit-Wolf shrinkage on few rows relative to the dimension, by scikit-learn,
