@@ -248,6 +248,41 @@ pub struct Evaluation {
     pub subspace_residual: Vec<f64>,
 }
 
+/// What [`Model::evaluator`] builds once and reuses for every chunk.
+pub struct Evaluator<'m> {
+    model: &'m Model,
+    /// Rows whitened and pushed through the flow at a time.
+    cap: usize,
+    workers: Workers,
+    bg_workers: Option<Workers>,
+    whitened: Vec<f32>,
+    rows: Vec<f32>,
+}
+
+impl Evaluator<'_> {
+    /// log p(x) and the other per-row statistics for the rows `idx` of `x`.
+    pub fn evaluate_rows(&mut self, x: &Dataset, idx: &[usize]) -> Evaluation {
+        let m = self.model;
+        let mut out = Evaluation::default();
+        for chunk in idx.chunks(self.cap) {
+            let n = chunk.len();
+            x.gather(chunk, &mut self.rows);
+            let mut residual = vec![0.0f64; n];
+            m.pre.transform(&self.rows, n, &mut self.whitened, Some(&mut residual));
+            out.subspace_residual.extend(residual);
+            m.evaluate_whitened(
+                &self.whitened[..n * m.dim()],
+                n,
+                &mut self.workers,
+                self.bg_workers.as_mut(),
+                &mut out,
+            );
+            out.dead_deviation.extend(self.rows.chunks(x.cols).map(|r| m.pre.dead_deviation(r)));
+        }
+        out
+    }
+}
+
 /// Rows per thread whitened and pushed through the flow at a time: bounds
 /// memory, and is where the scoring throughput peaked in `tidemark bench`.
 const CHUNK_ROWS: usize = 1024;
@@ -276,22 +311,21 @@ impl Model {
 
     /// log p(x) for the rows `idx` of `x`, in chunks of bounded size.
     pub fn evaluate_rows(&self, x: &Dataset, idx: &[usize], threads: usize) -> Evaluation {
-        let mut out = Evaluation::default();
-        let cap = (CHUNK_ROWS * threads.max(1)).min(idx.len()).max(1);
-        let mut workers = Workers::forward_only(&self.flow, threads, cap);
-        let mut bg_workers = self.background.as_ref().map(|bg| Workers::forward_only(bg, threads, cap));
-        let mut whitened = vec![0.0f32; cap * self.dim()];
-        let mut rows = Vec::new();
-        for chunk in idx.chunks(cap) {
-            let n = chunk.len();
-            x.gather(chunk, &mut rows);
-            let mut residual = vec![0.0f64; n];
-            self.pre.transform(&rows, n, &mut whitened, Some(&mut residual));
-            out.subspace_residual.extend(residual);
-            self.evaluate_whitened(&whitened[..n * self.dim()], n, &mut workers, bg_workers.as_mut(), &mut out);
-            out.dead_deviation.extend(rows.chunks(x.cols).map(|r| self.pre.dead_deviation(r)));
+        self.evaluator(threads, idx.len()).evaluate_rows(x, idx)
+    }
+
+    /// Flow workers and scratch for evaluating up to `max_rows` rows per
+    /// call, to keep across calls (`score` makes one for the whole file).
+    pub fn evaluator(&self, threads: usize, max_rows: usize) -> Evaluator<'_> {
+        let cap = (CHUNK_ROWS * threads.max(1)).min(max_rows).max(1);
+        Evaluator {
+            model: self,
+            cap,
+            workers: Workers::forward_only(&self.flow, threads, cap),
+            bg_workers: self.background.as_ref().map(|bg| Workers::forward_only(bg, threads, cap)),
+            whitened: vec![0.0f32; cap * self.dim()],
+            rows: Vec::new(),
         }
-        out
     }
 
     /// A checksum of everything that determines the model's scores, to

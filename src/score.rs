@@ -129,6 +129,23 @@ impl<'a> Scorer<'a> {
         Scorer { model, kde, per_bit: model.dim() as f64 * std::f64::consts::LN_2, calibration }
     }
 
+    /// Every row's values of `columns`, row-major into `out`, on `pool`'s
+    /// threads when given.
+    pub fn fill(&self, e: &Evaluation, columns: &[String], out: &mut [f64], pool: Option<&rayon::ThreadPool>) {
+        let row = |(r, slots): (usize, &mut [f64])| {
+            for (slot, c) in slots.iter_mut().zip(columns) {
+                *slot = self.value(e, c, r);
+            }
+        };
+        match pool {
+            Some(pool) => {
+                use rayon::prelude::*;
+                pool.install(|| out.par_chunks_mut(columns.len()).enumerate().for_each(row))
+            }
+            None => out.chunks_mut(columns.len()).enumerate().for_each(row),
+        }
+    }
+
     /// Value of column `name` for row `r` of `e`.
     pub fn value(&self, e: &Evaluation, name: &str, r: usize) -> f64 {
         let m = self.model;
@@ -263,6 +280,14 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
     let columns = select_columns(model, &opts.columns, opts.calibration.is_some())?;
     let format = Format::of(output)?;
     let scorer = Scorer::new(model, opts.calibration.as_ref());
+    let mut evaluator = model.evaluator(opts.threads, SCORE_CHUNK.min(x.rows));
+    // Score columns are filled in parallel (the multi-statistic KDE is the
+    // costly one) and written in row order by this thread.
+    let pool = (opts.threads > 1)
+        .then(|| rayon::ThreadPoolBuilder::new().num_threads(opts.threads).build())
+        .transpose()
+        .map_err(|e| Error::Invalid(format!("cannot start {} scoring threads: {e}", opts.threads)))?;
+    let mut values = vec![0.0f64; SCORE_CHUNK.min(x.rows) * columns.len()];
     // Per batch of the batch test: (sum of NLLs, rows), kept as the rows
     // stream past so memory grows with batches, not rows.
     let mut batches: Vec<(f64, usize)> = Vec::new();
@@ -275,7 +300,7 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
         }
         for start in (0..x.rows).step_by(SCORE_CHUNK) {
             let chunk: Vec<usize> = (start..(start + SCORE_CHUNK).min(x.rows)).collect();
-            let e = model.evaluate_rows(x, &chunk, opts.threads);
+            let e = evaluator.evaluate_rows(x, &chunk);
             if let Some(b) = &opts.batch {
                 for ll in &e.log_likelihood {
                     match batches.last_mut() {
@@ -287,9 +312,10 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
                     }
                 }
             }
-            for r in 0..chunk.len() {
-                let values: Vec<f64> = columns.iter().map(|c| scorer.value(&e, c, r)).collect();
-                write_row(w, format, &columns, &values).map_err(io)?;
+            let values = &mut values[..chunk.len() * columns.len()];
+            scorer.fill(&e, &columns, values, pool.as_ref());
+            for row in values.chunks(columns.len()) {
+                write_row(w, format, &columns, row).map_err(io)?;
             }
         }
         Ok(())
@@ -313,8 +339,11 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
 fn write_row(w: &mut dyn Write, format: Format, columns: &[String], values: &[f64]) -> std::io::Result<()> {
     match format {
         Format::Csv => {
-            let cells: Vec<String> = values.iter().map(|v| v.to_string()).collect();
-            writeln!(w, "{}", cells.join(","))
+            for (i, v) in values.iter().enumerate() {
+                let sep = if i == 0 { "" } else { "," };
+                write!(w, "{sep}{v}")?;
+            }
+            writeln!(w)
         }
         Format::Npy => {
             for v in values {
