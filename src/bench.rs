@@ -3,7 +3,7 @@
 //! with the achieved GFLOP/s as a fraction of a single-core f32 GEMM peak
 //! measured in the same run.
 
-use crate::flow::{Flow, FlowSpec, Workers};
+use crate::flow::{Flow, FlowSpec, Mixing, Workers};
 use crate::linalg::{matmul, time_in_products, View};
 use crate::train::Adam;
 use rand::rngs::StdRng;
@@ -75,8 +75,15 @@ pub fn gemm_peak(seconds: f64) -> f64 {
 
 /// Measure training and scoring throughput for `cfg`.
 pub fn run(cfg: &BenchConfig) -> BenchResult {
-    let spec =
-        FlowSpec { dim: cfg.dim, layers: cfg.layers, hidden: cfg.hidden, depth: cfg.depth, clamp: 3.0, classes: 0 };
+    let spec = FlowSpec {
+        dim: cfg.dim,
+        layers: cfg.layers,
+        hidden: cfg.hidden,
+        depth: cfg.depth,
+        clamp: 3.0,
+        classes: 0,
+        mixing: Mixing::Permutation,
+    };
     let mut flow = Flow::new(spec.clone(), 7);
     let mut rng = StdRng::seed_from_u64(3);
     // Small non-zero output layers, so the coupling is not the identity.
@@ -170,7 +177,8 @@ mod tests {
     /// 32*128 + 128*128 + 128*64 = 28,672 multiply-adds per layer.
     #[test]
     fn forward_macs_by_hand() {
-        let spec = FlowSpec { dim: 64, layers: 8, hidden: 128, depth: 2, clamp: 3.0, classes: 0 };
+        let spec =
+            FlowSpec { dim: 64, layers: 8, hidden: 128, depth: 2, clamp: 3.0, classes: 0, mixing: Mixing::Permutation };
         assert_eq!(forward_macs(&spec), 8.0 * 28_672.0);
     }
 }

@@ -9,6 +9,11 @@
 //!   y = [p1, p2 * exp(s) + t]
 //! log|det dy/dx| = sum(log_scale) + sum(s).
 //!
+//! Optionally ([`Mixing::Lu`]) a learned invertible linear map follows the
+//! permutation: p <- W p with W = L (U + diag(exp(lambda))), L unit lower-
+//! and U strictly upper-triangular (an LU parameterisation), adding
+//! sum(lambda) to the log-determinant. It starts at W = I.
+//!
 //! The forward pass, its backward pass and the inverse are written by hand
 //! over flat f32 buffers with a reusable [`Workspace`], so a training step
 //! allocates nothing once the workspace exists. The candle implementation in
@@ -41,6 +46,20 @@ pub struct FlowSpec {
     /// Classes with a learned base mean each (0: one standard normal base).
     #[serde(default)]
     pub classes: usize,
+    /// What mixes features between coupling layers.
+    #[serde(default)]
+    pub mixing: Mixing,
+}
+
+/// What mixes features between coupling layers.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, serde::Serialize, serde::Deserialize, clap::ValueEnum)]
+#[serde(rename_all = "lowercase")]
+pub enum Mixing {
+    /// A fixed, seeded permutation.
+    #[default]
+    Permutation,
+    /// The permutation followed by a learned LU-parameterised linear map.
+    Lu,
 }
 
 /// Where one linear layer's weight (`out x inp`, row-major) and bias live in
@@ -58,6 +77,9 @@ pub struct LinearSlot {
 pub struct LayerSlots {
     pub log_scale: usize,
     pub bias: usize,
+    /// The LU mixing map's `dim x dim` block (with [`Mixing::Lu`]): L below
+    /// the diagonal, U above it, lambda on it.
+    pub mix: Option<usize>,
     pub linears: Vec<LinearSlot>,
 }
 
@@ -82,6 +104,7 @@ impl FlowSpec {
         for _ in 0..self.layers {
             let log_scale = take(self.dim);
             let bias = take(self.dim);
+            let mix = (self.mixing == Mixing::Lu).then(|| take(self.dim * self.dim));
             let mut shapes = vec![(self.hidden, d1)];
             shapes.extend(std::iter::repeat_n((self.hidden, self.hidden), self.depth - 1));
             shapes.push((2 * d2, self.hidden));
@@ -89,7 +112,7 @@ impl FlowSpec {
                 .into_iter()
                 .map(|(out, inp)| LinearSlot { weight: take(out * inp), bias: take(out), out, inp })
                 .collect();
-            layers.push(LayerSlots { log_scale, bias, linears });
+            layers.push(LayerSlots { log_scale, bias, mix, linears });
         }
         let class_means = take(self.classes * self.dim);
         (layers, class_means, next)
@@ -144,6 +167,9 @@ impl Flow {
         let dim = self.spec.dim;
         for layer in &self.slots {
             self.params[layer.log_scale..layer.log_scale + 2 * dim].fill(0.0);
+            if let Some(mix) = layer.mix {
+                self.params[mix..mix + dim * dim].fill(0.0);
+            }
             let last = layer.linears.last().expect("conditioner has layers");
             self.params[last.weight..last.weight + last.out * last.inp + last.out].fill(0.0);
         }
@@ -271,6 +297,27 @@ pub struct Workspace {
     an_gshift: Vec<f32>,
     /// One row of a coupling layer's output, before the next ActNorm.
     row: Vec<f32>,
+    /// LU mixing's buffers (empty without it).
+    mix: MixBuffers,
+}
+
+/// Buffers of LU mixing in a workspace.
+struct MixBuffers {
+    /// Rows per block.
+    cap: usize,
+    /// `kept` blocks of each layer's permuted ActNorm output before the
+    /// mixing map (`perm` holds it after).
+    unmixed: Vec<f32>,
+    /// `kept` blocks of the composed `dim x dim` map W.
+    w: Vec<f32>,
+    /// Dense L and U' scratch.
+    l: Vec<f32>,
+    u: Vec<f32>,
+    /// Backward scratch: dL/dW, a `dim x dim` product, and the gradient
+    /// with respect to the unmixed rows.
+    gw: Vec<f32>,
+    t: Vec<f32>,
+    g_unmixed: Vec<f32>,
 }
 
 impl Workspace {
@@ -290,6 +337,7 @@ impl Workspace {
         let d2 = spec.split().1;
         let (dim, h) = (spec.dim, spec.hidden);
         let back = |n: usize| vec![0.0; if backward { n } else { 0 }];
+        let lu = |n: usize| vec![0.0; if spec.mixing == Mixing::Lu { n } else { 0 }];
         Workspace {
             cap,
             kept,
@@ -311,6 +359,16 @@ impl Workspace {
             an_gscale: vec![0.0; spec.dim],
             an_gshift: vec![0.0; spec.dim],
             row: vec![0.0; spec.dim],
+            mix: MixBuffers {
+                cap,
+                unmixed: lu(kept * cap * dim),
+                w: lu(kept * dim * dim),
+                l: lu(dim * dim),
+                u: lu(dim * dim),
+                gw: if backward { lu(dim * dim) } else { Vec::new() },
+                t: if backward { lu(dim * dim) } else { Vec::new() },
+                g_unmixed: if backward { lu(cap * dim) } else { Vec::new() },
+            },
         }
     }
 
@@ -406,7 +464,12 @@ fn forward_layer(flow: &Flow, k: usize, ws: &mut Workspace, rows: usize, dropout
     let (d1, d2) = spec.split();
     let slot = &flow.slots[k];
     let log_scale = &flow.params[slot.log_scale..slot.log_scale + dim];
-    let actnorm_logdet: f64 = log_scale.iter().map(|&v| v as f64).sum();
+    let mut layer_logdet: f64 = log_scale.iter().map(|&v| v as f64).sum();
+    if let Some(mix) = slot.mix {
+        let b = k % ws.kept;
+        let p = &mut ws.perm[b * ws.cap * dim..b * ws.cap * dim + rows * dim];
+        layer_logdet += ws.mix.forward(&flow.params[mix..mix + dim * dim], dim, b, p);
+    }
     let last = k + 1 == spec.layers;
     if !last {
         permuted_actnorm(flow, k + 1, &mut ws.an_scale, &mut ws.an_shift);
@@ -446,7 +509,96 @@ fn forward_layer(flow: &Flow, k: usize, ws: &mut Workspace, rows: usize, dropout
         if !last {
             actnorm_permute_row(&ws.row, &flow.perms[k + 1], &ws.an_scale, &ws.an_shift, nr);
         }
-        ws.logdet[r] += actnorm_logdet + sr.iter().map(|&v| v as f64).sum::<f64>();
+        ws.logdet[r] += layer_logdet + sr.iter().map(|&v| v as f64).sum::<f64>();
+    }
+}
+
+/// Dense L (unit lower-triangular) and U' = U + diag(exp(lambda)) from an
+/// LU block (L below the diagonal, U above, lambda on it).
+fn lu_factors(block: &[f32], dim: usize, l: &mut [f32], u: &mut [f32]) {
+    for i in 0..dim {
+        for j in 0..dim {
+            let v = block[i * dim + j];
+            let (lv, uv) = match j.cmp(&i) {
+                std::cmp::Ordering::Less => (v, 0.0),
+                std::cmp::Ordering::Equal => (1.0, v.exp()),
+                std::cmp::Ordering::Greater => (0.0, v),
+            };
+            l[i * dim + j] = lv;
+            u[i * dim + j] = uv;
+        }
+    }
+}
+
+impl MixBuffers {
+    /// LU mixing of the rows `p` (`rows x dim`, workspace block `b`): keeps
+    /// them as they are in `unmixed`, composes W = L U' from `block` into
+    /// block `b` of `w`, and replaces the rows by `p W^T`. Returns the map's
+    /// log-determinant, sum(lambda).
+    fn forward(&mut self, block: &[f32], dim: usize, b: usize, p: &mut [f32]) -> f64 {
+        let rows = p.len() / dim;
+        lu_factors(block, dim, &mut self.l, &mut self.u);
+        let w = &mut self.w[b * dim * dim..(b + 1) * dim * dim];
+        matmul(w, dim, false, View::rows(&self.l, dim, dim, dim), View::rows(&self.u, dim, dim, dim));
+        let unmixed = &mut self.unmixed[b * self.cap * dim..b * self.cap * dim + rows * dim];
+        unmixed.copy_from_slice(p);
+        matmul(p, dim, false, View::rows(unmixed, rows, dim, dim), View::transposed(w, dim, dim));
+        (0..dim).map(|j| block[j * dim + j] as f64).sum()
+    }
+
+    /// The rows of block `b` before mixing.
+    fn unmixed(&self, dim: usize, b: usize, rows: usize) -> &[f32] {
+        &self.unmixed[b * self.cap * dim..b * self.cap * dim + rows * dim]
+    }
+
+    /// Backward of LU mixing at layer `k`: `g` holds the gradient with
+    /// respect to the mixed rows and leaves with the gradient with respect
+    /// to the unmixed ones (g W); the gradient of the LU `block` goes to
+    /// `out`: with W = L U', dL = dW U'^T below the diagonal, dU' = L^T dW on
+    /// and above it, and d lambda = diag(dU') exp(lambda) - `logdet_grad`
+    /// (the log-det term's share).
+    fn backward(&mut self, block: &[f32], dim: usize, k: usize, g: &mut [f32], logdet_grad: f32, out: &mut [f32]) {
+        let (rows, dd) = (g.len() / dim, dim * dim);
+        let unmixed = &self.unmixed[k * self.cap * dim..k * self.cap * dim + rows * dim];
+        matmul(&mut self.gw, dim, false, View::transposed(g, rows, dim), View::rows(unmixed, rows, dim, dim));
+        let g_unmixed = &mut self.g_unmixed[..rows * dim];
+        matmul(
+            g_unmixed,
+            dim,
+            false,
+            View::rows(g, rows, dim, dim),
+            View::rows(&self.w[k * dd..(k + 1) * dd], dim, dim, dim),
+        );
+        g.copy_from_slice(g_unmixed);
+        lu_factors(block, dim, &mut self.l, &mut self.u);
+        let gw = View::rows(&self.gw, dim, dim, dim);
+        matmul(&mut self.t, dim, false, gw, View::transposed(&self.u, dim, dim));
+        for i in 0..dim {
+            out[i * dim..i * dim + i].copy_from_slice(&self.t[i * dim..i * dim + i]);
+        }
+        matmul(&mut self.t, dim, false, View::transposed(&self.l, dim, dim), gw);
+        for i in 0..dim {
+            out[i * dim + i + 1..(i + 1) * dim].copy_from_slice(&self.t[i * dim + i + 1..(i + 1) * dim]);
+            out[i * dim + i] = self.t[i * dim + i] * block[i * dim + i].exp() - logdet_grad;
+        }
+    }
+}
+
+/// Undo LU mixing on rows (`rows x dim`) in place: solve L U' p = q for
+/// each row, in f64.
+fn unmix_rows(block: &[f32], dim: usize, q: &mut [f32]) {
+    let mut y = vec![0.0f64; dim];
+    for row in q.chunks_exact_mut(dim) {
+        for i in 0..dim {
+            y[i] = row[i] as f64 - (0..i).map(|j| block[i * dim + j] as f64 * y[j]).sum::<f64>();
+        }
+        for i in (0..dim).rev() {
+            let upper: f64 = (i + 1..dim).map(|j| block[i * dim + j] as f64 * y[j]).sum();
+            y[i] = (y[i] - upper) / (block[i * dim + i] as f64).exp();
+        }
+        for (v, &yv) in row.iter_mut().zip(&y) {
+            *v = yv as f32;
+        }
     }
 }
 
@@ -708,6 +860,16 @@ pub fn backward_nll(
                 src_is_a = Some(!src_is_a.unwrap_or(false));
             }
         }
+        // Through LU mixing: `g` becomes the gradient of the unmixed rows,
+        // which are the ActNorm output.
+        let p = match slot.mix {
+            Some(mix) => {
+                let (block, out) = (&params[mix..mix + dim * dim], &mut grad[mix..mix + dim * dim]);
+                ws.mix.backward(block, dim, k, g, scale * rows as f32, out);
+                ws.mix.unmixed(dim, k, rows)
+            }
+            None => p,
+        };
         // ActNorm's gradients in permuted order, then each row's gradient
         // back through the permutation and the scale.
         permuted_actnorm(flow, k, &mut ws.an_scale, &mut ws.an_shift);
@@ -756,6 +918,9 @@ pub fn inverse(flow: &Flow, z: &[f32], rows: usize) -> Vec<f32> {
             }
         }
         let slot = &flow.slots[k];
+        if let Some(mix) = slot.mix {
+            unmix_rows(&flow.params[mix..mix + dim * dim], dim, &mut p);
+        }
         for (j, &src) in flow.perms[k].iter().enumerate() {
             let src = src as usize;
             let inv = (-flow.params[slot.log_scale + src]).exp();
@@ -997,7 +1162,7 @@ mod tests {
     }
 
     fn spec(dim: usize, layers: usize, hidden: usize, depth: usize) -> FlowSpec {
-        FlowSpec { dim, layers, hidden, depth, clamp: 3.0, classes: 0 }
+        FlowSpec { dim, layers, hidden, depth, clamp: 3.0, classes: 0, mixing: Mixing::Permutation }
     }
 
     /// A flow with every parameter random (non-identity ActNorm, non-zero
@@ -1039,6 +1204,7 @@ mod tests {
         let mut tensors = vec![(flow.class_means, flow.spec.classes * dim)];
         for layer in &flow.slots {
             tensors.extend([(layer.log_scale, dim), (layer.bias, dim)]);
+            tensors.extend(layer.mix.map(|at| (at, dim * dim)));
             for lin in &layer.linears {
                 tensors.extend([(lin.weight, lin.out * lin.inp), (lin.bias, lin.out)]);
             }
@@ -1057,8 +1223,16 @@ mod tests {
     #[test]
     fn gradients_match_candle_autograd() {
         init_candle();
-        for (dim, layers, hidden, depth, classes) in [(7, 3, 16, 2, 0), (2, 2, 8, 1, 3), (12, 2, 24, 3, 2)] {
-            let flow = random_flow(FlowSpec { classes, ..spec(dim, layers, hidden, depth) }, 11 + dim as u64);
+        use Mixing::{Lu, Permutation};
+        let cases = [
+            (7, 3, 16, 2, 0, Permutation),
+            (2, 2, 8, 1, 3, Permutation),
+            (12, 2, 24, 3, 2, Permutation),
+            (7, 3, 16, 2, 0, Lu),
+            (5, 2, 8, 1, 2, Lu),
+        ];
+        for (dim, layers, hidden, depth, classes, mixing) in cases {
+            let flow = random_flow(FlowSpec { classes, mixing, ..spec(dim, layers, hidden, depth) }, 11 + dim as u64);
             let rows = 64;
             let x = normal(rows, dim, 5);
             let labels: Vec<u32> = (0..rows as u32).map(|r| r % classes.max(1) as u32).collect();
@@ -1070,21 +1244,24 @@ mod tests {
         }
     }
 
-    /// The latent and log-determinant of the forward pass agree with candle's.
+    /// The latent and log-determinant of the forward pass agree with candle's,
+    /// with either mixing.
     #[test]
     fn forward_matches_candle() {
         init_candle();
-        let flow = random_flow(spec(5, 4, 12, 2), 3);
-        let rows = 20;
-        let x = normal(rows, 5, 9);
-        let mut ws = Workspace::new(&flow.spec, rows);
-        forward(&flow, &mut ws, &x, rows, None);
-        let r = reference::evaluate(&flow, &x, None, rows, None).unwrap();
-        for (a, b) in ws.latent(5, rows).iter().zip(&r.z) {
-            assert!((*a as f64 - b).abs() < 1e-4 * b.abs().max(1.0));
-        }
-        for (a, b) in ws.logdet[..rows].iter().zip(&r.logdet) {
-            assert!((a - b).abs() < 1e-4 * b.abs().max(1.0));
+        for mixing in [Mixing::Permutation, Mixing::Lu] {
+            let flow = random_flow(FlowSpec { mixing, ..spec(5, 4, 12, 2) }, 3);
+            let rows = 20;
+            let x = normal(rows, 5, 9);
+            let mut ws = Workspace::new(&flow.spec, rows);
+            forward(&flow, &mut ws, &x, rows, None);
+            let r = reference::evaluate(&flow, &x, None, rows, None).unwrap();
+            for (a, b) in ws.latent(5, rows).iter().zip(&r.z) {
+                assert!((*a as f64 - b).abs() < 1e-4 * b.abs().max(1.0), "{mixing:?}: {a} vs {b}");
+            }
+            for (a, b) in ws.logdet[..rows].iter().zip(&r.logdet) {
+                assert!((a - b).abs() < 1e-4 * b.abs().max(1.0), "{mixing:?}: {a} vs {b}");
+            }
         }
     }
 
@@ -1114,8 +1291,8 @@ mod tests {
     /// the training workspace does, for even and odd depths.
     #[test]
     fn forward_only_workspace_matches_training_workspace() {
-        for layers in [1, 2, 3, 5] {
-            let flow = random_flow(spec(7, layers, 16, 2), 40 + layers as u64);
+        for (layers, mixing) in [1, 2, 3, 5].into_iter().flat_map(|l| [(l, Mixing::Permutation), (l, Mixing::Lu)]) {
+            let flow = random_flow(FlowSpec { mixing, ..spec(7, layers, 16, 2) }, 40 + layers as u64);
             let rows = 33;
             let x = normal(rows, 7, 12);
             let (mut full, mut lean) = (Workspace::new(&flow.spec, rows), Workspace::forward_only(&flow.spec, rows));
@@ -1128,12 +1305,13 @@ mod tests {
 
     /// Change of variables: ln|det J| of the forward map, with J by central
     /// finite differences of the f64 reference map, equals the analytic
-    /// log-determinant.
+    /// log-determinant, with either mixing.
     #[test]
     fn log_determinant_matches_finite_difference_jacobian() {
         init_candle();
-        for dim in [2usize, 5, 8] {
-            let flow = random_flow(spec(dim, 3, 16, 2), 21 + dim as u64);
+        let cases = [2usize, 5, 8].into_iter().flat_map(|d| [(d, Mixing::Permutation), (d, Mixing::Lu)]);
+        for (dim, mixing) in cases {
+            let flow = random_flow(FlowSpec { mixing, ..spec(dim, 3, 16, 2) }, 21 + dim as u64);
             let x = normal(1, dim, 77);
             let mut ws = Workspace::new(&flow.spec, 1);
             forward(&flow, &mut ws, &x, 1, None);
@@ -1150,14 +1328,30 @@ mod tests {
                 }
             }
             let fd = jac.determinant().abs().ln();
-            assert!((fd - ws.logdet[0]).abs() < 1e-3, "dim {dim}: fd {fd} vs analytic {}", ws.logdet[0]);
+            assert!((fd - ws.logdet[0]).abs() < 1e-3, "dim {dim} {mixing:?}: fd {fd} vs analytic {}", ws.logdet[0]);
         }
     }
 
-    /// inverse(forward(x)) = x, for a random flow, an identity flow and odd D.
+    /// inverse(forward(x)) = x, for random flows with either mixing, an
+    /// identity flow and odd D.
     #[test]
     fn inverse_undoes_forward() {
-        for (flow, dim) in [(random_flow(spec(9, 5, 32, 2), 4), 9), (Flow::new(spec(6, 3, 8, 1), 4), 6)] {
+        let lu = FlowSpec { mixing: Mixing::Lu, ..spec(9, 5, 32, 2) };
+        // LU entries of +-0.04: at +-0.4, five random mixing maps stretch the
+        // latent to |z| ~ 500 and f32 round-off in the forward pass alone
+        // reaches 1e-3 after inversion (one such layer inverts to 6e-7).
+        let mut lu_flow = random_flow(lu.clone(), 4);
+        for slot in lu_flow.slots.clone() {
+            let at = slot.mix.expect("LU block");
+            lu_flow.params[at..at + 81].iter_mut().for_each(|v| *v *= 0.1);
+        }
+        let flows = [
+            (random_flow(spec(9, 5, 32, 2), 4), 9),
+            (lu_flow, 9),
+            (Flow::new(spec(6, 3, 8, 1), 4), 6),
+            (Flow::new(FlowSpec { dim: 6, ..lu }, 4), 6),
+        ];
+        for (flow, dim) in flows {
             let rows = 100;
             let x = normal(rows, dim, 1);
             let mut ws = Workspace::new(&flow.spec, rows);

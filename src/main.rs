@@ -8,6 +8,7 @@ use std::process::ExitCode;
 use std::sync::atomic::AtomicBool;
 use std::sync::Arc;
 use tidemark::calibrate::{self, Calibration};
+use tidemark::flow::Mixing;
 use tidemark::model::{Kind, Model};
 use tidemark::preprocess::Method;
 use tidemark::train::{default_threads, FitOptions, Run};
@@ -191,6 +192,9 @@ struct FitArgs {
     /// Soft clamp of the coupling log-scale [default: 3].
     #[arg(long)]
     clamp: Option<f32>,
+    /// What mixes features between coupling layers [default: permutation].
+    #[arg(long, value_enum)]
+    mixing: Option<Mixing>,
     /// Leading principal components the flow models; the rest are standard normal [default: all, or a third when rows per dimension < 50].
     #[arg(long)]
     flow_dims: Option<usize>,
@@ -282,6 +286,7 @@ fn run(cli: Cli) -> Result<()> {
                 hidden: a.hidden,
                 depth: a.depth,
                 clamp: a.clamp,
+                mixing: a.mixing,
                 flow_dims: a.flow_dims,
                 epochs: a.epochs,
                 batch_size: a.batch_size,

@@ -17,8 +17,20 @@ use safetensors::{Dtype, SafeTensors};
 use std::collections::HashMap;
 use std::path::Path;
 
-/// Version of the model file layout; bumped on any incompatible change.
-pub const FORMAT_VERSION: u32 = 1;
+/// Newest version of the model file layout; bumped on any incompatible
+/// change. Version 2 added LU mixing; a model without it is still written as
+/// version 1, so that older builds read it.
+pub const FORMAT_VERSION: u32 = 2;
+
+/// The oldest version that can hold a flow with this mixing (builds before
+/// version 2 would read an LU-mixed flow as a permuted one, so they must
+/// refuse it).
+pub fn format_version_for(mixing: crate::flow::Mixing) -> u32 {
+    match mixing {
+        crate::flow::Mixing::Permutation => 1,
+        crate::flow::Mixing::Lu => 2,
+    }
+}
 /// Key of the JSON document in the safetensors `__metadata__`.
 const META_KEY: &str = "tidemark";
 
@@ -543,7 +555,7 @@ impl Model {
             .ok_or_else(|| Error::model(path, "is not a tidemark model (no tidemark metadata)"))?;
         let meta: Meta =
             serde_json::from_str(json).map_err(|e| Error::model(path, format!("bad model metadata: {e}")))?;
-        if meta.format_version != FORMAT_VERSION {
+        if !(1..=FORMAT_VERSION).contains(&meta.format_version) {
             return Err(Error::model(
                 path,
                 format!(
@@ -602,9 +614,11 @@ impl Model {
         if meta.flow.dim != meta.flow_dims || meta.flow_dims > k || meta.flow.depth == 0 {
             return Err(Error::model(path, "flow dimensions do not match the preprocessing"));
         }
-        let flow = read_flow(path, &get, "flow", &meta.flow)?;
+        let flow = read_flow(path, &get, "flow", &meta.flow, meta.format_version)?;
         let background = match &meta.background {
-            Some(spec) if spec.dim == meta.flow_dims => Some(read_flow(path, &get, "background", spec)?),
+            Some(spec) if spec.dim == meta.flow_dims => {
+                Some(read_flow(path, &get, "background", spec, meta.format_version)?)
+            }
             Some(_) => return Err(Error::model(path, "background flow dimensions do not match")),
             None => None,
         };
@@ -670,6 +684,9 @@ fn flow_tensors(flow: &Flow, prefix: &str, put: &mut dyn FnMut(&str, Dtype, Vec<
         put(&format!("{prefix}.{k}.actnorm.bias"), Dtype::F32, vec![dim], le_bytes_f32(&p[slot.bias..slot.bias + dim]));
         let perm: Vec<usize> = flow.perms[k].iter().map(|&v| v as usize).collect();
         put(&format!("{prefix}.{k}.permutation"), Dtype::I64, vec![dim], le_bytes_i64(&perm));
+        if let Some(mix) = slot.mix {
+            put(&format!("{prefix}.{k}.mixing.lu"), Dtype::F32, vec![dim, dim], le_bytes_f32(&p[mix..mix + dim * dim]));
+        }
         for (i, lin) in slot.linears.iter().enumerate() {
             let w = &p[lin.weight..lin.weight + lin.out * lin.inp];
             put(&format!("{prefix}.{k}.net.{i}.weight"), Dtype::F32, vec![lin.out, lin.inp], le_bytes_f32(w));
@@ -693,12 +710,16 @@ fn read_flow(
     get: &dyn Fn(&str, Dtype, usize) -> Result<Vec<u8>>,
     prefix: &str,
     spec: &FlowSpec,
+    version: u32,
 ) -> Result<Flow> {
     if spec.depth == 0 || (spec.layers > 0 && spec.dim < 2) {
         return Err(Error::model(path, format!("{prefix}: invalid flow shape")));
     }
     let mut flow = Flow::new(spec.clone(), 0);
     let dim = flow.spec.dim;
+    if version < format_version_for(spec.mixing) {
+        return Err(Error::model(path, format!("{prefix}: LU mixing in a version {version} model file")));
+    }
     let fill = |flow: &mut Flow, name: String, at: usize, n: usize| -> Result<()> {
         let vals = from_f32(&get(&name, Dtype::F32, n)?);
         flow.params[at..at + n].copy_from_slice(&vals);
@@ -708,6 +729,9 @@ fn read_flow(
         let slot = flow.slots[k].clone();
         fill(&mut flow, format!("{prefix}.{k}.actnorm.log_scale"), slot.log_scale, dim)?;
         fill(&mut flow, format!("{prefix}.{k}.actnorm.bias"), slot.bias, dim)?;
+        if let Some(mix) = slot.mix {
+            fill(&mut flow, format!("{prefix}.{k}.mixing.lu"), mix, dim * dim)?;
+        }
         for (i, lin) in slot.linears.iter().enumerate() {
             fill(&mut flow, format!("{prefix}.{k}.net.{i}.weight"), lin.weight, lin.out * lin.inp)?;
             fill(&mut flow, format!("{prefix}.{k}.net.{i}.bias"), lin.bias, lin.out)?;

@@ -6,10 +6,10 @@
 
 use crate::data::{mix64, Dataset};
 use crate::error::{Error, Result};
-use crate::flow::{Flow, FlowSpec, Workers, HALF_LN_2PI};
+use crate::flow::{Flow, FlowSpec, Mixing, Workers, HALF_LN_2PI};
 use crate::model::{
-    leading_columns_into, ClassCount, Kind, Meta, Model, PreprocessingMeta, ScoringMeta, ScoringRefs, Spread,
-    TrainingSummary, FORMAT_VERSION,
+    format_version_for, leading_columns_into, ClassCount, Kind, Meta, Model, PreprocessingMeta, ScoringMeta,
+    ScoringRefs, Spread, TrainingSummary,
 };
 use crate::preprocess::{ColumnStats, Covariance, Method, Preprocessor, TransformScratch, DEFAULT_DEAD_THRESHOLD};
 use crate::simd::elementwise;
@@ -35,6 +35,7 @@ pub struct FitOptions {
     pub hidden: Option<usize>,
     pub depth: Option<usize>,
     pub clamp: Option<f32>,
+    pub mixing: Option<Mixing>,
     pub flow_dims: Option<usize>,
     pub epochs: Option<usize>,
     pub batch_size: Option<usize>,
@@ -77,6 +78,7 @@ impl FitOptions {
             hidden: self.hidden.or(fallback.hidden),
             depth: self.depth.or(fallback.depth),
             clamp: self.clamp.or(fallback.clamp),
+            mixing: self.mixing.or(fallback.mixing),
             flow_dims: self.flow_dims.or(fallback.flow_dims),
             epochs: self.epochs.or(fallback.epochs),
             batch_size: self.batch_size.or(fallback.batch_size),
@@ -117,6 +119,10 @@ pub struct Settings {
     pub hidden: usize,
     pub depth: usize,
     pub clamp: f32,
+    /// What mixes features between coupling layers (models made before the
+    /// option existed used the permutation).
+    #[serde(default)]
+    pub mixing: Mixing,
     pub flow_dims: usize,
     pub epochs: usize,
     pub batch_size: usize,
@@ -185,6 +191,7 @@ impl Settings {
             hidden: o.hidden.unwrap_or((2 * flow_dims).clamp(64, 512).next_multiple_of(32)),
             depth: o.depth.unwrap_or(2),
             clamp: o.clamp.unwrap_or(3.0),
+            mixing: o.mixing.unwrap_or_default(),
             flow_dims,
             epochs: o.epochs.unwrap_or((20_000usize.div_ceil(steps_per_epoch)).clamp(20, 200)),
             batch_size,
@@ -504,6 +511,7 @@ fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
         hidden: settings.hidden,
         depth: settings.depth,
         clamp: settings.clamp,
+        mixing: settings.mixing,
         classes: if kind == Kind::Gaussian { 0 } else { classes.len() },
     };
     let mut flow = Flow::new(spec, settings.seed);
@@ -631,7 +639,7 @@ fn labels_checksum(labels: &[i64]) -> u64 {
 fn skeleton_meta(cols: usize, pre: &Preprocessor, flow: &Flow, s: &Settings, classes: Vec<ClassCount>) -> Result<Meta> {
     Ok(Meta {
         format: "tidemark-model".into(),
-        format_version: FORMAT_VERSION,
+        format_version: format_version_for(flow.spec.mixing),
         created_by: format!("tidemark {}", env!("CARGO_PKG_VERSION")),
         input_dim: cols,
         preprocessing: PreprocessingMeta {

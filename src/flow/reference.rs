@@ -43,7 +43,25 @@ fn forward(
         vars.push((slot.log_scale, ls));
         vars.push((slot.bias, b));
         let perm = Tensor::from_vec(flow.perms[k].clone(), spec.dim, dev)?;
-        let p = a.index_select(&perm, 1)?;
+        let mut p = a.index_select(&perm, 1)?;
+        if let Some(at) = slot.mix {
+            // W = L (U + diag(exp(lambda))) from one block: L strictly below
+            // the diagonal (plus I), U strictly above, lambda on it.
+            let m = var(flow, at, &[spec.dim, spec.dim], dev)?;
+            let mask = |keep: &dyn Fn(usize, usize) -> bool| {
+                let n = spec.dim;
+                let v: Vec<f64> = (0..n * n).map(|e| if keep(e / n, e % n) { 1.0 } else { 0.0 }).collect();
+                Tensor::from_vec(v, (n, n), dev)
+            };
+            let eye = Tensor::eye(spec.dim, DType::F64, dev)?;
+            let lambda = (m.as_tensor() * &eye)?.sum(1)?;
+            let l = ((m.as_tensor() * mask(&|i, j| j < i)?)? + &eye)?;
+            let u = ((m.as_tensor() * mask(&|i, j| j > i)?)? + eye.broadcast_mul(&lambda.exp()?.unsqueeze(0)?)?)?;
+            let w = l.matmul(&u)?;
+            p = p.matmul(&w.t()?)?;
+            logdet = logdet.broadcast_add(&lambda.sum_all()?)?;
+            vars.push((at, m));
+        }
         let p1 = p.narrow(1, 0, d1)?;
         let p2 = p.narrow(1, d1, d2)?;
         let mut net = p1.clone();
