@@ -123,8 +123,17 @@ impl Meta {
         line(
             "flow",
             format!(
-                "{} coupling layers over the leading {} of {} whitened dims; conditioner {} x {} (soft clamp {})",
-                self.flow.layers, self.flow_dims, p.whitened_dims, self.flow.depth, self.flow.hidden, self.flow.clamp
+                "{} coupling layers over the leading {} of {} whitened dims; conditioner {} x {} (soft clamp {}); {}",
+                self.flow.layers,
+                self.flow_dims,
+                p.whitened_dims,
+                self.flow.depth,
+                self.flow.hidden,
+                self.flow.clamp,
+                match self.flow.mixing {
+                    crate::flow::Mixing::Permutation => "permutations between layers",
+                    crate::flow::Mixing::Lu => "permutations and learned LU mixing between layers",
+                }
             ),
         );
         line("seed", self.seed.to_string());

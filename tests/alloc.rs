@@ -44,8 +44,8 @@ fn a_training_step_allocates_nothing_after_the_first() {
     let all: Vec<usize> = (0..n).collect();
     let pre = Preprocessor::fit(&data, &all, Method::Pca, DEFAULT_DEAD_THRESHOLD).unwrap();
     let k = pre.dim();
-    for threads in [1, 2] {
-        let spec = FlowSpec { dim: k, layers: 4, hidden: 64, depth: 2, clamp: 3.0, classes: 3, mixing: Mixing::Lu };
+    for (threads, mixing) in [1, 2].into_iter().flat_map(|t| [(t, Mixing::Permutation), (t, Mixing::Lu)]) {
+        let spec = FlowSpec { dim: k, layers: 4, hidden: 64, depth: 2, clamp: 3.0, classes: 3, mixing };
         let mut flow = Flow::new(spec, 1);
         let classes: Vec<u32> = (0..rows as u32).map(|r| r % 3).collect();
         let mut workers = Workers::new(&flow, threads, rows);
@@ -68,11 +68,17 @@ fn a_training_step_allocates_nothing_after_the_first() {
             step(&mut flow, s);
         }
         let per_step: Vec<(usize, usize)> = (3..8).map(|s| step(&mut flow, s)).collect();
-        assert!(per_step.iter().all(|&(ours, _)| ours == 0), "{threads} thread(s): (ours, gemm's) {per_step:?}");
+        assert!(
+            per_step.iter().all(|&(ours, _)| ours == 0),
+            "{threads} thread(s), {mixing:?}: (ours, gemm's) {per_step:?}"
+        );
         // Matrix products per step: (depth + 1) per layer forward, twice that
-        // backward (weight and input gradients), in each thread's share, and
-        // the whitening projection; gemm allocates one or two buffers in each.
-        let products = threads * 4 * 3 * 3 + 1;
-        assert!(per_step.iter().all(|&(_, g)| g <= 2 * products), "{threads} thread(s): {per_step:?}");
+        // backward (weight and input gradients), and with LU mixing two more
+        // forward (compose W, apply it) and four backward, in each thread's
+        // share; and the whitening projection. gemm allocates one or two
+        // buffers in each.
+        let lu = if mixing == Mixing::Lu { 6 } else { 0 };
+        let products = threads * 4 * (3 * 3 + lu) + 1;
+        assert!(per_step.iter().all(|&(_, g)| g <= 2 * products), "{threads} thread(s), {mixing:?}: {per_step:?}");
     }
 }
