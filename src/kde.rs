@@ -121,8 +121,8 @@ fn exp_f64(x: f64) -> f64 {
     // 1.5 * 2^52: adding and subtracting it rounds to the nearest integer.
     const ROUND: f64 = 6_755_399_441_055_744.0;
     // ln 2 split so that k * LN2_HI is exact for |k| < 2^11 (fdlibm's split).
-    const LN2_HI: f64 = 6.931_471_803_691_238_164_90e-1;
-    const LN2_LO: f64 = 1.908_214_929_270_587_700_02e-10;
+    const LN2_HI: f64 = 0.693_147_180_369_123_8;
+    const LN2_LO: f64 = 1.908_214_929_270_587_7e-10;
     let x = x.max(-708.0).min(0.0);
     let rounded = x * std::f64::consts::LOG2_E + ROUND;
     let k = rounded - ROUND;
