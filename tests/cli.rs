@@ -346,3 +346,31 @@ fn calibrate_then_score_with_p_values() {
         &scores,
     );
 }
+
+/// With few training rows per feature and no `--kind`, `fit` fits the
+/// Gaussian with shrinkage (class-Gaussian with labels) and says so; asking
+/// for a flow, or giving an option only a flow uses, keeps the flow.
+#[test]
+fn few_rows_per_feature_default_to_a_gaussian_unless_a_flow_is_asked_for() {
+    let dir = tempfile::tempdir().unwrap();
+    let (train, labels) = (dir.path().join("train.npy"), dir.path().join("labels.csv"));
+    // 80 rows of 32 features (72 training rows: 2.25 per feature), invented.
+    let v: Vec<f32> = (0..80 * 32).map(|i| ((i * 7919 % 1000) as f32 / 500.0 - 1.0) + (i / 32 % 3) as f32).collect();
+    common::save(&train, &Matrix::new(80, 32, v));
+    std::fs::write(&labels, (0..80).map(|r| format!("{}\n", r % 3)).collect::<String>()).unwrap();
+    let model = dir.path().join("model.safetensors");
+    let (t, m) = (train.to_str().unwrap(), model.to_str().unwrap());
+    let kind_with = |extra: &[&str]| -> (String, String) {
+        let out = tidemark().args(["fit", t, "-o", m, "--epochs", "2"]).args(extra).assert().success();
+        let stderr = String::from_utf8(out.get_output().stderr.clone()).unwrap();
+        let out = tidemark().args(["inspect", m, "--json"]).assert().success();
+        let meta: serde_json::Value = serde_json::from_slice(&out.get_output().stdout).unwrap();
+        (meta["kind"].as_str().unwrap().to_string(), stderr)
+    };
+    let (kind, stderr) = kind_with(&[]);
+    assert_eq!(kind, "gaussian");
+    assert!(stderr.contains("2.2 per feature") && stderr.contains("--kind flow"), "{stderr}");
+    assert_eq!(kind_with(&["--labels", labels.to_str().unwrap()]).0, "class-gaussian");
+    assert_eq!(kind_with(&["--kind", "flow"]).0, "flow");
+    assert_eq!(kind_with(&["--layers", "2"]).0, "flow");
+}
