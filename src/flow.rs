@@ -308,8 +308,11 @@ struct MixBuffers {
     /// `kept` blocks of each layer's permuted ActNorm output before the
     /// mixing map (`perm` holds it after).
     unmixed: Vec<f32>,
-    /// `kept` blocks of the composed `dim x dim` map W.
+    /// Every layer's composed `dim x dim` map W, and the LU block it was
+    /// composed from: a forward pass recomposes a layer's W only when its
+    /// block changed (every training step; once per scoring run).
     w: Vec<f32>,
+    source: Vec<f32>,
     /// Dense L and U' scratch.
     l: Vec<f32>,
     u: Vec<f32>,
@@ -362,7 +365,8 @@ impl Workspace {
             mix: MixBuffers {
                 cap,
                 unmixed: lu(kept * cap * dim),
-                w: lu(kept * dim * dim),
+                w: lu(spec.layers * dim * dim),
+                source: if spec.mixing == Mixing::Lu { vec![f32::NAN; spec.layers * dim * dim] } else { Vec::new() },
                 l: lu(dim * dim),
                 u: lu(dim * dim),
                 gw: if backward { lu(dim * dim) } else { Vec::new() },
@@ -468,7 +472,7 @@ fn forward_layer(flow: &Flow, k: usize, ws: &mut Workspace, rows: usize, dropout
     if let Some(mix) = slot.mix {
         let b = k % ws.kept;
         let p = &mut ws.perm[b * ws.cap * dim..b * ws.cap * dim + rows * dim];
-        layer_logdet += ws.mix.forward(&flow.params[mix..mix + dim * dim], dim, b, p);
+        layer_logdet += ws.mix.forward(&flow.params[mix..mix + dim * dim], dim, k, b, p);
     }
     let last = k + 1 == spec.layers;
     if !last {
@@ -531,15 +535,20 @@ fn lu_factors(block: &[f32], dim: usize, l: &mut [f32], u: &mut [f32]) {
 }
 
 impl MixBuffers {
-    /// LU mixing of the rows `p` (`rows x dim`, workspace block `b`): keeps
-    /// them as they are in `unmixed`, composes W = L U' from `block` into
-    /// block `b` of `w`, and replaces the rows by `p W^T`. Returns the map's
-    /// log-determinant, sum(lambda).
-    fn forward(&mut self, block: &[f32], dim: usize, b: usize, p: &mut [f32]) -> f64 {
-        let rows = p.len() / dim;
-        lu_factors(block, dim, &mut self.l, &mut self.u);
-        let w = &mut self.w[b * dim * dim..(b + 1) * dim * dim];
-        matmul(w, dim, false, View::rows(&self.l, dim, dim, dim), View::rows(&self.u, dim, dim, dim));
+    /// LU mixing of layer `k` on the rows `p` (`rows x dim`, workspace
+    /// block `b`): keeps them as they are in `unmixed`, composes W = L U'
+    /// from `block` unless layer `k`'s W already comes from the same values,
+    /// and replaces the rows by `p W^T`. Returns the map's log-determinant,
+    /// sum(lambda).
+    fn forward(&mut self, block: &[f32], dim: usize, k: usize, b: usize, p: &mut [f32]) -> f64 {
+        let (rows, dd) = (p.len() / dim, dim * dim);
+        let w = &mut self.w[k * dd..(k + 1) * dd];
+        let source = &mut self.source[k * dd..(k + 1) * dd];
+        if source != block {
+            lu_factors(block, dim, &mut self.l, &mut self.u);
+            matmul(w, dim, false, View::rows(&self.l, dim, dim, dim), View::rows(&self.u, dim, dim, dim));
+            source.copy_from_slice(block);
+        }
         let unmixed = &mut self.unmixed[b * self.cap * dim..b * self.cap * dim + rows * dim];
         unmixed.copy_from_slice(p);
         matmul(p, dim, false, View::rows(unmixed, rows, dim, dim), View::transposed(w, dim, dim));
@@ -1301,6 +1310,27 @@ mod tests {
             assert_eq!(full.latent(7, rows), lean.latent(7, rows), "{layers} layers");
             assert_eq!(full.logdet[..rows], lean.logdet[..rows], "{layers} layers");
         }
+    }
+
+    /// A workspace keeps each layer's composed LU map between passes; after
+    /// the LU blocks change it must give what a fresh workspace gives.
+    #[test]
+    fn a_reused_workspace_follows_changed_lu_blocks() {
+        let mut flow = random_flow(FlowSpec { mixing: Mixing::Lu, ..spec(6, 3, 16, 2) }, 31);
+        let rows = 17;
+        let x = normal(rows, 6, 2);
+        let mut kept = Workspace::forward_only(&flow.spec, rows);
+        forward(&flow, &mut kept, &x, rows, None);
+        let before = kept.latent(6, rows).to_vec();
+        let at = flow.slots[1].mix.expect("LU block");
+        flow.params[at + 6 + 1] += 0.25; // lambda of feature 1 in layer 1
+        flow.params[at + 6 * 3 + 2] -= 0.3; // an entry of L
+        forward(&flow, &mut kept, &x, rows, None);
+        let mut fresh = Workspace::forward_only(&flow.spec, rows);
+        forward(&flow, &mut fresh, &x, rows, None);
+        assert_eq!(kept.latent(6, rows), fresh.latent(6, rows));
+        assert_eq!(kept.logdet[..rows], fresh.logdet[..rows]);
+        assert_ne!(kept.latent(6, rows), &before[..]);
     }
 
     /// Change of variables: ln|det J| of the forward map, with J by central
