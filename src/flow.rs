@@ -331,7 +331,7 @@ impl Workspace {
     }
 
     /// Buffers for the forward pass alone: layers take turns in two blocks,
-    /// so memory does not grow with depth (scoring, initialisation).
+    /// so activation memory does not grow with depth (scoring, initialisation).
     pub fn forward_only(spec: &FlowSpec, cap: usize) -> Workspace {
         Workspace::with_blocks(spec, cap, spec.layers.min(2), false)
     }
