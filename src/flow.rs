@@ -1105,6 +1105,12 @@ impl Workers {
         items.iter().map(|w| w.total).sum::<f64>() / rows as f64
     }
 
+    /// The worker threads' pool (`None` with one thread), for other
+    /// per-row work between passes.
+    pub fn pool(&self) -> Option<&rayon::ThreadPool> {
+        self.threads.as_ref()
+    }
+
     /// Latent vectors (`rows x dim`) and log-determinants of any number of
     /// rows of `x`, computed in blocks across the threads.
     pub fn latent(&mut self, flow: &Flow, x: &[f32], rows: usize, z: &mut [f32], logdet: &mut [f64]) {

@@ -31,6 +31,7 @@ pub fn format_version_for(mixing: crate::flow::Mixing) -> u32 {
         crate::flow::Mixing::Lu => 2,
     }
 }
+
 /// Key of the JSON document in the safetensors `__metadata__`.
 const META_KEY: &str = "tidemark";
 
@@ -301,6 +302,11 @@ impl Evaluator<'_> {
             out.dead_deviation.extend(self.rows.chunks(x.cols).map(|r| m.pre.dead_deviation(r)));
         }
         out
+    }
+
+    /// The flow workers' thread pool (`None` with one thread).
+    pub fn pool(&self) -> Option<&rayon::ThreadPool> {
+        self.workers.pool()
     }
 }
 
@@ -724,11 +730,11 @@ fn read_flow(
     if spec.depth == 0 || (spec.layers > 0 && spec.dim < 2) {
         return Err(Error::model(path, format!("{prefix}: invalid flow shape")));
     }
-    let mut flow = Flow::new(spec.clone(), 0);
-    let dim = flow.spec.dim;
     if version < format_version_for(spec.mixing) {
         return Err(Error::model(path, format!("{prefix}: LU mixing in a version {version} model file")));
     }
+    let mut flow = Flow::new(spec.clone(), 0);
+    let dim = flow.spec.dim;
     let fill = |flow: &mut Flow, name: String, at: usize, n: usize| -> Result<()> {
         let vals = from_f32(&get(&name, Dtype::F32, n)?);
         flow.params[at..at + n].copy_from_slice(&vals);
@@ -770,7 +776,6 @@ pub fn log_sum_exp(v: &[f64]) -> f64 {
     top + v.iter().map(|x| (x - top).exp()).sum::<f64>().ln()
 }
 
-/// The first `k` of `d` columns of a row-major matrix, contiguous.
 /// The first `k` of every `d` columns of `u` (the flow's part of whitened
 /// rows), into `out`, which is cleared first.
 pub(crate) fn leading_columns_into(u: &[f32], d: usize, k: usize, out: &mut Vec<f32>) {

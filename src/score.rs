@@ -281,12 +281,6 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
     let format = Format::of(output)?;
     let scorer = Scorer::new(model, opts.calibration.as_ref());
     let mut evaluator = model.evaluator(opts.threads, SCORE_CHUNK.min(x.rows));
-    // Score columns are filled in parallel (the multi-statistic KDE is the
-    // costly one) and written in row order by this thread.
-    let pool = (opts.threads > 1)
-        .then(|| rayon::ThreadPoolBuilder::new().num_threads(opts.threads).build())
-        .transpose()
-        .map_err(|e| Error::Invalid(format!("cannot start {} scoring threads: {e}", opts.threads)))?;
     let mut values = vec![0.0f64; SCORE_CHUNK.min(x.rows) * columns.len()];
     // Per batch of the batch test: (sum of NLLs, rows), kept as the rows
     // stream past so memory grows with batches, not rows.
@@ -313,7 +307,9 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
                 }
             }
             let values = &mut values[..chunk.len() * columns.len()];
-            scorer.fill(&e, &columns, values, pool.as_ref());
+            // On the flow's worker threads (the multi-statistic KDE is the
+            // costly column); written in row order by this thread.
+            scorer.fill(&e, &columns, values, evaluator.pool());
             for row in values.chunks(columns.len()) {
                 write_row(w, format, &columns, row).map_err(io)?;
             }
