@@ -2,18 +2,20 @@
 //! turn new vectors into in-distribution scores.
 //!
 //! Pipeline, one module per stage, data flowing one way:
-//! [`data`] (files in) -> [`preprocess`] (standardization / PCA whitening)
+//! [`data`] and [`columnar`] (files in, chosen by [`input`]) -> [`preprocess`] (standardization / PCA whitening)
 //! -> [`flow`] (coupling layers) -> [`train`] (fitting) -> [`model`] (the
 //! fitted model and its file) -> [`score`] (per-vector scores) -> [`output`]
 //! (files out). [`demo`] runs the whole job on the shipped demo data.
 
 pub mod bench;
 pub mod calibrate;
+pub mod columnar;
 pub mod data;
 pub mod demo;
 pub mod error;
 pub mod evaluate;
 pub mod flow;
+pub mod input;
 pub mod kde;
 pub mod linalg;
 pub mod model;

@@ -12,7 +12,7 @@ use tidemark::flow::Mixing;
 use tidemark::model::{Kind, Model};
 use tidemark::preprocess::Method;
 use tidemark::train::{default_threads, FitOptions, Run};
-use tidemark::{data, demo, evaluate, score, Result};
+use tidemark::{columnar, data, demo, evaluate, input, score, Result};
 
 #[derive(Parser)]
 #[command(
@@ -158,6 +158,32 @@ struct InputArgs {
     /// Tensor to read from a .safetensors file holding several.
     #[arg(long)]
     tensor: Option<String>,
+    /// Parquet or Arrow input: the list-of-floats column holding the embedding [default: the only list column].
+    #[arg(long, conflicts_with_all = ["feature_columns", "column_prefix"])]
+    column: Option<String>,
+    /// Parquet or Arrow input: float columns holding the embedding, comma-separated, in this order.
+    #[arg(long, value_delimiter = ',', conflicts_with = "column_prefix")]
+    feature_columns: Vec<String>,
+    /// Parquet or Arrow input: every float column whose name starts with this, in file order.
+    #[arg(long)]
+    column_prefix: Option<String>,
+}
+
+impl InputArgs {
+    fn spec(&self) -> input::InputSpec {
+        let features = if let Some(c) = &self.column {
+            Some(columnar::Features::List(c.clone()))
+        } else if !self.feature_columns.is_empty() {
+            Some(columnar::Features::Named(self.feature_columns.clone()))
+        } else {
+            self.column_prefix.clone().map(columnar::Features::Prefix)
+        };
+        input::InputSpec {
+            tensor: self.tensor.clone(),
+            columns: columnar::Selection { features, ..Default::default() },
+            ..Default::default()
+        }
+    }
 }
 
 #[derive(Args)]
@@ -169,8 +195,14 @@ struct FitArgs {
     #[command(flatten)]
     input: InputArgs,
     /// Integer class label per row (.npy or one-column .csv): fits a class-conditional model.
-    #[arg(long)]
+    #[arg(long, conflicts_with = "label_column")]
     labels: Option<PathBuf>,
+    /// Parquet or Arrow input: integer column of class labels (fits a class-conditional model).
+    #[arg(long)]
+    label_column: Option<String>,
+    /// Fit on a seeded uniform sample of at most this many rows, drawn while reading (any input format).
+    #[arg(long)]
+    max_rows: Option<usize>,
     /// Density model: flow, gaussian (full covariance) or class-gaussian (class means, shared covariance; needs --labels).
     #[arg(long, value_enum)]
     kind: Option<Kind>,
@@ -269,15 +301,25 @@ struct FitArgs {
 fn run(cli: Cli) -> Result<()> {
     match cli.command {
         Command::Fit(a) => {
-            let x = data::Dataset::open(&a.data, a.input.tensor.as_deref())?;
-            let labels = match &a.labels {
-                Some(p) => {
-                    let l = data::read_labels(p)?;
-                    data::check_label_count(p, l.len(), x.rows)?;
-                    Some(l)
-                }
-                None => None,
-            };
+            let mut spec = a.input.spec();
+            spec.columns.label_column = a.label_column.clone();
+            spec.max_rows = a.max_rows;
+            spec.seed = a.seed.unwrap_or(0);
+            let read = input::open(&a.data, &spec)?;
+            let x = read.data;
+            let labels =
+                match &a.labels {
+                    Some(_) if a.max_rows.is_some() => return Err(tidemark::Error::Invalid(
+                        "--max-rows with --labels FILE: put the labels in a column of the data file (--label-column)"
+                            .into(),
+                    )),
+                    Some(p) => {
+                        let l = data::read_labels(p)?;
+                        data::check_label_count(p, l.len(), x.rows)?;
+                        Some(l)
+                    }
+                    None => read.labels,
+                };
             let opts = FitOptions {
                 kind: a.kind,
                 background_noise: a.background_noise,
@@ -310,7 +352,8 @@ fn run(cli: Cli) -> Result<()> {
                 Some(path) => opts.or(FitOptions::from_json_file(path)?),
                 None => opts,
             };
-            let val = a.val.as_deref().map(|p| data::Dataset::open(p, a.input.tensor.as_deref())).transpose()?;
+            let val_spec = a.input.spec();
+            let val = a.val.as_deref().map(|p| input::open(p, &val_spec).map(|i| i.data)).transpose()?;
             let stop = stop_on_signals();
             let checkpoint = a
                 .checkpoint
@@ -347,7 +390,7 @@ fn run(cli: Cli) -> Result<()> {
             batch_alpha,
             batch_output,
             calibration,
-            input,
+            input: input_args,
             threads,
         } => {
             let m = Model::load(&model)?;
@@ -359,7 +402,7 @@ fn run(cli: Cli) -> Result<()> {
                 }
                 None => None,
             };
-            let x = data::Dataset::open(&path, input.tensor.as_deref())?;
+            let x = input::open(&path, &input_args.spec())?.data;
             m.check_width(&path, x.cols)?;
             let batch = match batch {
                 Some(size) => Some(score::BatchTest::new(size, batch_alpha, batch_output, &output)?),
@@ -367,9 +410,9 @@ fn run(cli: Cli) -> Result<()> {
             };
             score::score_to_file(&m, &x, &output, &score::ScoreOptions { columns, threads, batch, calibration })
         }
-        Command::Calibrate { model, held_out, output, false_alarm, score, input, threads } => {
+        Command::Calibrate { model, held_out, output, false_alarm, score, input: input_args, threads } => {
             let m = Model::load(&model)?;
-            let x = data::Dataset::open(&held_out, input.tensor.as_deref())?;
+            let x = input::open(&held_out, &input_args.spec())?.data;
             m.check_width(&held_out, x.cols)?;
             let (cal, warnings) = calibrate::calibrate(&m, &x, &score, false_alarm, threads)?;
             for w in warnings {

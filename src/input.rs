@@ -1,0 +1,81 @@
+//! Which reader a data path goes to: the row formats of [`crate::data`]
+//! (`.npy`, `.safetensors`, `.csv`) or the columnar formats of
+//! [`crate::columnar`] (Parquet, Arrow IPC), optionally keeping only a
+//! seeded uniform sample of the rows.
+
+use crate::columnar::{self, Selection};
+use crate::data::{DataError, Dataset};
+use std::path::Path;
+
+/// How to read one data file.
+#[derive(Clone, Debug, Default)]
+pub struct InputSpec {
+    /// Tensor of a `.safetensors` file holding several.
+    pub tensor: Option<String>,
+    /// Columns of a Parquet or Arrow file.
+    pub columns: Selection,
+    /// Keep a seeded uniform sample of at most this many rows.
+    pub max_rows: Option<usize>,
+    pub seed: u64,
+}
+
+/// Rows read from one file, with labels when they came from a column.
+pub struct Input {
+    pub data: Dataset,
+    pub labels: Option<Vec<i64>>,
+}
+
+/// Open `path` as `spec` says. A row format is memory-mapped where it can
+/// be (a sample is gathered into memory); a columnar file is streamed batch
+/// by batch into memory, or into a sample.
+pub fn open(path: &Path, spec: &InputSpec) -> Result<Input, DataError> {
+    let fail = |msg: &str| Err(DataError { path: path.to_path_buf(), msg: msg.to_string() });
+    if columnar::is_columnar(path) {
+        if spec.tensor.is_some() {
+            return fail("--tensor is for .safetensors files; name columns with --column or --feature-columns");
+        }
+        let sample = spec.max_rows.map(|n| (n, spec.seed));
+        let (m, labels) = columnar::read_all(path, &spec.columns, sample)?;
+        return Ok(Input { data: Dataset::from_matrix(path, m), labels });
+    }
+    let c = &spec.columns;
+    if c.features.is_some() || c.label_column.is_some() || !c.keep.is_empty() {
+        return fail("column options (--column, --feature-columns, --column-prefix, --label-column, --keep) need a Parquet or Arrow file");
+    }
+    let data = Dataset::open(path, spec.tensor.as_deref())?;
+    let data = match spec.max_rows {
+        Some(n) if n < data.rows => {
+            let idx = sample_rows(data.rows, n, spec.seed);
+            let mut values = Vec::new();
+            data.gather(&idx, &mut values);
+            Dataset::from_matrix(path, crate::data::Matrix::new(idx.len(), data.cols, values))
+        }
+        _ => data,
+    };
+    Ok(Input { data, labels: None })
+}
+
+/// `n` distinct row indices out of `total`, drawn uniformly with `seed`, in
+/// increasing order.
+pub fn sample_rows(total: usize, n: usize, seed: u64) -> Vec<usize> {
+    use rand::SeedableRng;
+    let mut rng = rand::rngs::StdRng::seed_from_u64(seed);
+    let mut idx = rand::seq::index::sample(&mut rng, total, n.min(total)).into_vec();
+    idx.sort_unstable();
+    idx
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn sample_rows_are_distinct_sorted_and_seeded() {
+        let a = sample_rows(1000, 100, 7);
+        assert_eq!(a.len(), 100);
+        assert!(a.windows(2).all(|w| w[0] < w[1]));
+        assert_eq!(a, sample_rows(1000, 100, 7));
+        assert_ne!(a, sample_rows(1000, 100, 8));
+        assert_eq!(sample_rows(5, 10, 0), vec![0, 1, 2, 3, 4]);
+    }
+}
