@@ -38,52 +38,76 @@ pub fn auroc(inliers: &[f64], outliers: &[f64]) -> f64 {
     (rank_sum - n_out * (n_out + 1.0) / 2.0) / (n_in * n_out)
 }
 
+/// The pooled scores' tie groups, highest score first: (score, positives,
+/// negatives) for each distinct score.
+fn tie_groups(negatives: &[f64], positives: &[f64]) -> Vec<(f64, usize, usize)> {
+    let mut all: Vec<(f64, bool)> =
+        negatives.iter().map(|&v| (v, false)).chain(positives.iter().map(|&v| (v, true))).collect();
+    all.sort_by(|a, b| b.0.total_cmp(&a.0));
+    let mut groups: Vec<(f64, usize, usize)> = Vec::new();
+    for (v, positive) in all {
+        match groups.last_mut() {
+            Some(g) if g.0 == v => {}
+            _ => groups.push((v, 0, 0)),
+        }
+        if let Some(g) = groups.last_mut() {
+            if positive {
+                g.1 += 1;
+            } else {
+                g.2 += 1;
+            }
+        }
+    }
+    groups
+}
+
 /// One point of a ROC curve per distinct score, highest threshold first,
 /// starting at (0, 0): (false positive rate, true positive rate, threshold)
 /// for "positive when score >= threshold".
 pub fn roc_curve(negatives: &[f64], positives: &[f64]) -> Vec<(f64, f64, f64)> {
-    let mut all: Vec<(f64, bool)> =
-        negatives.iter().map(|&v| (v, false)).chain(positives.iter().map(|&v| (v, true))).collect();
-    all.sort_by(|a, b| b.0.total_cmp(&a.0));
     let (n_neg, n_pos) = (negatives.len() as f64, positives.len() as f64);
     let mut points = vec![(0.0, 0.0, f64::INFINITY)];
-    let (mut tp, mut fp) = (0.0, 0.0);
-    let mut i = 0;
-    while i < all.len() {
-        let t = all[i].0;
-        while i < all.len() && all[i].0 == t {
-            if all[i].1 {
-                tp += 1.0;
-            } else {
-                fp += 1.0;
-            }
-            i += 1;
-        }
-        points.push((fp / n_neg, tp / n_pos, t));
+    let (mut tp, mut fp) = (0usize, 0usize);
+    for (t, pos, neg) in tie_groups(negatives, positives) {
+        tp += pos;
+        fp += neg;
+        points.push((fp as f64 / n_neg, tp as f64 / n_pos, t));
     }
     points
 }
 
-/// Average precision (area under the precision-recall curve as the step
-/// sum over distinct thresholds, sum of (R_k - R_k-1) P_k) with `positives`
-/// scored higher.
+/// Average precision with `positives` scored higher: the mean, over the
+/// positives, of the precision at each positive's rank. Tied scores are
+/// taken in every order with equal chance and the expectation reported, the
+/// same convention as AUROC's "ties count one half" (McSherry and Najork
+/// 2008, "Computing information retrieval performance measures efficiently
+/// in the presence of tied scores"). Without ties this is scikit-learn's
+/// `average_precision_score`. Why not its rule for ties (a tie group
+/// counted at the precision of its end): under that rule, a row that
+/// appears twice raises the value, and bootstrap resamples repeat rows, so
+/// every resample sat above the point estimate and intervals could exclude
+/// it; under the expectation, repeating a row that ties with nothing else
+/// changes nothing.
 pub fn average_precision(negatives: &[f64], positives: &[f64]) -> f64 {
-    precision_area(&roc_curve(negatives, positives), negatives.len(), positives.len())
-}
-
-/// Average precision from a ROC curve of `n_neg` negatives and `n_pos`
-/// positives (see [`average_precision`]).
-fn precision_area(curve: &[(f64, f64, f64)], n_neg: usize, n_pos: usize) -> f64 {
-    let (n_neg, n_pos) = (n_neg as f64, n_pos as f64);
-    let mut ap = 0.0;
-    for w in curve.windows(2) {
-        let (fpr, tpr) = (w[1].0, w[1].1);
-        let (tp, fp) = (tpr * n_pos, fpr * n_neg);
-        if tp + fp > 0.0 {
-            ap += (tpr - w[0].1) * tp / (tp + fp);
-        }
+    if positives.is_empty() {
+        return f64::NAN;
     }
-    ap
+    let (mut tp_before, mut rows_before) = (0.0, 0.0);
+    let mut sum = 0.0;
+    for (_, pos, neg) in tie_groups(negatives, positives) {
+        let (p, n) = (pos as f64, (pos + neg) as f64);
+        // Position i of the group holds a positive with chance p / n; given
+        // that, the positives before it in the group are hypergeometric
+        // with mean (i - 1)(p - 1)/(n - 1).
+        let within = if n > 1.0 { (p - 1.0) / (n - 1.0) } else { 0.0 };
+        for i in 1..=(pos + neg) {
+            let i = i as f64;
+            sum += (p / n) * (tp_before + 1.0 + (i - 1.0) * within) / (rows_before + i);
+        }
+        tp_before += p;
+        rows_before += n;
+    }
+    sum / positives.len() as f64
 }
 
 /// The metrics of one score on one pair of sets.
@@ -102,7 +126,7 @@ impl Metrics {
         let neg = |v: &[f64]| v.iter().map(|x| -x).collect::<Vec<_>>();
         // ROC with the in-distribution vectors as positives.
         let roc_in = roc_curve(&neg(outliers), &neg(inliers));
-        let aupr_in = precision_area(&roc_in, outliers.len(), inliers.len());
+        let aupr_in = average_precision(&neg(outliers), &neg(inliers));
         let fpr_at_95_tpr = roc_in.iter().find(|p| p.1 >= 0.95).map(|p| p.0).unwrap_or(1.0);
         let detection_error = roc_in.iter().map(|p| 0.5 * (1.0 - p.1) + 0.5 * p.0).fold(f64::INFINITY, f64::min);
         Metrics {
