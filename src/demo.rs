@@ -9,7 +9,7 @@ use crate::data::{check_label_count, read_labels, Dataset};
 use crate::error::{Error, Result};
 use crate::evaluate::{self, EvaluateOptions, Results};
 use crate::model::{Evaluation, Model};
-use crate::score::{batch_statistic, batch_threshold, score_to_file, ScoreOptions, Scorer};
+use crate::score::{score_to_file, BatchRule, ScoreOptions, Scorer};
 use crate::train::{fit_run, read_log, FitOptions, Run};
 use std::path::{Path, PathBuf};
 
@@ -118,9 +118,8 @@ fn flagged_shares(scorer: &Scorer, cals: &[Calibration], e: &Evaluation) -> Vec<
 /// (flagged, total) batches of the batch typicality test.
 fn batch_flags(model: &Model, e: &Evaluation) -> (usize, usize) {
     let nll: Vec<f64> = e.log_likelihood.iter().map(|v| -v).collect();
-    let threshold = batch_threshold(model, BATCH, FALSE_ALARM);
-    let flags: Vec<bool> =
-        nll.chunks(BATCH).map(|b| batch_statistic(model, b.iter().sum::<f64>() / b.len() as f64) > threshold).collect();
+    let rule = BatchRule::new(model, BATCH, FALSE_ALARM);
+    let flags: Vec<bool> = nll.chunks(BATCH).map(|b| rule.flags(b.iter().sum::<f64>() / b.len() as f64)).collect();
     (flags.iter().filter(|&&f| f).count(), flags.len())
 }
 

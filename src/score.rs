@@ -6,7 +6,7 @@ use crate::calibrate::Calibration;
 use crate::data::Dataset;
 use crate::error::{Error, Result};
 use crate::kde::Kde;
-use crate::model::{Evaluation, Model};
+use crate::model::{Evaluation, Model, Spread};
 use rand::rngs::StdRng;
 use rand::{Rng, SeedableRng};
 use std::io::Write;
@@ -37,7 +37,9 @@ pub fn column_help(name: &str) -> &'static str {
         "log_det" => "ln|det dz/dx| (flow + whitening); compare with training values",
         "latent_norm" => "||z||; near sqrt(D) is typical for a D-dim standard normal",
         "mahalanobis_sq" => "squared distance of z to the nearest class mean; higher = more anomalous",
-        "typicality" => "|NLL - training mean NLL| / training NLL std; higher = more anomalous",
+        "typicality" => {
+            "|NLL - mean NLL of held-out rows| / their NLL std (the fit's validation rows); higher = more anomalous"
+        }
         "multi_statistic" => {
             "-log density of (log_det, mahalanobis_sq) under a KDE of validation vectors; higher = more anomalous"
         }
@@ -112,7 +114,25 @@ pub struct Scorer<'a> {
     model: &'a Model,
     kde: Option<Kde>,
     per_bit: f64,
+    /// NLL centre and scale of the typicality score.
+    typical: Spread,
     calibration: Option<&'a Calibration>,
+}
+
+/// Mean and standard deviation of the NLL of held-out in-distribution rows:
+/// the validation rows kept at the end of `fit`. A model fits its own
+/// training rows better than new ones, so the training NLL would put every
+/// new in-distribution vector off centre. A model fitted without validation
+/// rows falls back to its training figures.
+pub fn held_out_nll(model: &Model) -> Spread {
+    let v = &model.refs.validation_nll;
+    if v.is_empty() {
+        let t = &model.meta.train_log_likelihood;
+        return Spread { mean: -t.mean, std: t.std };
+    }
+    let mean = v.iter().sum::<f64>() / v.len() as f64;
+    let std = (v.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / v.len() as f64).sqrt();
+    Spread { mean, std }
 }
 
 impl<'a> Scorer<'a> {
@@ -126,7 +146,13 @@ impl<'a> Scorer<'a> {
             .flat_map(|p| p.iter().enumerate().map(|(j, v)| (v - s.kde_mean[j]) / s.kde_std[j]).collect::<Vec<_>>())
             .collect();
         let kde = if k == 0 { None } else { Kde::new(&standardized, k) };
-        Scorer { model, kde, per_bit: model.dim() as f64 * std::f64::consts::LN_2, calibration }
+        Scorer {
+            model,
+            kde,
+            per_bit: model.dim() as f64 * std::f64::consts::LN_2,
+            typical: held_out_nll(model),
+            calibration,
+        }
     }
 
     /// Every row's values of `columns`, row-major into `out`, on `pool`'s
@@ -156,10 +182,7 @@ impl<'a> Scorer<'a> {
             "log_det" => e.log_det[r],
             "latent_norm" => e.latent_norm[r],
             "mahalanobis_sq" => e.mahalanobis_sq[r],
-            "typicality" => {
-                let t = &m.meta.train_log_likelihood;
-                (e.log_likelihood[r] - t.mean).abs() / t.std.max(f64::MIN_POSITIVE)
-            }
+            "typicality" => (-e.log_likelihood[r] - self.typical.mean).abs() / self.typical.std.max(f64::MIN_POSITIVE),
             "multi_statistic" => match &self.kde {
                 Some(kde) => {
                     let s = &m.meta.scoring;
@@ -365,28 +388,42 @@ fn write_row(w: &mut dyn Write, format: Format, columns: &[String], values: &[f6
 /// Batch typicality test (Nalisnick et al. 2019, "Detecting out-of-
 /// distribution inputs to deep generative models using typicality"): for
 /// each consecutive batch of M vectors, the statistic |mean NLL - H| with H
-/// the training NLL mean (the entropy estimate); the threshold is the
-/// (1 - alpha) quantile of the same statistic over bootstrap batches of M
-/// drawn from the stored validation NLLs.
-pub fn batch_threshold(model: &Model, size: usize, alpha: f64) -> f64 {
-    let nll = &model.refs.validation_nll;
-    let entropy = -model.meta.train_log_likelihood.mean;
-    let mut rng = StdRng::seed_from_u64(0x7E57);
-    let mut stats: Vec<f64> = (0..BOOTSTRAP)
-        .map(|_| {
-            let mean = (0..size).map(|_| nll[rng.random_range(0..nll.len())]).sum::<f64>() / size as f64;
-            (mean - entropy).abs()
-        })
-        .collect();
-    stats.sort_by(f64::total_cmp);
-    stats[(((1.0 - alpha) * BOOTSTRAP as f64).ceil() as usize).clamp(1, BOOTSTRAP) - 1]
+/// the mean NLL of the held-out validation rows (the entropy estimate; see
+/// [`held_out_nll`]). The threshold is the (1 - alpha) quantile of the same
+/// statistic over bootstrap draws from the stored validation NLLs: a batch
+/// of M, and a resample of all of them for the centre, so the threshold
+/// also covers the error of H estimated from finitely many rows.
+pub struct BatchRule {
+    /// H: mean NLL of the held-out validation rows.
+    pub centre: f64,
+    pub threshold: f64,
 }
 
-/// The batch typicality statistic of a batch with mean NLL `mean_nll`: its
-/// distance from the training estimate of the entropy.
-pub fn batch_statistic(model: &Model, mean_nll: f64) -> f64 {
-    let entropy = -model.meta.train_log_likelihood.mean;
-    (mean_nll - entropy).abs()
+impl BatchRule {
+    pub fn new(model: &Model, size: usize, alpha: f64) -> BatchRule {
+        let nll = &model.refs.validation_nll;
+        let mut rng = StdRng::seed_from_u64(0x7E57);
+        let mut draw_mean = |n: usize| (0..n).map(|_| nll[rng.random_range(0..nll.len())]).sum::<f64>() / n as f64;
+        let mut stats: Vec<f64> = (0..BOOTSTRAP)
+            .map(|_| {
+                let centre = draw_mean(nll.len());
+                (draw_mean(size) - centre).abs()
+            })
+            .collect();
+        stats.sort_by(f64::total_cmp);
+        let threshold = stats[(((1.0 - alpha) * BOOTSTRAP as f64).ceil() as usize).clamp(1, BOOTSTRAP) - 1];
+        BatchRule { centre: held_out_nll(model).mean, threshold }
+    }
+
+    /// The statistic of a batch with mean NLL `mean_nll`: its distance from
+    /// the held-out estimate of the entropy.
+    pub fn statistic(&self, mean_nll: f64) -> f64 {
+        (mean_nll - self.centre).abs()
+    }
+
+    pub fn flags(&self, mean_nll: f64) -> bool {
+        self.statistic(mean_nll) > self.threshold
+    }
 }
 
 /// Bootstrap resamples behind the batch threshold.
@@ -396,14 +433,15 @@ fn write_batch_test(model: &Model, batches: &[(f64, usize)], b: &BatchTest) -> R
     if model.refs.validation_nll.is_empty() {
         return Err(Error::Invalid("this model stores no validation NLLs for the batch test".into()));
     }
-    let threshold = batch_threshold(model, b.size, b.alpha);
+    let rule = BatchRule::new(model, b.size, b.alpha);
+    let threshold = rule.threshold;
     crate::output::write_atomic(&b.output, |w| {
         let io = |source| Error::Io { path: b.output.clone(), source };
         writeln!(w, "batch,first_row,rows,mean_nll,statistic,threshold,alpha,out_of_distribution").map_err(io)?;
         for (i, &(sum, rows)) in batches.iter().enumerate() {
             let mean = sum / rows as f64;
-            let stat = batch_statistic(model, mean);
-            let verdict = stat > threshold;
+            let stat = rule.statistic(mean);
+            let verdict = rule.flags(mean);
             writeln!(w, "{i},{},{rows},{mean},{stat},{threshold},{},{verdict}", i * b.size, b.alpha).map_err(io)?;
         }
         Ok(())
