@@ -126,8 +126,9 @@ fn evaluate_refuses_mismatched_or_missing_columns() {
         let err = String::from_utf8_lossy(&out.get_output().stderr).to_string();
         assert!(err.contains(message), "{err}");
     };
-    refused(&[], "ood.csv: has no column 'typicality' (it has: log_likelihood)");
-    refused(&["--columns", "nope"], "'nope' is not an anomaly score");
+    refused(&[], "ood.csv: has no score column 'typicality' that");
+    refused(&[], "evaluate the shared ones with --columns log_likelihood");
+    refused(&["--columns", "nope"], "--columns: 'nope' is not a score column");
     let ok = Command::cargo_bin("tidemark")
         .unwrap()
         .args([
