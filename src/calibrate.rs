@@ -1,5 +1,6 @@
-//! Calibration: a threshold with a known false-alarm rate and conformal
-//! p-values, from scores of held-out in-distribution vectors
+//! Calibration, the decisions layer above the scores: a threshold with a
+//! known false-alarm rate and conformal p-values, from scores of held-out
+//! in-distribution vectors
 //! (split-conformal; Bates et al. 2023, "Testing for outliers with
 //! conformal p-values").
 //!
@@ -13,18 +14,9 @@
 use crate::data::Dataset;
 use crate::error::{Error, Result};
 use crate::model::Model;
-use crate::score::{higher_is_anomalous, Scorer};
+pub use crate::score::Direction;
+use crate::score::{did_you_mean, Decision, Scorer};
 use std::path::Path;
-
-/// How a score column becomes "higher = more anomalous".
-#[derive(Clone, Copy, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
-#[serde(rename_all = "kebab-case")]
-pub enum Direction {
-    Higher,
-    Lower,
-    /// Distance from the calibration median, either way (log_det, latent_norm).
-    TwoSided,
-}
 
 /// A calibration file's contents.
 #[derive(Clone, Debug, serde::Serialize, serde::Deserialize)]
@@ -53,6 +45,9 @@ pub struct Calibration {
 
 pub const FORMAT_VERSION: u32 = 1;
 
+/// Rows scored at a time (for the progress bar; memory is bounded anyway).
+const CHUNK: usize = 8192;
+
 /// The conformal rank and threshold for `sorted` anomaly values at false-
 /// alarm rate `alpha`; `None` when n + 1 < 1 / alpha (too few values for
 /// any threshold with that guarantee).
@@ -71,7 +66,7 @@ pub fn p_value(sorted: &[f64], a: f64) -> f64 {
 impl Calibration {
     /// The anomaly value (higher = more anomalous) of a raw score.
     pub fn anomaly(&self, raw: f64) -> f64 {
-        orient(self.direction, self.center, raw)
+        self.direction.orient(self.center, raw)
     }
 
     pub fn p_value(&self, raw: f64) -> f64 {
@@ -113,21 +108,46 @@ impl Calibration {
     }
 }
 
-fn orient(direction: Direction, center: f64, raw: f64) -> f64 {
-    match direction {
-        Direction::Higher => raw,
-        Direction::Lower => -raw,
-        Direction::TwoSided => (raw - center).abs(),
+/// Which way a column is anomalous, for calibration; `flag` names the
+/// option the column came from.
+pub fn direction_of(score: &str, model: &Model, flag: &str) -> Result<Direction> {
+    let columns = crate::score::available_columns(model);
+    let scores = || columns.iter().map(String::as_str).filter(|c| crate::score::direction_of(c).is_some());
+    if !columns.iter().any(|c| c == score) {
+        return Err(Error::Invalid(format!(
+            "{flag}: this model has no score '{score}'{} (scores: {})",
+            did_you_mean(score, scores()),
+            scores().collect::<Vec<_>>().join(", ")
+        )));
     }
+    crate::score::direction_of(score).ok_or_else(|| {
+        Error::Invalid(format!(
+            "{flag}: '{score}' is not an anomaly score; choose one of {}",
+            scores().collect::<Vec<_>>().join(", ")
+        ))
+    })
 }
 
-/// Which way a column is anomalous, for calibration.
-pub fn direction_of(score: &str) -> Result<Direction> {
-    match (higher_is_anomalous(score), score) {
-        (Some(true), _) => Ok(Direction::Higher),
-        (Some(false), _) => Ok(Direction::Lower),
-        (None, "log_det" | "latent_norm") => Ok(Direction::TwoSided),
-        _ => Err(Error::Invalid(format!("'{score}' is not an anomaly score; choose another --score"))),
+impl Decision for Calibration {
+    fn score(&self) -> &str {
+        &self.score
+    }
+
+    fn columns(&self) -> Vec<String> {
+        vec!["p_value".into(), "flagged".into()]
+    }
+
+    fn value(&self, column: &str, raw: f64) -> f64 {
+        let p = self.p_value(raw);
+        if column == "p_value" {
+            p
+        } else {
+            f64::from(u8::from(p <= self.false_alarm))
+        }
+    }
+
+    fn flags(&self, raw: f64) -> bool {
+        self.flagged(raw)
     }
 }
 
@@ -143,8 +163,7 @@ pub fn calibrate(
     if !(alpha > 0.0 && alpha < 1.0) {
         return Err(Error::Invalid("--false-alarm must be between 0 and 1".into()));
     }
-    crate::score::select_columns(model, &[score.to_string()], false)?;
-    let direction = direction_of(score)?;
+    let direction = direction_of(score, model, "--score")?;
     let mut warnings = Vec::new();
     if format!("{:016x}", x.checksum()) == model.meta.training.data_checksum {
         warnings.push(format!(
@@ -161,11 +180,19 @@ pub fn calibrate(
         )));
     }
     let scorer = Scorer::new(model, None);
-    let e = model.evaluate(x, threads);
-    let mut raw: Vec<f64> = (0..n).map(|r| scorer.value(&e, score, r)).collect();
+    let mut raw = Vec::with_capacity(n);
+    let mut evaluator = model.evaluator(threads, CHUNK.min(n));
+    let mut progress = crate::progress::Progress::new(n, "rows scored");
+    for start in (0..n).step_by(CHUNK) {
+        let rows: Vec<usize> = (start..(start + CHUNK).min(n)).collect();
+        let e = evaluator.evaluate_rows(x, &rows);
+        raw.extend((0..rows.len()).map(|r| scorer.value(&e, score, r)));
+        progress.advance(rows.len());
+    }
+    progress.finish();
     raw.sort_by(f64::total_cmp);
     let center = raw[n / 2];
-    let mut anomaly: Vec<f64> = raw.iter().map(|&v| orient(direction, center, v)).collect();
+    let mut anomaly: Vec<f64> = raw.iter().map(|&v| direction.orient(center, v)).collect();
     anomaly.sort_by(f64::total_cmp);
     let (rank, threshold) = conformal_threshold(&anomaly, alpha).expect("n checked above");
     let threshold_raw = match direction {

@@ -78,6 +78,8 @@ pub struct Reader {
     dim: Option<usize>,
     /// A batch read ahead to learn the width of a variable-size list.
     peeked: Option<RecordBatch>,
+    /// Refuse NaN and infinite values (otherwise they pass through).
+    pub finite: bool,
 }
 
 /// Where, in the projected batches, each part of a row comes from.
@@ -143,7 +145,7 @@ impl Reader {
 
     fn new(path: &Path, batches: Batches, plan: Plan, rows_hint: Option<usize>, schema: &SchemaRef) -> Reader {
         let dim = plan.schema_width(schema);
-        Reader { path: path.to_path_buf(), batches, plan, rows_hint, next_row: 0, dim, peeked: None }
+        Reader { path: path.to_path_buf(), batches, plan, rows_hint, next_row: 0, dim, peeked: None, finite: true }
     }
 
     /// The embedding width (reads ahead one batch for variable-size lists).
@@ -182,7 +184,7 @@ impl Reader {
                 continue;
             }
             let first_row = self.next_row;
-            let x = self.plan.rows(&self.path, &batch, first_row, dim)?;
+            let x = self.plan.rows(&self.path, &batch, first_row, dim, self.finite)?;
             let labels = match &self.plan.label {
                 Some(name) => Some(labels_of(&self.path, &batch, name, first_row)?),
                 None => None,
@@ -206,8 +208,10 @@ pub fn read_all(
     path: &Path,
     sel: &Selection,
     sample: Option<(usize, u64)>,
+    finite: bool,
 ) -> Result<(Matrix, Option<Vec<i64>>), DataError> {
     let mut reader = Reader::open(path, sel)?;
+    reader.finite = finite;
     let dim = reader.dim()?;
     let mut keep = Reservoir::new(sample);
     while let Some(chunk) = reader.next_chunk()? {
@@ -428,13 +432,20 @@ impl Plan {
         widths.filter(|(null, _)| !null).map(|(_, w)| w).next()
     }
 
-    fn rows(&self, path: &Path, batch: &RecordBatch, first_row: usize, dim: usize) -> Result<Matrix, DataError> {
+    fn rows(
+        &self,
+        path: &Path,
+        batch: &RecordBatch,
+        first_row: usize,
+        dim: usize,
+        finite: bool,
+    ) -> Result<Matrix, DataError> {
         let n = batch.num_rows();
         let mut out = vec![0.0f32; n * dim];
         match &self.features {
             Located::List(name) => {
                 let col = column(path, batch, name)?;
-                list_rows(path, name, col, first_row, dim, &mut out)?;
+                list_rows(path, name, col, first_row, dim, finite, &mut out)?;
             }
             Located::Columns(names) => {
                 for (j, name) in names.iter().enumerate() {
@@ -444,7 +455,7 @@ impl Plan {
                         if col.is_null(r) {
                             return fail(path, format!("row {}, column '{name}' is null", first_row + r));
                         }
-                        out[r * dim + j] = checked(path, first_row + r, name, None, values.get(r))?;
+                        out[r * dim + j] = checked(path, first_row + r, name, None, values.get(r), finite)?;
                     }
                 }
             }
@@ -500,9 +511,9 @@ fn floats(a: &dyn Array) -> Option<Floats<'_>> {
 
 /// A value as f32, or an error naming the row and column when it is not
 /// finite or does not fit in float32.
-fn checked(path: &Path, row: usize, name: &str, item: Option<usize>, v: f64) -> Result<f32, DataError> {
+fn checked(path: &Path, row: usize, name: &str, item: Option<usize>, v: f64, finite: bool) -> Result<f32, DataError> {
     let x = v as f32;
-    if x.is_finite() {
+    if x.is_finite() || !finite {
         return Ok(x);
     }
     let what = if v.is_nan() {
@@ -525,6 +536,7 @@ fn list_rows(
     col: &ArrayRef,
     first_row: usize,
     dim: usize,
+    finite: bool,
     out: &mut [f32],
 ) -> Result<(), DataError> {
     // (offset, length) of each row's values in the child array.
@@ -558,7 +570,7 @@ fn list_rows(
             if child.is_null(start + j) {
                 return fail(path, format!("row {row}, column '{name}', value {j} is null"));
             }
-            out[r * dim + j] = checked(path, row, name, Some(j), values.get(start + j))?;
+            out[r * dim + j] = checked(path, row, name, Some(j), values.get(start + j), finite)?;
         }
     }
     Ok(())

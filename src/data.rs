@@ -84,6 +84,14 @@ impl Dataset {
     /// Open embeddings for streaming: `.npy` and `.safetensors` are
     /// memory-mapped, CSV is read into memory. Every value is checked.
     pub fn open(path: &Path, tensor: Option<&str>) -> Result<Dataset, DataError> {
+        let ds = Dataset::open_unchecked(path, tensor)?;
+        ds.check_values()?;
+        Ok(ds)
+    }
+
+    /// [`Dataset::open`] without the check for NaN and infinite values, for
+    /// a caller that checks each row itself (`score --bad-rows`).
+    pub fn open_unchecked(path: &Path, tensor: Option<&str>) -> Result<Dataset, DataError> {
         let ds = match extension(path).as_str() {
             "npy" => Dataset::map_npy(path)?,
             "safetensors" => Dataset::map_safetensors(path, tensor)?,
@@ -92,7 +100,12 @@ impl Dataset {
                 return fail(path, format!("unsupported file type '.{other}' (expected .npy, .safetensors or .csv)"))
             }
         };
-        ds.check_values()?;
+        if ds.rows == 0 {
+            return fail(&ds.path, "has zero rows");
+        }
+        if ds.cols == 0 {
+            return fail(&ds.path, "has zero columns");
+        }
         Ok(ds)
     }
 
@@ -214,22 +227,22 @@ impl Dataset {
     }
 
     fn check_values(&self) -> Result<(), DataError> {
-        if self.rows == 0 {
-            return fail(&self.path, "has zero rows");
-        }
-        if self.cols == 0 {
-            return fail(&self.path, "has zero columns");
-        }
         let mut row = vec![0.0f32; self.cols];
         for r in 0..self.rows {
             self.row_into(r, &mut row);
-            if let Some(c) = row.iter().position(|v| !v.is_finite()) {
-                let what = if row[c].is_nan() { "NaN" } else { "infinite" };
+            if let Some((c, what)) = first_bad_value(&row) {
                 return fail(&self.path, format!("row {r}, column {c} (0-based) is {what}"));
             }
         }
         Ok(())
     }
+}
+
+/// The first NaN or infinite value of a row: its column and "NaN" or
+/// "infinite".
+pub fn first_bad_value(row: &[f32]) -> Option<(usize, &'static str)> {
+    let c = row.iter().position(|v| !v.is_finite())?;
+    Some((c, if row[c].is_nan() { "NaN" } else { "infinite" }))
 }
 
 /// A cheap, well-mixed 64-bit hash (the splitmix64 finaliser), for

@@ -9,7 +9,8 @@ use crate::data::{check_label_count, read_labels, Dataset};
 use crate::error::{Error, Result};
 use crate::evaluate::{self, EvaluateOptions, Results};
 use crate::model::{Evaluation, Model};
-use crate::score::{batch_statistic, batch_threshold, score_to_file, ScoreOptions, Scorer};
+use crate::report::{write_report, ReportInput};
+use crate::score::{score_to_file, BadRows, BatchRule, ScoreOptions, Scorer};
 use crate::train::{fit_run, read_log, FitOptions, Run};
 use std::path::{Path, PathBuf};
 
@@ -75,7 +76,13 @@ pub fn run(data_dir: &Path, out_dir: &Path, threads: usize) -> Result<()> {
         let data = Dataset::open(&file(set), None)?;
         model.check_width(&file(set), data.cols)?;
         let scores = out(&format!("scores_{set}.csv"));
-        let opts = ScoreOptions { columns: vec![], threads, batch: None, calibration: Some(calibrations[0].clone()) };
+        let opts = ScoreOptions {
+            columns: vec![],
+            threads,
+            batch: None,
+            decision: Some(&calibrations[0]),
+            bad_rows: BadRows::Error,
+        };
         score_to_file(&model, &data, &scores, &opts)?;
         let e = model.evaluate(&data, threads);
         rows.push((set, flagged_shares(&scorer, &calibrations, &e), batch_flags(&model, &e)));
@@ -87,23 +94,23 @@ pub fn run(data_dir: &Path, out_dir: &Path, threads: usize) -> Result<()> {
         OUTLIERS.iter().map(|s| (s.to_string(), out(&format!("scores_{s}.csv")))).collect();
     let log = read_log(&log_path)?;
     let columns: Vec<String> = SHOWN.iter().map(|s| s.to_string()).collect();
-    let results = evaluate::run(&EvaluateOptions {
+    let evaluated = evaluate::run(&EvaluateOptions {
         id: &out("scores_heldout.csv"),
         ood: &ood,
         columns: &columns,
         bootstrap: 500,
         seed: 0,
         output: Some(&out("evaluation.json")),
-        report: Some(&out("report.html")),
         calibration: Some(&calibrations[0]),
-        log: Some(&log),
     })?;
+    let report = ReportInput { evaluated: &evaluated, calibration: Some(&calibrations[0]), log: Some(&log) };
+    write_report(&out("report.html"), &report)?;
     println!(
         "4. evaluated against held-out normal vectors: {} and {}\n",
         out("evaluation.json").display(),
         out("report.html").display()
     );
-    print_summary(&rows, &results);
+    print_summary(&rows, &evaluated.results);
     Ok(())
 }
 
@@ -118,9 +125,8 @@ fn flagged_shares(scorer: &Scorer, cals: &[Calibration], e: &Evaluation) -> Vec<
 /// (flagged, total) batches of the batch typicality test.
 fn batch_flags(model: &Model, e: &Evaluation) -> (usize, usize) {
     let nll: Vec<f64> = e.log_likelihood.iter().map(|v| -v).collect();
-    let threshold = batch_threshold(model, BATCH, FALSE_ALARM);
-    let flags: Vec<bool> =
-        nll.chunks(BATCH).map(|b| batch_statistic(model, b.iter().sum::<f64>() / b.len() as f64) > threshold).collect();
+    let rule = BatchRule::new(model, BATCH, FALSE_ALARM);
+    let flags: Vec<bool> = nll.chunks(BATCH).map(|b| rule.flags(b.iter().sum::<f64>() / b.len() as f64)).collect();
     (flags.iter().filter(|&&f| f).count(), flags.len())
 }
 

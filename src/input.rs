@@ -17,6 +17,9 @@ pub struct InputSpec {
     /// Keep a seeded uniform sample of at most this many rows.
     pub max_rows: Option<usize>,
     pub seed: u64,
+    /// Pass NaN and infinite values through, for a caller that checks each
+    /// row itself (`score --bad-rows`).
+    pub unchecked: bool,
 }
 
 /// Rows read from one file, with labels when they came from a column.
@@ -35,14 +38,18 @@ pub fn open(path: &Path, spec: &InputSpec) -> Result<Input, DataError> {
             return fail("--tensor is for .safetensors files; name columns with --column or --feature-columns");
         }
         let sample = spec.max_rows.map(|n| (n, spec.seed));
-        let (m, labels) = columnar::read_all(path, &spec.columns, sample)?;
+        let (m, labels) = columnar::read_all(path, &spec.columns, sample, !spec.unchecked)?;
         return Ok(Input { data: Dataset::from_matrix(path, m), labels });
     }
     let c = &spec.columns;
     if c.features.is_some() || c.label_column.is_some() || !c.keep.is_empty() {
         return fail("column options (--column, --feature-columns, --column-prefix, --label-column, --keep) need a Parquet or Arrow file");
     }
-    let data = Dataset::open(path, spec.tensor.as_deref())?;
+    let data = if spec.unchecked {
+        Dataset::open_unchecked(path, spec.tensor.as_deref())?
+    } else {
+        Dataset::open(path, spec.tensor.as_deref())?
+    };
     let data = match spec.max_rows {
         Some(n) if n < data.rows => {
             let idx = sample_rows(data.rows, n, spec.seed);

@@ -1,11 +1,17 @@
 //! tidemark: fit small normalizing flows to embedding vectors on a CPU and
 //! turn new vectors into in-distribution scores.
 //!
-//! Pipeline, one module per stage, data flowing one way:
+//! Pipeline, one module per stage, data flowing one way (each module uses
+//! only those to its left):
 //! [`data`] and [`columnar`] (files in, chosen by [`input`]) -> [`preprocess`] (standardization / PCA whitening)
 //! -> [`flow`] (coupling layers) -> [`train`] (fitting) -> [`model`] (the
-//! fitted model and its file) -> [`score`] (per-vector scores) -> [`output`]
-//! (files out). [`demo`] runs the whole job on the shipped demo data.
+//! fitted model and its file) -> [`score`] (per-vector scores, the batch
+//! test; knows no calibration files) -> [`calibrate`] (decisions: a
+//! threshold and p-values applied to a score) -> [`evaluate`] (metrics of
+//! score files against outlier sets, decision rates) -> [`report`] (draws an
+//! evaluation). [`output`] writes every file; [`progress`] is the bar of
+//! score, calibrate and evaluate. [`demo`] runs the whole job on the shipped
+//! demo data.
 
 pub mod bench;
 pub mod calibrate;
@@ -21,6 +27,7 @@ pub mod linalg;
 pub mod model;
 pub mod output;
 pub mod preprocess;
+pub mod progress;
 pub mod report;
 pub mod score;
 pub mod simd;

@@ -12,7 +12,7 @@ use tidemark::flow::Mixing;
 use tidemark::model::{Kind, Model};
 use tidemark::preprocess::Method;
 use tidemark::train::{default_threads, FitOptions, Run};
-use tidemark::{columnar, data, demo, evaluate, input, score, Result};
+use tidemark::{columnar, data, demo, evaluate, input, report, score, Result};
 
 #[derive(Parser)]
 #[command(
@@ -30,8 +30,11 @@ enum Command {
     /// Fit a flow to embedding vectors (.npy, .safetensors or .csv) and save it.
     Fit(FitArgs),
     /// Score vectors with a fitted model: one row of scores per vector.
+    #[command(after_help = score_columns_help())]
     Score {
+        /// Model file from `tidemark fit` (.safetensors).
         model: PathBuf,
+        /// Vectors to score (.npy, .safetensors or .csv), as wide as the training data.
         data: PathBuf,
         /// Output file: .csv, .npy (float32, column names in a sidecar .json) or .jsonl; - for CSV on standard output.
         #[arg(short, long)]
@@ -48,16 +51,21 @@ enum Command {
         /// Where the batch test goes [default: OUTPUT with .batches.csv].
         #[arg(long)]
         batch_output: Option<PathBuf>,
-        /// Calibration from `tidemark calibrate`: adds p_value and flagged columns.
+        /// Calibration from `tidemark calibrate`: adds p_value and flagged columns and counts the flagged rows.
         #[arg(long)]
         calibration: Option<PathBuf>,
+        /// Rows with a NaN or infinite value: error (stop, write nothing), flag (write with empty scores and a bad_row reason column) or skip (leave out); the count is printed.
+        #[arg(long, value_enum, default_value = "error")]
+        bad_rows: score::BadRows,
         #[command(flatten)]
         input: InputArgs,
+        /// Worker threads [default: all cores].
         #[arg(long, default_value_t = default_threads())]
         threads: usize,
     },
     /// Pick a threshold at a false-alarm rate from held-out in-distribution vectors (split-conformal).
     Calibrate {
+        /// Model file from `tidemark fit` (.safetensors).
         model: PathBuf,
         /// Held-out in-distribution vectors, never used for fitting.
         held_out: PathBuf,
@@ -67,11 +75,12 @@ enum Command {
         /// Target false-alarm rate (share of in-distribution vectors flagged).
         #[arg(long)]
         false_alarm: f64,
-        /// Score column to calibrate.
+        /// Score column to calibrate (see `tidemark score --help`); choose it with `tidemark evaluate` first.
         #[arg(long, default_value = "log_likelihood")]
         score: String,
         #[command(flatten)]
         input: InputArgs,
+        /// Worker threads [default: all cores].
         #[arg(long, default_value_t = default_threads())]
         threads: usize,
     },
@@ -92,7 +101,7 @@ enum Command {
         /// A self-contained HTML report with histograms, ROC curves and metrics.
         #[arg(long)]
         report: Option<PathBuf>,
-        /// Calibration whose threshold the report draws.
+        /// Calibration whose threshold the report draws and whose decision rates evaluate reports.
         #[arg(long)]
         calibration: Option<PathBuf>,
         /// Training log (from `fit --log`) whose curves the report draws.
@@ -101,6 +110,7 @@ enum Command {
         /// Bootstrap resamples for the 95% intervals.
         #[arg(long, default_value_t = 1000)]
         bootstrap: usize,
+        /// Seed of the bootstrap resampling.
         #[arg(long, default_value_t = 0)]
         seed: u64,
     },
@@ -390,6 +400,7 @@ fn run(cli: Cli) -> Result<()> {
             batch_alpha,
             batch_output,
             calibration,
+            bad_rows,
             input: input_args,
             threads,
         } => {
@@ -402,13 +413,19 @@ fn run(cli: Cli) -> Result<()> {
                 }
                 None => None,
             };
-            let x = input::open(&path, &input_args.spec())?.data;
+            // Rows are checked for NaN and infinity by score itself (--bad-rows).
+            let spec = input::InputSpec { unchecked: true, ..input_args.spec() };
+            let x = input::open(&path, &spec)?.data;
             m.check_width(&path, x.cols)?;
             let batch = match batch {
                 Some(size) => Some(score::BatchTest::new(size, batch_alpha, batch_output, &output)?),
                 None => None,
             };
-            score::score_to_file(&m, &x, &output, &score::ScoreOptions { columns, threads, batch, calibration })
+            let decision = calibration.as_ref().map(|c| c as &dyn score::Decision);
+            let opts = score::ScoreOptions { columns, threads, batch, decision, bad_rows };
+            let summary = score::score_to_file(&m, &x, &output, &opts)?;
+            eprintln!("{}", score_summary(&output, &summary, calibration.as_ref(), bad_rows));
+            Ok(())
         }
         Command::Calibrate { model, held_out, output, false_alarm, score, input: input_args, threads } => {
             let m = Model::load(&model)?;
@@ -439,18 +456,27 @@ fn run(cli: Cli) -> Result<()> {
         Command::Evaluate { id, ood, columns, output, report, calibration, log, bootstrap, seed } => {
             let calibration = calibration.as_deref().map(Calibration::load).transpose()?;
             let log = log.as_deref().map(tidemark::train::read_log).transpose()?;
-            let results = evaluate::run(&evaluate::EvaluateOptions {
+            let evaluated = evaluate::run(&evaluate::EvaluateOptions {
                 id: &id,
                 ood: &ood,
                 columns: &columns,
                 bootstrap,
                 seed,
                 output: output.as_deref(),
-                report: report.as_deref(),
                 calibration: calibration.as_ref(),
-                log: log.as_deref(),
             })?;
-            print!("{}", evaluate::table(&results));
+            for note in &evaluated.notes {
+                eprintln!("{note}");
+            }
+            if let Some(path) = &report {
+                let input = report::ReportInput {
+                    evaluated: &evaluated,
+                    calibration: calibration.as_ref(),
+                    log: log.as_deref(),
+                };
+                report::write_report(path, &input)?;
+            }
+            print!("{}", evaluate::table(&evaluated));
             Ok(())
         }
         Command::Bench { dim, hidden, layers, depth, batch, threads, seconds, json } => {
@@ -483,6 +509,38 @@ fn run(cli: Cli) -> Result<()> {
         }
         Command::Demo { data_dir, out_dir, threads } => demo::run(&data_dir, &out_dir, threads),
     }
+}
+
+/// The score columns and which way each is anomalous, for `score --help`.
+fn score_columns_help() -> String {
+    let mut s = String::from("Columns (which ones a model has depends on how it was fitted):\n");
+    for c in score::ALL_COLUMNS {
+        s.push_str(&format!("  {c:<30}{}\n", score::column_help(c)));
+    }
+    s
+}
+
+/// The line `score` ends with: rows written, bad rows, flagged rows.
+fn score_summary(
+    output: &std::path::Path,
+    summary: &score::ScoreSummary,
+    calibration: Option<&Calibration>,
+    mode: score::BadRows,
+) -> String {
+    let mut line = format!("{}: {} rows scored", output.display(), summary.scored);
+    let bad = summary.bad.len();
+    match mode {
+        score::BadRows::Flag => {
+            line.push_str(&format!(", {bad} bad rows written with empty scores and a bad_row reason"))
+        }
+        score::BadRows::Skip => line.push_str(&format!(", {bad} bad rows skipped")),
+        score::BadRows::Error => line.push_str(", 0 bad rows"),
+    }
+    if let (Some(n), Some(c)) = (summary.flagged, calibration) {
+        let share = 100.0 * n as f64 / summary.scored.max(1) as f64;
+        line.push_str(&format!("; {n} flagged ({share:.2}%) by {} at false-alarm rate {}", c.score, c.false_alarm));
+    }
+    line
 }
 
 /// `NAME=FILE` for `--ood`.

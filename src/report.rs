@@ -6,19 +6,15 @@
 
 use crate::calibrate::Calibration;
 use crate::error::{Error, Result};
-use crate::evaluate::{anomaly, median, roc_curve, Estimate, ScoreTable, METRIC_NAMES};
+use crate::evaluate::{anomaly, median, roc_curve, Evaluated, METRIC_NAMES};
 use crate::train::LogEntry;
 use plotters::prelude::*;
 use std::fmt::Write as _;
 use std::path::Path;
 
-/// Everything the report shows.
+/// Everything the report shows: an evaluation's results, drawn.
 pub struct ReportInput<'a> {
-    pub columns: &'a [String],
-    pub id: &'a ScoreTable,
-    pub ood: &'a [(String, ScoreTable)],
-    /// Per outlier set, per column: the metrics with intervals.
-    pub metrics: &'a [(String, Vec<(String, Vec<(String, Estimate)>)>)],
+    pub evaluated: &'a Evaluated,
     pub calibration: Option<&'a Calibration>,
     pub log: Option<&'a [LogEntry]>,
 }
@@ -208,6 +204,7 @@ fn training_svg(log: &[LogEntry]) -> Result<String> {
 
 /// Write the report to `path` (atomically).
 pub fn write_report(path: &Path, input: &ReportInput) -> Result<()> {
+    let ev = input.evaluated;
     let mut html = String::new();
     html.push_str(
         "<!DOCTYPE html>\n<html><head><meta charset=\"utf-8\"><title>tidemark evaluation</title>\n<style>\
@@ -215,27 +212,27 @@ pub fn write_report(path: &Path, input: &ReportInput) -> Result<()> {
          td,th{border:1px solid #bbb;padding:3px 8px;text-align:right}th{background:#eee}\
          .plots{display:flex;flex-wrap:wrap;gap:8px}</style></head><body>\n<h1>tidemark evaluation</h1>\n",
     );
-    let names: Vec<String> = input.ood.iter().map(|o| escape(&o.0)).collect();
+    let names: Vec<String> = ev.ood.iter().map(|o| escape(&o.0)).collect();
     let _ = writeln!(
         html,
         "<p>In-distribution: {} ({} vectors). Outlier sets: {}.</p>\n<p>AUROC and AUPR-Out take outliers as positive, \
          AUPR-In takes in-distribution vectors as positive; FPR at 95% TPR is the share of outliers accepted at the \
          threshold that keeps 95% of in-distribution vectors. Brackets: bootstrap 95% intervals.</p>",
-        escape(&input.id.path.display().to_string()),
-        input.id.values.first().map(Vec::len).unwrap_or(0),
+        escape(&ev.id.path.display().to_string()),
+        ev.id.values.first().map(Vec::len).unwrap_or(0),
         names.join(", ")
     );
     if let Some(log) = input.log.filter(|l| !l.is_empty()) {
         let _ = writeln!(html, "<h2>Training</h2>\n{}", training_svg(log)?);
     }
-    for column in input.columns {
-        let id_raw = input.id.column(column).expect("checked column");
+    for column in &ev.columns {
+        let id_raw = ev.id.column(column).expect("checked column");
         let mut sets: Vec<(&str, &[f64])> = vec![("in-distribution", id_raw)];
-        sets.extend(input.ood.iter().map(|(n, t)| (n.as_str(), t.column(column).expect("checked column"))));
+        sets.extend(ev.ood.iter().map(|(n, t)| (n.as_str(), t.column(column).expect("checked column"))));
         let threshold = input.calibration.filter(|c| &c.score == column).map(|c| c.threshold_raw);
         let centre = median(id_raw);
         let id_anomaly = anomaly(column, id_raw, centre);
-        let curves: Vec<(&str, Vec<(f64, f64, f64)>)> = input
+        let curves: Vec<(&str, Vec<(f64, f64, f64)>)> = ev
             .ood
             .iter()
             .map(|(n, t)| {
@@ -255,7 +252,7 @@ pub fn write_report(path: &Path, input: &ReportInput) -> Result<()> {
             let _ = write!(html, "<th>{m}</th>");
         }
         html.push_str("</tr>\n");
-        for (set, per_column) in input.metrics {
+        for (set, per_column) in &ev.results {
             let Some((_, estimates)) = per_column.iter().find(|(c, _)| c == column) else { continue };
             let _ = write!(html, "<tr><td>{}</td>", escape(set));
             for (_, e) in estimates {

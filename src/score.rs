@@ -1,12 +1,15 @@
 //! Scoring: per-vector scores from a fitted model, streamed chunk by chunk
 //! to CSV, `.npy` (float32, column names in a sidecar `.json`) or JSON lines;
 //! and the batch typicality test over consecutive batches.
+//!
+//! Scores know nothing of calibration files: a decision rule (the
+//! [`Decision`] trait, implemented by `calibrate::Calibration`) can append
+//! its own columns to the rows written here.
 
-use crate::calibrate::Calibration;
 use crate::data::Dataset;
 use crate::error::{Error, Result};
 use crate::kde::Kde;
-use crate::model::{Evaluation, Model};
+use crate::model::{Evaluation, Model, Spread};
 use rand::rngs::StdRng;
 use rand::{Rng, SeedableRng};
 use std::io::Write;
@@ -28,6 +31,28 @@ pub fn statistic(e: &Evaluation, name: &str, r: usize) -> f64 {
     }
 }
 
+/// Every column `score` can write, as `score --help` lists them (a model
+/// has those its kind and options give it).
+pub const ALL_COLUMNS: [&str; 17] = [
+    "log_likelihood",
+    "bits_per_dim",
+    "base_log_density",
+    "log_det",
+    "latent_norm",
+    "mahalanobis_sq",
+    "typicality",
+    "multi_statistic",
+    "log_likelihood_ratio",
+    "predicted_class",
+    "class_probability",
+    "class_log_likelihood_<label>",
+    "dead_feature_deviation",
+    "subspace_residual",
+    "p_value",
+    "flagged",
+    "bad_row",
+];
+
 /// What each score column means and which way is anomalous.
 pub fn column_help(name: &str) -> &'static str {
     match name {
@@ -37,7 +62,9 @@ pub fn column_help(name: &str) -> &'static str {
         "log_det" => "ln|det dz/dx| (flow + whitening); compare with training values",
         "latent_norm" => "||z||; near sqrt(D) is typical for a D-dim standard normal",
         "mahalanobis_sq" => "squared distance of z to the nearest class mean; higher = more anomalous",
-        "typicality" => "|NLL - training mean NLL| / training NLL std; higher = more anomalous",
+        "typicality" => {
+            "|NLL - mean NLL of held-out rows| / their NLL std (the fit's validation rows); higher = more anomalous"
+        }
         "multi_statistic" => {
             "-log density of (log_det, mahalanobis_sq) under a KDE of validation vectors; higher = more anomalous"
         }
@@ -50,6 +77,7 @@ pub fn column_help(name: &str) -> &'static str {
         }
         "p_value" => "conformal p-value of the calibrated score; lower = more anomalous",
         "flagged" => "1 when the p-value is at most the calibrated false-alarm rate",
+        "bad_row" => "why a row was not scored (NaN or infinite value), empty for scored rows",
         _ => "log p(x | class), nats, input space; higher = more typical",
     }
 }
@@ -72,22 +100,84 @@ pub fn higher_is_anomalous(name: &str) -> Option<bool> {
     }
 }
 
-/// Every column a model can produce, in output order (with a calibration,
-/// `p_value` and `flagged` at the end).
-pub fn available_columns(model: &Model, calibrated: bool) -> Vec<String> {
-    let mut cols: Vec<String> = [
-        "log_likelihood",
-        "bits_per_dim",
-        "base_log_density",
-        "log_det",
-        "latent_norm",
-        "mahalanobis_sq",
-        "typicality",
-        "multi_statistic",
-    ]
-    .iter()
-    .map(|s| s.to_string())
-    .collect();
+/// How a score column becomes "higher = more anomalous".
+#[derive(Clone, Copy, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Direction {
+    Higher,
+    Lower,
+    /// Distance from the in-distribution median, either way (log_det, latent_norm).
+    TwoSided,
+}
+
+impl Direction {
+    /// The anomaly value (higher = more anomalous) of a raw score; `centre`
+    /// is the in-distribution median a two-sided score is measured from.
+    pub fn orient(self, centre: f64, raw: f64) -> f64 {
+        match self {
+            Direction::Higher => raw,
+            Direction::Lower => -raw,
+            Direction::TwoSided => (raw - centre).abs(),
+        }
+    }
+}
+
+/// Which way a score column is anomalous; `None` for columns that are not
+/// scores (predicted class, and the decision columns `p_value`, `flagged`).
+pub fn direction_of(column: &str) -> Option<Direction> {
+    match (higher_is_anomalous(column), column) {
+        (_, "p_value" | "flagged") => None,
+        (Some(true), _) => Some(Direction::Higher),
+        (Some(false), _) => Some(Direction::Lower),
+        (None, "log_det" | "latent_norm") => Some(Direction::TwoSided),
+        _ => None,
+    }
+}
+
+/// The name in `candidates` nearest to `name` by edit distance, when it is
+/// close enough to be a likely typo (at most a third of its length).
+pub fn nearest<'c>(name: &str, candidates: impl IntoIterator<Item = &'c str>) -> Option<&'c str> {
+    let limit = (name.chars().count() / 3).max(2);
+    candidates.into_iter().map(|c| (edit_distance(name, c), c)).filter(|(d, _)| *d <= limit).min().map(|(_, c)| c)
+}
+
+/// Levenshtein distance (insertions, deletions, substitutions).
+fn edit_distance(a: &str, b: &str) -> usize {
+    let b: Vec<char> = b.chars().collect();
+    let mut row: Vec<usize> = (0..=b.len()).collect();
+    for (i, ca) in a.chars().enumerate() {
+        let mut diag = row[0];
+        row[0] = i + 1;
+        for (j, &cb) in b.iter().enumerate() {
+            let next = (row[j + 1] + 1).min(row[j] + 1).min(diag + usize::from(ca != cb));
+            diag = row[j + 1];
+            row[j + 1] = next;
+        }
+    }
+    row[b.len()]
+}
+
+/// "did you mean 'x'?" for `name` among `candidates`, or nothing.
+pub fn did_you_mean<'c>(name: &str, candidates: impl IntoIterator<Item = &'c str>) -> String {
+    nearest(name, candidates).map(|c| format!("; did you mean '{c}'?")).unwrap_or_default()
+}
+
+/// Columns a decision rule appends to each scored row (a calibration's
+/// p-value and flag), computed from one score column's raw value.
+pub trait Decision: Sync {
+    /// The score column the decision reads.
+    fn score(&self) -> &str;
+    /// Names of the columns it adds, in output order.
+    fn columns(&self) -> Vec<String>;
+    /// Value of its column `column` for a raw score.
+    fn value(&self, column: &str, raw: f64) -> f64;
+    /// Whether a raw score is flagged.
+    fn flags(&self, raw: f64) -> bool;
+}
+
+/// Every score column a model can produce, in output order.
+pub fn available_columns(model: &Model) -> Vec<String> {
+    let mut cols: Vec<String> = ALL_COLUMNS[..8].iter().map(|s| s.to_string()).collect();
     if model.background.is_some() {
         cols.push("log_likelihood_ratio".into());
     }
@@ -100,10 +190,6 @@ pub fn available_columns(model: &Model, calibrated: bool) -> Vec<String> {
     if model.pre.floored > 0 {
         cols.push("subspace_residual".into());
     }
-    if calibrated {
-        cols.push("p_value".into());
-        cols.push("flagged".into());
-    }
     cols
 }
 
@@ -112,11 +198,30 @@ pub struct Scorer<'a> {
     model: &'a Model,
     kde: Option<Kde>,
     per_bit: f64,
-    calibration: Option<&'a Calibration>,
+    /// NLL centre and scale of the typicality score.
+    typical: Spread,
+    decision: Option<&'a dyn Decision>,
+}
+
+/// Mean and standard deviation of the NLL of held-out in-distribution rows:
+/// the validation rows kept at the end of `fit`. A model fits its own
+/// training rows better than new ones, so the training NLL would put every
+/// new in-distribution vector off centre. A model fitted without validation
+/// rows falls back to its training figures.
+pub fn held_out_nll(model: &Model) -> Spread {
+    let v = &model.refs.validation_nll;
+    if v.is_empty() {
+        let t = &model.meta.train_log_likelihood;
+        return Spread { mean: -t.mean, std: t.std };
+    }
+    let mean = v.iter().sum::<f64>() / v.len() as f64;
+    let std = (v.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / v.len() as f64).sqrt();
+    Spread { mean, std }
 }
 
 impl<'a> Scorer<'a> {
-    pub fn new(model: &'a Model, calibration: Option<&'a Calibration>) -> Scorer<'a> {
+    /// A scorer for `model`; `decision` adds its columns to [`Scorer::fill`].
+    pub fn new(model: &'a Model, decision: Option<&'a dyn Decision>) -> Scorer<'a> {
         let s = &model.meta.scoring;
         let k = s.kde_columns.len();
         let standardized: Vec<f64> = model
@@ -126,15 +231,27 @@ impl<'a> Scorer<'a> {
             .flat_map(|p| p.iter().enumerate().map(|(j, v)| (v - s.kde_mean[j]) / s.kde_std[j]).collect::<Vec<_>>())
             .collect();
         let kde = if k == 0 { None } else { Kde::new(&standardized, k) };
-        Scorer { model, kde, per_bit: model.dim() as f64 * std::f64::consts::LN_2, calibration }
+        Scorer {
+            model,
+            kde,
+            per_bit: model.dim() as f64 * std::f64::consts::LN_2,
+            typical: held_out_nll(model),
+            decision,
+        }
     }
 
     /// Every row's values of `columns`, row-major into `out`, on `pool`'s
     /// threads when given.
     pub fn fill(&self, e: &Evaluation, columns: &[String], out: &mut [f64], pool: Option<&rayon::ThreadPool>) {
+        let added = self.decision.map(|d| d.columns()).unwrap_or_default();
+        let decided: Vec<Option<&dyn Decision>> =
+            columns.iter().map(|c| self.decision.filter(|_| added.contains(c))).collect();
         let row = |(r, slots): (usize, &mut [f64])| {
-            for (slot, c) in slots.iter_mut().zip(columns) {
-                *slot = self.value(e, c, r);
+            for ((slot, c), decision) in slots.iter_mut().zip(columns).zip(&decided) {
+                *slot = match decision {
+                    Some(d) => d.value(c, self.value(e, d.score(), r)),
+                    None => self.value(e, c, r),
+                };
             }
         };
         match pool {
@@ -156,10 +273,7 @@ impl<'a> Scorer<'a> {
             "log_det" => e.log_det[r],
             "latent_norm" => e.latent_norm[r],
             "mahalanobis_sq" => e.mahalanobis_sq[r],
-            "typicality" => {
-                let t = &m.meta.train_log_likelihood;
-                (e.log_likelihood[r] - t.mean).abs() / t.std.max(f64::MIN_POSITIVE)
-            }
+            "typicality" => (-e.log_likelihood[r] - self.typical.mean).abs() / self.typical.std.max(f64::MIN_POSITIVE),
             "multi_statistic" => match &self.kde {
                 Some(kde) => {
                     let s = &m.meta.scoring;
@@ -178,15 +292,6 @@ impl<'a> Scorer<'a> {
             "class_probability" => e.class_probability[r],
             "dead_feature_deviation" => e.dead_deviation[r],
             "subspace_residual" => e.subspace_residual[r],
-            "p_value" | "flagged" => {
-                let cal = self.calibration.expect("calibrated columns need a calibration");
-                let p = cal.p_value(self.value(e, &cal.score, r));
-                if name == "p_value" {
-                    p
-                } else {
-                    f64::from(u8::from(p <= cal.false_alarm))
-                }
-            }
             other => {
                 let label = other.trim_start_matches("class_log_likelihood_");
                 let c = m.meta.classes.iter().position(|c| c.label.to_string() == label).expect("known class column");
@@ -218,15 +323,39 @@ impl Format {
     }
 }
 
+/// What `score` does with a row holding a NaN or infinite value.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Default, clap::ValueEnum)]
+pub enum BadRows {
+    /// Stop with an error naming the row and column; nothing is written.
+    #[default]
+    Error,
+    /// Write the row with empty scores and the reason in a `bad_row` column.
+    Flag,
+    /// Leave the row out of the output and count it.
+    Skip,
+}
+
 /// Options of `tidemark score`.
-pub struct ScoreOptions {
+pub struct ScoreOptions<'a> {
     /// Columns to write (all when empty).
     pub columns: Vec<String>,
     pub threads: usize,
     /// Batch typicality test: batch size, significance, and where to write.
     pub batch: Option<BatchTest>,
-    /// Adds `p_value` and `flagged`.
-    pub calibration: Option<Calibration>,
+    /// Adds its columns (a calibration's `p_value` and `flagged`).
+    pub decision: Option<&'a dyn Decision>,
+    pub bad_rows: BadRows,
+}
+
+/// What a scoring run did.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct ScoreSummary {
+    /// Rows scored (bad rows excluded).
+    pub scored: usize,
+    /// Rows with a NaN or infinite value: (row, reason), in row order.
+    pub bad: Vec<(usize, String)>,
+    /// Rows the decision flagged, when a decision was given.
+    pub flagged: Option<usize>,
 }
 
 pub struct BatchTest {
@@ -258,16 +387,20 @@ impl BatchTest {
 /// Rows scored at a time (memory is bounded by this, not by the input).
 const SCORE_CHUNK: usize = 8192;
 
-/// The columns to write: all, or the requested ones (each must exist).
-pub fn select_columns(model: &Model, requested: &[String], calibrated: bool) -> Result<Vec<String>> {
-    let all = available_columns(model, calibrated);
+/// The columns to write: all score columns and `added` (a decision's), or
+/// the requested ones, each of which must exist. `flag` names the option
+/// the names came from, for the error.
+pub fn select_columns(model: &Model, requested: &[String], added: &[String], flag: &str) -> Result<Vec<String>> {
+    let mut all = available_columns(model);
+    all.extend(added.iter().cloned());
     if requested.is_empty() {
         return Ok(all);
     }
     for c in requested {
         if !all.contains(c) {
             return Err(Error::Invalid(format!(
-                "--columns: this model has no column '{c}' (it has: {})",
+                "{flag}: this model has no column '{c}'{} (it has: {})",
+                did_you_mean(c, all.iter().map(String::as_str)),
                 all.join(", ")
             )));
         }
@@ -275,26 +408,75 @@ pub fn select_columns(model: &Model, requested: &[String], calibrated: bool) -> 
     Ok(requested.to_vec())
 }
 
+/// Rows of `x` with a NaN or infinite value, with the reason.
+fn find_bad_rows(x: &Dataset) -> Vec<(usize, String)> {
+    let mut row = vec![0.0f32; x.cols];
+    let mut bad = Vec::new();
+    for r in 0..x.rows {
+        x.row_into(r, &mut row);
+        if let Some((c, what)) = crate::data::first_bad_value(&row) {
+            bad.push((r, format!("{what} in column {c}")));
+        }
+    }
+    bad
+}
+
 /// Score every row of `x` and write the scores to `output`, chunk by chunk.
-pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOptions) -> Result<()> {
-    let columns = select_columns(model, &opts.columns, opts.calibration.is_some())?;
+/// Rows with NaN or infinite values are handled as `opts.bad_rows` says;
+/// with `BadRows::Error` nothing is written when there is one.
+pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOptions) -> Result<ScoreSummary> {
+    let added = opts.decision.map(|d| d.columns()).unwrap_or_default();
+    let columns = select_columns(model, &opts.columns, &added, "--columns")?;
     let format = Format::of(output)?;
-    let scorer = Scorer::new(model, opts.calibration.as_ref());
+    let bad = find_bad_rows(x);
+    if let (BadRows::Error, Some((r, why))) = (opts.bad_rows, bad.first()) {
+        return Err(Error::Invalid(format!(
+            "{}: row {r} (0-based) has {why}; --bad-rows flag or skip scores past such rows",
+            x.path.display()
+        )));
+    }
+    let flag_column = opts.bad_rows == BadRows::Flag;
+    let mut header = columns.clone();
+    if flag_column {
+        header.push("bad_row".into());
+    }
+    let written = if opts.bad_rows == BadRows::Skip { x.rows - bad.len() } else { x.rows };
+    let scorer = Scorer::new(model, opts.decision);
     let mut evaluator = model.evaluator(opts.threads, SCORE_CHUNK.min(x.rows));
     let mut values = vec![0.0f64; SCORE_CHUNK.min(x.rows) * columns.len()];
+    let mut summary = ScoreSummary { bad: bad.clone(), flagged: opts.decision.map(|_| 0), ..ScoreSummary::default() };
+    let mut progress = crate::progress::Progress::new(x.rows, "rows scored");
     // Per batch of the batch test: (sum of NLLs, rows), kept as the rows
     // stream past so memory grows with batches, not rows.
     let mut batches: Vec<(f64, usize)> = Vec::new();
+    let mut next_bad = bad.iter().peekable();
     crate::output::write_atomic(output, |w| {
         let io = |source| Error::Io { path: output.to_path_buf(), source };
         match format {
-            Format::Csv => writeln!(w, "{}", columns.join(",")).map_err(io)?,
-            Format::Npy => crate::data::write_npy_header(w, x.rows, columns.len()).map_err(io)?,
+            Format::Csv => writeln!(w, "{}", header.join(",")).map_err(io)?,
+            Format::Npy => crate::data::write_npy_header(w, written, header.len()).map_err(io)?,
             Format::JsonLines => {}
         }
+        let empty = vec![f64::NAN; columns.len()];
         for start in (0..x.rows).step_by(SCORE_CHUNK) {
-            let chunk: Vec<usize> = (start..(start + SCORE_CHUNK).min(x.rows)).collect();
-            let e = evaluator.evaluate_rows(x, &chunk);
+            let end = (start + SCORE_CHUNK).min(x.rows);
+            // Rows of this chunk in order, each good one with its place among
+            // the chunk's evaluated rows.
+            let mut order: Vec<std::result::Result<usize, &str>> = Vec::with_capacity(end - start);
+            let mut good = Vec::with_capacity(end - start);
+            for r in start..end {
+                match next_bad.peek() {
+                    Some((b, why)) if *b == r => {
+                        order.push(Err(why.as_str()));
+                        next_bad.next();
+                    }
+                    _ => {
+                        order.push(Ok(good.len()));
+                        good.push(r);
+                    }
+                }
+            }
+            let e = if good.is_empty() { Evaluation::default() } else { evaluator.evaluate_rows(x, &good) };
             if let Some(b) = &opts.batch {
                 for ll in &e.log_likelihood {
                     match batches.last_mut() {
@@ -306,22 +488,36 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
                     }
                 }
             }
-            let values = &mut values[..chunk.len() * columns.len()];
+            if let (Some(d), Some(count)) = (opts.decision, summary.flagged.as_mut()) {
+                *count += (0..good.len()).filter(|&r| d.flags(scorer.value(&e, d.score(), r))).count();
+            }
+            let values = &mut values[..good.len() * columns.len()];
             // On the flow's worker threads (the multi-statistic KDE is the
             // costly column); written in row order by this thread.
             scorer.fill(&e, &columns, values, evaluator.pool());
-            for row in values.chunks(columns.len()) {
-                write_row(w, format, &columns, row).map_err(io)?;
+            for place in order {
+                let (row, reason) = match place {
+                    Ok(k) => (&values[k * columns.len()..(k + 1) * columns.len()], None),
+                    Err(_) if !flag_column => continue,
+                    Err(why) => (&empty[..], Some(why)),
+                };
+                write_row(w, format, &header, row, flag_column.then_some(reason)).map_err(io)?;
             }
+            summary.scored += good.len();
+            progress.advance(end - start);
         }
         Ok(())
     })?;
+    progress.finish();
     if format == Format::Npy && !crate::output::is_stdout(output) {
         let sidecar = output.with_extension("json");
-        let doc = serde_json::json!({
-            "columns": columns,
-            "descriptions": columns.iter().map(|c| column_help(c)).collect::<Vec<_>>(),
+        let mut doc = serde_json::json!({
+            "columns": header,
+            "descriptions": header.iter().map(|c| column_help(c)).collect::<Vec<_>>(),
         });
+        if flag_column {
+            doc["bad_rows"] = bad.iter().map(|(r, why)| serde_json::json!({ "row": r, "reason": why })).collect();
+        }
         crate::output::write_atomic(&sidecar, |w| {
             writeln!(w, "{doc:#}").map_err(|source| Error::Io { path: sidecar.clone(), source })
         })?;
@@ -329,15 +525,33 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
     if let Some(b) = &opts.batch {
         write_batch_test(model, &batches, b)?;
     }
-    Ok(())
+    Ok(summary)
 }
 
-fn write_row(w: &mut dyn Write, format: Format, columns: &[String], values: &[f64]) -> std::io::Result<()> {
+/// One output row. `reason` is `Some` when the output has a `bad_row`
+/// column (the last of `columns`): the reason for a bad row, `None` for a
+/// good one. In `.npy` that column is 1 for a bad row and 0 otherwise (the
+/// reasons go to the sidecar `.json`).
+fn write_row(
+    w: &mut dyn Write,
+    format: Format,
+    columns: &[String],
+    values: &[f64],
+    reason: Option<Option<&str>>,
+) -> std::io::Result<()> {
     match format {
         Format::Csv => {
             for (i, v) in values.iter().enumerate() {
                 let sep = if i == 0 { "" } else { "," };
-                write!(w, "{sep}{v}")?;
+                // An empty cell, not "NaN", for a bad row's scores.
+                if v.is_nan() && reason.flatten().is_some() {
+                    write!(w, "{sep}")?;
+                } else {
+                    write!(w, "{sep}{v}")?;
+                }
+            }
+            if let Some(why) = reason {
+                write!(w, ",{}", why.unwrap_or(""))?;
             }
             writeln!(w)
         }
@@ -345,10 +559,13 @@ fn write_row(w: &mut dyn Write, format: Format, columns: &[String], values: &[f6
             for v in values {
                 w.write_all(&(*v as f32).to_le_bytes())?;
             }
+            if let Some(why) = reason {
+                w.write_all(&f32::from(u8::from(why.is_some())).to_le_bytes())?;
+            }
             Ok(())
         }
         Format::JsonLines => {
-            let obj: serde_json::Map<String, serde_json::Value> = columns
+            let mut obj: serde_json::Map<String, serde_json::Value> = columns
                 .iter()
                 .zip(values)
                 .map(|(c, &v)| {
@@ -357,6 +574,9 @@ fn write_row(w: &mut dyn Write, format: Format, columns: &[String], values: &[f6
                     (c.clone(), value)
                 })
                 .collect();
+            if let Some(why) = reason {
+                obj.insert("bad_row".into(), why.map(|s| serde_json::Value::String(s.into())).unwrap_or_default());
+            }
             writeln!(w, "{}", serde_json::Value::Object(obj))
         }
     }
@@ -365,28 +585,42 @@ fn write_row(w: &mut dyn Write, format: Format, columns: &[String], values: &[f6
 /// Batch typicality test (Nalisnick et al. 2019, "Detecting out-of-
 /// distribution inputs to deep generative models using typicality"): for
 /// each consecutive batch of M vectors, the statistic |mean NLL - H| with H
-/// the training NLL mean (the entropy estimate); the threshold is the
-/// (1 - alpha) quantile of the same statistic over bootstrap batches of M
-/// drawn from the stored validation NLLs.
-pub fn batch_threshold(model: &Model, size: usize, alpha: f64) -> f64 {
-    let nll = &model.refs.validation_nll;
-    let entropy = -model.meta.train_log_likelihood.mean;
-    let mut rng = StdRng::seed_from_u64(0x7E57);
-    let mut stats: Vec<f64> = (0..BOOTSTRAP)
-        .map(|_| {
-            let mean = (0..size).map(|_| nll[rng.random_range(0..nll.len())]).sum::<f64>() / size as f64;
-            (mean - entropy).abs()
-        })
-        .collect();
-    stats.sort_by(f64::total_cmp);
-    stats[(((1.0 - alpha) * BOOTSTRAP as f64).ceil() as usize).clamp(1, BOOTSTRAP) - 1]
+/// the mean NLL of the held-out validation rows (the entropy estimate; see
+/// [`held_out_nll`]). The threshold is the (1 - alpha) quantile of the same
+/// statistic over bootstrap draws from the stored validation NLLs: a batch
+/// of M, and a resample of all of them for the centre, so the threshold
+/// also covers the error of H estimated from finitely many rows.
+pub struct BatchRule {
+    /// H: mean NLL of the held-out validation rows.
+    pub centre: f64,
+    pub threshold: f64,
 }
 
-/// The batch typicality statistic of a batch with mean NLL `mean_nll`: its
-/// distance from the training estimate of the entropy.
-pub fn batch_statistic(model: &Model, mean_nll: f64) -> f64 {
-    let entropy = -model.meta.train_log_likelihood.mean;
-    (mean_nll - entropy).abs()
+impl BatchRule {
+    pub fn new(model: &Model, size: usize, alpha: f64) -> BatchRule {
+        let nll = &model.refs.validation_nll;
+        let mut rng = StdRng::seed_from_u64(0x7E57);
+        let mut draw_mean = |n: usize| (0..n).map(|_| nll[rng.random_range(0..nll.len())]).sum::<f64>() / n as f64;
+        let mut stats: Vec<f64> = (0..BOOTSTRAP)
+            .map(|_| {
+                let centre = draw_mean(nll.len());
+                (draw_mean(size) - centre).abs()
+            })
+            .collect();
+        stats.sort_by(f64::total_cmp);
+        let threshold = stats[(((1.0 - alpha) * BOOTSTRAP as f64).ceil() as usize).clamp(1, BOOTSTRAP) - 1];
+        BatchRule { centre: held_out_nll(model).mean, threshold }
+    }
+
+    /// The statistic of a batch with mean NLL `mean_nll`: its distance from
+    /// the held-out estimate of the entropy.
+    pub fn statistic(&self, mean_nll: f64) -> f64 {
+        (mean_nll - self.centre).abs()
+    }
+
+    pub fn flags(&self, mean_nll: f64) -> bool {
+        self.statistic(mean_nll) > self.threshold
+    }
 }
 
 /// Bootstrap resamples behind the batch threshold.
@@ -396,14 +630,15 @@ fn write_batch_test(model: &Model, batches: &[(f64, usize)], b: &BatchTest) -> R
     if model.refs.validation_nll.is_empty() {
         return Err(Error::Invalid("this model stores no validation NLLs for the batch test".into()));
     }
-    let threshold = batch_threshold(model, b.size, b.alpha);
+    let rule = BatchRule::new(model, b.size, b.alpha);
+    let threshold = rule.threshold;
     crate::output::write_atomic(&b.output, |w| {
         let io = |source| Error::Io { path: b.output.clone(), source };
         writeln!(w, "batch,first_row,rows,mean_nll,statistic,threshold,alpha,out_of_distribution").map_err(io)?;
         for (i, &(sum, rows)) in batches.iter().enumerate() {
             let mean = sum / rows as f64;
-            let stat = batch_statistic(model, mean);
-            let verdict = stat > threshold;
+            let stat = rule.statistic(mean);
+            let verdict = rule.flags(mean);
             writeln!(w, "{i},{},{rows},{mean},{stat},{threshold},{},{verdict}", i * b.size, b.alpha).map_err(io)?;
         }
         Ok(())

@@ -7,7 +7,7 @@ mod common;
 
 use assert_cmd::Command;
 use std::path::PathBuf;
-use tidemark::evaluate::{auroc, average_precision, roc_curve, Metrics};
+use tidemark::evaluate::{auroc, average_precision, roc_curve, with_intervals, Metrics};
 
 fn metrics() -> serde_json::Value {
     let path = PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/expected.json");
@@ -23,9 +23,6 @@ fn auroc_average_precision_and_roc_curve_equal_scikit_learn() {
     assert!(close(auroc(&id, &ood), m["roc_auc_score"].as_f64().unwrap()));
     // AUROC = U / (n_in n_out), scipy.stats.mannwhitneyu.
     assert!(close(auroc(&id, &ood), m["mannwhitney_u_over_n1n2"].as_f64().unwrap()));
-    assert!(close(average_precision(&id, &ood), m["average_precision_ood_positive"].as_f64().unwrap()));
-    let neg = |v: &[f64]| v.iter().map(|x| -x).collect::<Vec<_>>();
-    assert!(close(average_precision(&neg(&ood), &neg(&id)), m["average_precision_id_positive"].as_f64().unwrap()));
     let curve = roc_curve(&id, &ood);
     let (fpr, tpr, thr) =
         (common::floats(&m["roc_fpr"]), common::floats(&m["roc_tpr"]), common::floats(&m["roc_thresholds"]));
@@ -39,7 +36,60 @@ fn auroc_average_precision_and_roc_curve_equal_scikit_learn() {
     // The summary metrics use the same curve; AUPR-In and AUROC agree too.
     let all = Metrics::of(&id, &ood);
     assert!(close(all.auroc, m["roc_auc_score"].as_f64().unwrap()));
-    assert!(close(all.aupr_in, m["average_precision_id_positive"].as_f64().unwrap()));
+}
+
+fn tie_cases() -> serde_json::Value {
+    serde_json::from_str(&std::fs::read_to_string(common::fixture("metric_ties.json")).unwrap()).unwrap()
+}
+
+/// Average precision on heavily tied scores is scikit-learn's
+/// average_precision_score averaged over every ordering of the tied scores
+/// (enumerated for the small case, Monte Carlo for the others, within four
+/// standard errors), and equals it without ties; AUROC equals
+/// roc_auc_score on the same ties (scripts/make_metric_fixtures.py).
+#[test]
+fn average_precision_with_ties_is_scikit_learn_over_every_ordering() {
+    let cases = tie_cases();
+    let neg = |v: &[f64]| v.iter().map(|x| -x).collect::<Vec<_>>();
+    for name in ["small", "stuck", "rounded", "untied"] {
+        let c = &cases[name];
+        let (id, ood) = (common::floats(&c["id"]), common::floats(&c["ood"]));
+        let check = |what: &str, got: f64, want: &serde_json::Value| {
+            let (v, se) = (want["value"].as_f64().unwrap(), want["std_error"].as_f64().unwrap());
+            assert!((got - v).abs() <= 1e-12 + 4.0 * se, "{name} {what}: {got} vs {v} (standard error {se})");
+        };
+        check("AP, outliers positive", average_precision(&id, &ood), &c["ap_out"]);
+        check("AP, in-distribution positive", average_precision(&neg(&ood), &neg(&id)), &c["ap_in"]);
+        let m = Metrics::of(&id, &ood);
+        check("AUPR-In", m.aupr_in, &c["ap_in"]);
+        check("AUPR-Out", m.aupr_out, &c["ap_out"]);
+        let want = c["roc_auc_score"].as_f64().unwrap();
+        assert!((m.auroc - want).abs() < 1e-12, "{name} AUROC {} vs {want}", m.auroc);
+    }
+}
+
+/// Bootstrap resamples repeat rows; every interval must still contain its
+/// point estimate on tied data shaped like the demo's stuck sensor (one
+/// tied value below every in-distribution score, so AUROC is 0 and the
+/// curves barely move between resamples), in both orientations.
+#[test]
+fn every_bootstrap_interval_contains_its_estimate_on_tied_data() {
+    let cases = tie_cases();
+    for name in ["stuck", "rounded", "small"] {
+        let c = &cases[name];
+        let (id, ood) = (common::floats(&c["id"]), common::floats(&c["ood"]));
+        for (a, b) in [(&id, &ood), (&ood, &id)] {
+            for (metric, e) in with_intervals(a, b, 400, 3) {
+                assert!(
+                    e.ci95[0] <= e.value && e.value <= e.ci95[1],
+                    "{name} {metric}: {} outside [{}, {}]",
+                    e.value,
+                    e.ci95[0],
+                    e.ci95[1]
+                );
+            }
+        }
+    }
 }
 
 /// FPR at 95% TPR and detection error by their definitions on a small case
@@ -76,8 +126,9 @@ fn evaluate_refuses_mismatched_or_missing_columns() {
         let err = String::from_utf8_lossy(&out.get_output().stderr).to_string();
         assert!(err.contains(message), "{err}");
     };
-    refused(&[], "ood.csv: has no column 'typicality' (it has: log_likelihood)");
-    refused(&["--columns", "nope"], "'nope' is not an anomaly score");
+    refused(&[], "ood.csv: has no score column 'typicality' that");
+    refused(&[], "evaluate the shared ones with --columns log_likelihood");
+    refused(&["--columns", "nope"], "--columns: 'nope' is not a score column");
     let ok = Command::cargo_bin("tidemark")
         .unwrap()
         .args([
