@@ -80,6 +80,7 @@ pub struct Reader {
     peeked: Option<RecordBatch>,
     /// Refuse NaN and infinite values (otherwise they pass through).
     pub finite: bool,
+    schema: SchemaRef,
 }
 
 /// Where, in the projected batches, each part of a row comes from.
@@ -145,7 +146,17 @@ impl Reader {
 
     fn new(path: &Path, batches: Batches, plan: Plan, rows_hint: Option<usize>, schema: &SchemaRef) -> Reader {
         let dim = plan.schema_width(schema);
-        Reader { path: path.to_path_buf(), batches, plan, rows_hint, next_row: 0, dim, peeked: None, finite: true }
+        Reader {
+            path: path.to_path_buf(),
+            batches,
+            plan,
+            rows_hint,
+            next_row: 0,
+            dim,
+            peeked: None,
+            finite: true,
+            schema: schema.clone(),
+        }
     }
 
     /// The embedding width (reads ahead one batch for variable-size lists).
@@ -195,9 +206,20 @@ impl Reader {
         }
     }
 
-    /// The schema of the kept columns, in the order they were asked for.
+    /// The names of the kept columns, in the order they were asked for.
     pub fn keep_names(&self) -> &[String] {
         &self.plan.keep
+    }
+
+    /// The kept columns' schema, in the order they were asked for.
+    pub fn keep_schema(&self) -> SchemaRef {
+        let fields: Vec<arrow_schema::Field> =
+            self.plan.keep.iter().filter_map(|k| self.schema.field_with_name(k).ok().cloned()).collect();
+        std::sync::Arc::new(arrow_schema::Schema::new(fields))
+    }
+
+    pub fn path(&self) -> &Path {
+        &self.path
     }
 }
 
@@ -467,7 +489,8 @@ impl Plan {
         if self.keep.is_empty() {
             return Ok(None);
         }
-        let indices: Vec<usize> = self.keep.iter().filter_map(|k| batch.schema().index_of(k).ok()).collect();
+        let schema = batch.schema();
+        let indices: Vec<usize> = self.keep.iter().filter_map(|k| schema.index_of(k).ok()).collect();
         batch.project(&indices).map(Some).or_else(|e| fail(path, format!("cannot carry kept columns: {e}")))
     }
 }

@@ -154,6 +154,12 @@ impl Dataset {
         Ok(Dataset { path: path.to_path_buf(), rows, cols, storage })
     }
 
+    /// The same rows under another name (for messages).
+    pub fn renamed(mut self, path: &Path) -> Dataset {
+        self.path = path.to_path_buf();
+        self
+    }
+
     /// Rows already in memory (no file behind them).
     pub fn in_memory(m: Matrix) -> Dataset {
         Dataset::from_matrix(Path::new("<memory>"), m)

@@ -86,3 +86,68 @@ mod tests {
         assert_eq!(sample_rows(5, 10, 0), vec![0, 1, 2, 3, 4]);
     }
 }
+
+/// Rows to score: a whole file at hand, or batches read one at a time.
+pub enum ScoreInput {
+    Whole(Dataset),
+    Batches(columnar::Reader),
+}
+
+/// Open `path` for scoring, values unchecked (the scorer checks each row):
+/// a columnar file, or an Arrow IPC stream on standard input (`-`), is read
+/// batch by batch; a `.npy` on standard input is spooled to a temporary file
+/// first (its header gives no way to stream it row by row through a pipe
+/// and still check its size).
+pub fn open_for_scoring(path: &Path, spec: &InputSpec) -> Result<ScoreInput, DataError> {
+    if crate::output::is_stdout(path) {
+        return stdin_input(spec);
+    }
+    if columnar::is_columnar(path) {
+        return Ok(ScoreInput::Batches(columnar::Reader::open(path, &spec.columns)?));
+    }
+    let spec = InputSpec { unchecked: true, ..spec.clone() };
+    Ok(ScoreInput::Whole(open(path, &spec)?.data))
+}
+
+const NPY_MAGIC: &[u8] = b"\x93NUMPY";
+
+fn stdin_input(spec: &InputSpec) -> Result<ScoreInput, DataError> {
+    use std::io::BufRead;
+    let name = Path::new("<standard input>");
+    let fail = |msg: String| DataError { path: name.to_path_buf(), msg };
+    let mut input = std::io::BufReader::with_capacity(1 << 20, std::io::stdin());
+    let head = input.fill_buf().map_err(|e| fail(format!("cannot read: {e}")))?;
+    if head.is_empty() {
+        return Err(fail("is empty".into()));
+    }
+    if !head.starts_with(NPY_MAGIC) {
+        return Ok(ScoreInput::Batches(columnar::Reader::ipc_stream(name, Box::new(input), &spec.columns)?));
+    }
+    let c = &spec.columns;
+    if c.features.is_some() || c.label_column.is_some() || !c.keep.is_empty() {
+        return Err(fail("column options need an Arrow IPC stream, not .npy".into()));
+    }
+    let spool = Spool::new();
+    let mut file = std::fs::File::create(&spool.0).map_err(|e| fail(format!("cannot spool: {e}")))?;
+    std::io::copy(&mut input, &mut file).map_err(|e| fail(format!("cannot spool: {e}")))?;
+    drop(file);
+    let data = Dataset::open_unchecked(&spool.0, None).map_err(|e| fail(e.msg))?;
+    // The map stays valid after the name is gone.
+    drop(spool);
+    Ok(ScoreInput::Whole(Dataset::renamed(data, name)))
+}
+
+/// A temporary file of ours, removed when dropped.
+struct Spool(std::path::PathBuf);
+
+impl Spool {
+    fn new() -> Spool {
+        Spool(std::env::temp_dir().join(format!(".tidemark-stdin.{}.npy", std::process::id())))
+    }
+}
+
+impl Drop for Spool {
+    fn drop(&mut self) {
+        let _ = std::fs::remove_file(&self.0);
+    }
+}

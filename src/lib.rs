@@ -31,6 +31,7 @@ pub mod progress;
 pub mod report;
 pub mod score;
 pub mod simd;
+pub mod stream;
 pub mod train;
 
 pub use error::{Error, Result};

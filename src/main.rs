@@ -12,7 +12,7 @@ use tidemark::flow::Mixing;
 use tidemark::model::{Kind, Model};
 use tidemark::preprocess::Method;
 use tidemark::train::{default_threads, FitOptions, Run};
-use tidemark::{columnar, data, demo, evaluate, input, report, score, Result};
+use tidemark::{columnar, data, demo, evaluate, input, report, score, stream, Result};
 
 #[derive(Parser)]
 #[command(
@@ -57,6 +57,12 @@ enum Command {
         /// Rows with a NaN or infinite value: error (stop, write nothing), flag (write with empty scores and a bad_row reason column) or skip (leave out); the count is printed.
         #[arg(long, value_enum, default_value = "error")]
         bad_rows: score::BadRows,
+        /// Parquet or Arrow input: columns written unchanged beside the scores, in input order (.parquet, .arrow or .arrows output), comma-separated.
+        #[arg(long, value_delimiter = ',')]
+        keep: Vec<String>,
+        /// With -o -: write an Arrow IPC stream to standard output instead of CSV.
+        #[arg(long)]
+        arrow_stdout: bool,
         #[command(flatten)]
         input: InputArgs,
         /// Worker threads [default: all cores].
@@ -401,6 +407,8 @@ fn run(cli: Cli) -> Result<()> {
             batch_output,
             calibration,
             bad_rows,
+            keep,
+            arrow_stdout,
             input: input_args,
             threads,
         } => {
@@ -413,17 +421,31 @@ fn run(cli: Cli) -> Result<()> {
                 }
                 None => None,
             };
-            // Rows are checked for NaN and infinity by score itself (--bad-rows).
-            let spec = input::InputSpec { unchecked: true, ..input_args.spec() };
-            let x = input::open(&path, &spec)?.data;
-            m.check_width(&path, x.cols)?;
+            let mut spec = input_args.spec();
+            spec.columns.keep = keep;
             let batch = match batch {
                 Some(size) => Some(score::BatchTest::new(size, batch_alpha, batch_output, &output)?),
                 None => None,
             };
             let decision = calibration.as_ref().map(|c| c as &dyn score::Decision);
             let opts = score::ScoreOptions { columns, threads, batch, decision, bad_rows };
-            let summary = score::score_to_file(&m, &x, &output, &opts)?;
+            // Rows are checked for NaN and infinity by score itself (--bad-rows).
+            let summary = match input::open_for_scoring(&path, &spec)? {
+                input::ScoreInput::Whole(x) => {
+                    m.check_width(&path, x.cols)?;
+                    if arrow_stdout {
+                        return Err(tidemark::Error::Invalid(
+                            "--arrow-stdout needs a Parquet or Arrow input (or an Arrow IPC stream on standard input)"
+                                .into(),
+                        ));
+                    }
+                    score::score_to_file(&m, &x, &output, &opts)?
+                }
+                input::ScoreInput::Batches(mut reader) => {
+                    let target = stream::Target::of(&output, arrow_stdout)?;
+                    stream::score_batches(&m, &mut reader, &output, target, &opts)?
+                }
+            };
             eprintln!("{}", score_summary(&output, &summary, calibration.as_ref(), bad_rows));
             Ok(())
         }

@@ -409,7 +409,7 @@ pub fn select_columns(model: &Model, requested: &[String], added: &[String], fla
 }
 
 /// Rows of `x` with a NaN or infinite value, with the reason.
-fn find_bad_rows(x: &Dataset) -> Vec<(usize, String)> {
+pub fn find_bad_rows(x: &Dataset) -> Vec<(usize, String)> {
     let mut row = vec![0.0f32; x.cols];
     let mut bad = Vec::new();
     for r in 0..x.rows {
@@ -421,34 +421,127 @@ fn find_bad_rows(x: &Dataset) -> Vec<(usize, String)> {
     bad
 }
 
+/// The work on each chunk of rows that every scoring path shares: evaluate
+/// the good rows, feed the batch test and the decision's count, and fill the
+/// score values.
+pub struct ChunkScorer<'m> {
+    model: &'m Model,
+    /// The score columns, in output order.
+    pub columns: Vec<String>,
+    scorer: Scorer<'m>,
+    evaluator: crate::model::Evaluator<'m>,
+    values: Vec<f64>,
+    batch: Option<&'m BatchTest>,
+    decision: Option<&'m dyn Decision>,
+    /// Per batch of the batch test: (sum of NLLs, rows), kept as the rows
+    /// stream past so memory grows with batches, not rows.
+    batches: Vec<(f64, usize)>,
+    pub summary: ScoreSummary,
+}
+
+impl<'m> ChunkScorer<'m> {
+    /// For chunks of at most `max_rows` rows.
+    pub fn new(model: &'m Model, opts: &'m ScoreOptions, max_rows: usize) -> Result<ChunkScorer<'m>> {
+        let added = opts.decision.map(|d| d.columns()).unwrap_or_default();
+        let columns = select_columns(model, &opts.columns, &added, "--columns")?;
+        Ok(ChunkScorer {
+            model,
+            scorer: Scorer::new(model, opts.decision),
+            evaluator: model.evaluator(opts.threads, max_rows.max(1)),
+            values: vec![0.0f64; max_rows.max(1) * columns.len()],
+            columns,
+            batch: opts.batch.as_ref(),
+            decision: opts.decision,
+            batches: Vec::new(),
+            summary: ScoreSummary { flagged: opts.decision.map(|_| 0), ..ScoreSummary::default() },
+        })
+    }
+
+    /// Score rows `good` of `x`: their values, row-major, one row of
+    /// `columns` each.
+    pub fn score(&mut self, x: &Dataset, good: &[usize]) -> &[f64] {
+        let e = if good.is_empty() { Evaluation::default() } else { self.evaluator.evaluate_rows(x, good) };
+        if let Some(b) = self.batch {
+            for ll in &e.log_likelihood {
+                match self.batches.last_mut() {
+                    Some((sum, n)) if *n < b.size => {
+                        *sum -= ll;
+                        *n += 1;
+                    }
+                    _ => self.batches.push((-ll, 1)),
+                }
+            }
+        }
+        if let (Some(d), Some(count)) = (self.decision, self.summary.flagged.as_mut()) {
+            *count += (0..good.len()).filter(|&r| d.flags(self.scorer.value(&e, d.score(), r))).count();
+        }
+        let values = &mut self.values[..good.len() * self.columns.len()];
+        // On the flow's worker threads (the multi-statistic KDE is the
+        // costly column); written in row order by the caller.
+        self.scorer.fill(&e, &self.columns, values, self.evaluator.pool());
+        self.summary.scored += good.len();
+        values
+    }
+
+    /// Write the batch test, if asked for, and say what the run did.
+    pub fn finish(self) -> Result<ScoreSummary> {
+        if let Some(b) = self.batch {
+            write_batch_test(self.model, &self.batches, b)?;
+        }
+        Ok(self.summary)
+    }
+}
+
+/// Each row of a chunk in order: `Ok(k)` for a good row, the k-th of those
+/// evaluated, or `Err(reason)` for a bad one; and the good rows' indices.
+/// `bad` yields the bad rows (row, reason) in increasing order.
+pub fn sort_rows<'b>(
+    rows: std::ops::Range<usize>,
+    bad: &mut std::iter::Peekable<impl Iterator<Item = &'b (usize, String)>>,
+) -> (Vec<std::result::Result<usize, &'b str>>, Vec<usize>) {
+    let mut order = Vec::with_capacity(rows.len());
+    let mut good = Vec::with_capacity(rows.len());
+    for r in rows {
+        match bad.peek() {
+            Some((b, why)) if *b == r => {
+                order.push(Err(why.as_str()));
+                bad.next();
+            }
+            _ => {
+                order.push(Ok(good.len()));
+                good.push(r);
+            }
+        }
+    }
+    (order, good)
+}
+
+/// The error for the first bad row under `--bad-rows error`.
+pub fn bad_row_error(path: &Path, row: usize, why: &str) -> Error {
+    Error::Invalid(format!(
+        "{}: row {row} (0-based) has {why}; --bad-rows flag or skip scores past such rows",
+        path.display()
+    ))
+}
+
 /// Score every row of `x` and write the scores to `output`, chunk by chunk.
 /// Rows with NaN or infinite values are handled as `opts.bad_rows` says;
 /// with `BadRows::Error` nothing is written when there is one.
 pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOptions) -> Result<ScoreSummary> {
-    let added = opts.decision.map(|d| d.columns()).unwrap_or_default();
-    let columns = select_columns(model, &opts.columns, &added, "--columns")?;
     let format = Format::of(output)?;
+    let mut chunks = ChunkScorer::new(model, opts, SCORE_CHUNK.min(x.rows))?;
     let bad = find_bad_rows(x);
     if let (BadRows::Error, Some((r, why))) = (opts.bad_rows, bad.first()) {
-        return Err(Error::Invalid(format!(
-            "{}: row {r} (0-based) has {why}; --bad-rows flag or skip scores past such rows",
-            x.path.display()
-        )));
+        return Err(bad_row_error(&x.path, *r, why));
     }
     let flag_column = opts.bad_rows == BadRows::Flag;
-    let mut header = columns.clone();
+    let width = chunks.columns.len();
+    let mut header = chunks.columns.clone();
     if flag_column {
         header.push("bad_row".into());
     }
     let written = if opts.bad_rows == BadRows::Skip { x.rows - bad.len() } else { x.rows };
-    let scorer = Scorer::new(model, opts.decision);
-    let mut evaluator = model.evaluator(opts.threads, SCORE_CHUNK.min(x.rows));
-    let mut values = vec![0.0f64; SCORE_CHUNK.min(x.rows) * columns.len()];
-    let mut summary = ScoreSummary { bad: bad.clone(), flagged: opts.decision.map(|_| 0), ..ScoreSummary::default() };
     let mut progress = crate::progress::Progress::new(x.rows, "rows scored");
-    // Per batch of the batch test: (sum of NLLs, rows), kept as the rows
-    // stream past so memory grows with batches, not rows.
-    let mut batches: Vec<(f64, usize)> = Vec::new();
     let mut next_bad = bad.iter().peekable();
     crate::output::write_atomic(output, |w| {
         let io = |source| Error::Io { path: output.to_path_buf(), source };
@@ -457,53 +550,19 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
             Format::Npy => crate::data::write_npy_header(w, written, header.len()).map_err(io)?,
             Format::JsonLines => {}
         }
-        let empty = vec![f64::NAN; columns.len()];
+        let empty = vec![f64::NAN; width];
         for start in (0..x.rows).step_by(SCORE_CHUNK) {
             let end = (start + SCORE_CHUNK).min(x.rows);
-            // Rows of this chunk in order, each good one with its place among
-            // the chunk's evaluated rows.
-            let mut order: Vec<std::result::Result<usize, &str>> = Vec::with_capacity(end - start);
-            let mut good = Vec::with_capacity(end - start);
-            for r in start..end {
-                match next_bad.peek() {
-                    Some((b, why)) if *b == r => {
-                        order.push(Err(why.as_str()));
-                        next_bad.next();
-                    }
-                    _ => {
-                        order.push(Ok(good.len()));
-                        good.push(r);
-                    }
-                }
-            }
-            let e = if good.is_empty() { Evaluation::default() } else { evaluator.evaluate_rows(x, &good) };
-            if let Some(b) = &opts.batch {
-                for ll in &e.log_likelihood {
-                    match batches.last_mut() {
-                        Some((sum, n)) if *n < b.size => {
-                            *sum -= ll;
-                            *n += 1;
-                        }
-                        _ => batches.push((-ll, 1)),
-                    }
-                }
-            }
-            if let (Some(d), Some(count)) = (opts.decision, summary.flagged.as_mut()) {
-                *count += (0..good.len()).filter(|&r| d.flags(scorer.value(&e, d.score(), r))).count();
-            }
-            let values = &mut values[..good.len() * columns.len()];
-            // On the flow's worker threads (the multi-statistic KDE is the
-            // costly column); written in row order by this thread.
-            scorer.fill(&e, &columns, values, evaluator.pool());
+            let (order, good) = sort_rows(start..end, &mut next_bad);
+            let values = chunks.score(x, &good);
             for place in order {
                 let (row, reason) = match place {
-                    Ok(k) => (&values[k * columns.len()..(k + 1) * columns.len()], None),
+                    Ok(k) => (&values[k * width..(k + 1) * width], None),
                     Err(_) if !flag_column => continue,
                     Err(why) => (&empty[..], Some(why)),
                 };
                 write_row(w, format, &header, row, flag_column.then_some(reason)).map_err(io)?;
             }
-            summary.scored += good.len();
             progress.advance(end - start);
         }
         Ok(())
@@ -522,9 +581,8 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
             writeln!(w, "{doc:#}").map_err(|source| Error::Io { path: sidecar.clone(), source })
         })?;
     }
-    if let Some(b) = &opts.batch {
-        write_batch_test(model, &batches, b)?;
-    }
+    let mut summary = chunks.finish()?;
+    summary.bad = bad;
     Ok(summary)
 }
 
@@ -532,7 +590,7 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
 /// column (the last of `columns`): the reason for a bad row, `None` for a
 /// good one. In `.npy` that column is 1 for a bad row and 0 otherwise (the
 /// reasons go to the sidecar `.json`).
-fn write_row(
+pub fn write_row(
     w: &mut dyn Write,
     format: Format,
     columns: &[String],

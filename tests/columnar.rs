@@ -127,3 +127,169 @@ fn the_binary_scores_parquet_and_arrow_exactly_as_npy() {
     let err = String::from_utf8(out.get_output().stderr.clone()).unwrap();
     assert!(err.contains("rows.npy") && err.contains("need a Parquet or Arrow file"), "{err}");
 }
+
+/// A model fitted on the fixture rows, and the CLI's CSV scores of rows.npy.
+fn model_and_reference(dir: &std::path::Path) -> (PathBuf, String) {
+    let model = dir.join("model.safetensors");
+    let rows = fixture("rows.npy");
+    tidemark()
+        .args(["fit", rows.to_str().unwrap(), "-o", model.to_str().unwrap(), "--epochs", "2", "-q"])
+        .assert()
+        .success();
+    let out = tidemark()
+        .args([
+            "score",
+            model.to_str().unwrap(),
+            rows.to_str().unwrap(),
+            "-o",
+            "-",
+            "--columns",
+            "log_likelihood,typicality",
+        ])
+        .assert()
+        .success();
+    (model, String::from_utf8(out.get_output().stdout.clone()).unwrap())
+}
+
+fn read_parquet(path: &std::path::Path) -> Vec<arrow_array::RecordBatch> {
+    let file = std::fs::File::open(path).unwrap();
+    let reader = parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder::try_new(file).unwrap().build().unwrap();
+    reader.map(|b| b.unwrap()).collect()
+}
+
+fn f64_column(batches: &[arrow_array::RecordBatch], name: &str) -> Vec<Option<f64>> {
+    use arrow_array::cast::AsArray;
+    batches
+        .iter()
+        .flat_map(|b| {
+            let c = b.column_by_name(name).unwrap().as_primitive::<arrow_array::types::Float64Type>().clone();
+            (0..c.len()).map(move |i| (!arrow_array::Array::is_null(&c, i)).then(|| c.value(i)))
+        })
+        .collect()
+}
+
+fn i64_column(batches: &[arrow_array::RecordBatch], name: &str) -> Vec<i64> {
+    use arrow_array::cast::AsArray;
+    batches
+        .iter()
+        .flat_map(|b| b.column_by_name(name).unwrap().as_primitive::<arrow_array::types::Int64Type>().values().to_vec())
+        .collect()
+}
+
+#[test]
+fn keyed_parquet_output_joins_back_to_the_input_rows() {
+    let dir = tempfile::tempdir().unwrap();
+    let (model, reference) = model_and_reference(dir.path());
+    let out = dir.path().join("scores.parquet");
+    tidemark()
+        .args(["score", model.to_str().unwrap(), fixture("fixed.parquet").to_str().unwrap(), "-o"])
+        .arg(&out)
+        .args(["--keep", "ts,id", "--columns", "log_likelihood,typicality"])
+        .assert()
+        .success();
+    let batches = read_parquet(&out);
+    let names: Vec<String> = batches[0].schema().fields().iter().map(|f| f.name().clone()).collect();
+    assert_eq!(names, ["ts", "id", "log_likelihood", "typicality"]);
+    assert_eq!(i64_column(&batches, "id"), (1000..1040).collect::<Vec<i64>>());
+    // Timestamps carried unchanged: minutes after 2026-11-01, in ms.
+    let ts: Vec<i64> = batches
+        .iter()
+        .flat_map(|b| {
+            use arrow_array::cast::AsArray;
+            b.column_by_name("ts")
+                .unwrap()
+                .as_primitive::<arrow_array::types::TimestampMillisecondType>()
+                .values()
+                .to_vec()
+        })
+        .collect();
+    assert!(ts.windows(2).all(|w| w[1] - w[0] == 60_000), "{ts:?}");
+    let ll: Vec<Option<f64>> = common::column(&reference, "log_likelihood").into_iter().map(Some).collect();
+    assert_eq!(f64_column(&batches, "log_likelihood"), ll);
+
+    // The same through an Arrow IPC file.
+    let ipc = dir.path().join("scores.arrow");
+    tidemark()
+        .args(["score", model.to_str().unwrap(), fixture("fixed.parquet").to_str().unwrap(), "-o"])
+        .arg(&ipc)
+        .args(["--keep", "id", "--columns", "log_likelihood,typicality"])
+        .assert()
+        .success();
+    let reader = arrow_ipc::reader::FileReader::try_new(std::fs::File::open(&ipc).unwrap(), None).unwrap();
+    let batches: Vec<_> = reader.map(|b| b.unwrap()).collect();
+    assert_eq!(i64_column(&batches, "id"), (1000..1040).collect::<Vec<i64>>());
+    assert_eq!(f64_column(&batches, "log_likelihood"), ll);
+
+    // --keep names a column the input lacks, or a row format for output.
+    let out2 = dir.path().join("other.parquet");
+    let err = tidemark()
+        .args(["score", model.to_str().unwrap(), fixture("fixed.parquet").to_str().unwrap(), "-o"])
+        .arg(&out2)
+        .args(["--keep", "uid"])
+        .assert()
+        .failure();
+    let msg = String::from_utf8(err.get_output().stderr.clone()).unwrap();
+    assert!(msg.contains("fixed.parquet") && msg.contains("has no column 'uid'"), "{msg}");
+    assert!(!out2.exists());
+}
+
+#[test]
+fn bad_rows_in_batches_are_flagged_or_skipped_with_their_keys() {
+    let dir = tempfile::tempdir().unwrap();
+    let (model, _) = model_and_reference(dir.path());
+    let bad = fixture("bad_nan.parquet");
+    let run = |mode: &str, out: &std::path::Path| {
+        tidemark()
+            .args(["score", model.to_str().unwrap(), bad.to_str().unwrap(), "-o"])
+            .arg(out)
+            .args(["--keep", "id", "--columns", "log_likelihood", "--bad-rows", mode])
+            .assert()
+    };
+    let refused = dir.path().join("refused.parquet");
+    let msg = String::from_utf8(run("error", &refused).failure().get_output().stderr.clone()).unwrap();
+    assert!(msg.contains("bad_nan.parquet") && msg.contains("row 11"), "{msg}");
+    assert!(!refused.exists());
+
+    let flagged = dir.path().join("flagged.parquet");
+    run("flag", &flagged).success();
+    let batches = read_parquet(&flagged);
+    let ll = f64_column(&batches, "log_likelihood");
+    assert_eq!(ll.len(), 40);
+    assert!(ll[11].is_none() && ll.iter().filter(|v| v.is_none()).count() == 1);
+    use arrow_array::cast::AsArray;
+    let why = batches[0].column_by_name("bad_row").unwrap().as_string::<i32>().clone();
+    assert!(why.value(11).contains("NaN") && arrow_array::Array::is_null(&why, 10));
+
+    let skipped = dir.path().join("skipped.parquet");
+    run("skip", &skipped).success();
+    let ids = i64_column(&read_parquet(&skipped), "id");
+    assert_eq!(ids.len(), 39);
+    assert!(!ids.contains(&1011));
+}
+
+#[test]
+fn pipes_read_arrow_streams_and_npy_from_standard_input() {
+    let dir = tempfile::tempdir().unwrap();
+    let (model, reference) = model_and_reference(dir.path());
+    let cols = ["--columns", "log_likelihood,typicality"];
+    let from_stdin = |file: &str, extra: &[&str]| {
+        let out = tidemark()
+            .args(["score", model.to_str().unwrap(), "-", "-o", "-"])
+            .args(cols)
+            .args(extra)
+            .pipe_stdin(fixture(file))
+            .unwrap()
+            .assert()
+            .success();
+        out.get_output().stdout.clone()
+    };
+    assert_eq!(String::from_utf8(from_stdin("fixed.arrows", &[])).unwrap(), reference);
+    assert_eq!(String::from_utf8(from_stdin("rows.npy", &[])).unwrap(), reference);
+    // An Arrow IPC stream out, with the ids carried through.
+    let bytes = from_stdin("fixed.arrows", &["--arrow-stdout", "--keep", "id"]);
+    let reader = arrow_ipc::reader::StreamReader::try_new(std::io::Cursor::new(bytes), None).unwrap();
+    let batches: Vec<_> = reader.map(|b| b.unwrap()).collect();
+    assert_eq!(i64_column(&batches, "id"), (1000..1040).collect::<Vec<i64>>());
+    let ll: Vec<Option<f64>> = common::column(&reference, "log_likelihood").into_iter().map(Some).collect();
+    assert_eq!(f64_column(&batches, "log_likelihood"), ll);
+}
