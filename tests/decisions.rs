@@ -180,3 +180,36 @@ fn option_errors_name_the_flag_and_suggest_the_nearest_name() {
     let e = err(&["score", &m, &p("held.npy"), "-o", &p("s2.csv"), "--columns", "zzz"]);
     assert!(e.contains("no column 'zzz' (it has:"), "{e}");
 }
+
+#[test]
+fn split_writes_three_files_that_hold_every_row_once() {
+    let dir = tempfile::tempdir().unwrap();
+    let all = data(101, 0.0);
+    let src = dir.path().join("all.npy");
+    common::save(&src, &all);
+    let prefix = dir.path().join("part");
+    let read = |name: &str| Dataset::open(&dir.path().join(format!("part.{name}.npy")), None).unwrap().to_matrix();
+    let out = tidemark()
+        .args(["split", src.to_str().unwrap(), "--fractions", "0.8,0.1,0.1", "--seed", "3", "-o"])
+        .arg(&prefix)
+        .assert()
+        .success();
+    assert!(stderr_of(&out).contains("part.calibration.npy (10 rows)"), "{}", stderr_of(&out));
+    let parts: Vec<Matrix> = ["train", "calibration", "test"].iter().map(|n| read(n)).collect();
+    assert_eq!(parts.iter().map(|m| m.rows).collect::<Vec<_>>(), vec![81, 10, 10]);
+    let mut rows: Vec<Vec<u32>> =
+        parts.iter().flat_map(|m| (0..m.rows).map(|r| m.row(r).iter().map(|v| v.to_bits()).collect())).collect();
+    let mut want: Vec<Vec<u32>> = (0..101).map(|r| all.row(r).iter().map(|v| v.to_bits()).collect()).collect();
+    rows.sort();
+    want.sort();
+    assert_eq!(rows, want);
+    // --ordered: by position, the last rows are the test file.
+    tidemark().args(["split", src.to_str().unwrap(), "--ordered", "-o"]).arg(&prefix).assert().success();
+    assert_eq!(read("test").row(9), all.row(100));
+    let out = tidemark()
+        .args(["split", src.to_str().unwrap(), "--fractions", "0.8,0.3", "-o"])
+        .arg(&prefix)
+        .assert()
+        .failure();
+    assert!(stderr_of(&out).contains("--fractions: give three shares"), "{}", stderr_of(&out));
+}
