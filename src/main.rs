@@ -59,7 +59,7 @@ enum Command {
         bad_rows: score::BadRows,
         #[command(flatten)]
         input: InputArgs,
-        /// Worker threads [default: all cores].
+        /// Worker threads (the default is every core).
         #[arg(long, default_value_t = default_threads())]
         threads: usize,
     },
@@ -80,7 +80,7 @@ enum Command {
         score: String,
         #[command(flatten)]
         input: InputArgs,
-        /// Worker threads [default: all cores].
+        /// Worker threads (the default is every core).
         #[arg(long, default_value_t = default_threads())]
         threads: usize,
     },
@@ -190,7 +190,7 @@ enum Command {
         /// Folder for the model, calibrations, scores, evaluation and report.
         #[arg(long, default_value = "demo-out")]
         out_dir: PathBuf,
-        /// Worker threads [default: all cores].
+        /// Worker threads (the default is every core).
         #[arg(long, default_value_t = default_threads())]
         threads: usize,
     },
