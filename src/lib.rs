@@ -9,7 +9,8 @@
 //! test; knows no calibration files) -> [`calibrate`] (decisions: a
 //! threshold and p-values applied to a score) -> [`evaluate`] (metrics of
 //! score files against outlier sets, decision rates) -> [`report`] (draws an
-//! evaluation). [`output`] writes every file; [`progress`] is the bar of
+//! evaluation). [`split`] cuts a file into train / calibration / test;
+//! [`output`] writes every file; [`progress`] is the bar of
 //! score, calibrate and evaluate. [`demo`] runs the whole job on the shipped
 //! demo data.
 
@@ -31,6 +32,7 @@ pub mod progress;
 pub mod report;
 pub mod score;
 pub mod simd;
+pub mod split;
 pub mod stream;
 pub mod train;
 

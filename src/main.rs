@@ -65,7 +65,7 @@ enum Command {
         arrow_stdout: bool,
         #[command(flatten)]
         input: InputArgs,
-        /// Worker threads [default: all cores].
+        /// Worker threads (the default is every core).
         #[arg(long, default_value_t = default_threads())]
         threads: usize,
     },
@@ -86,7 +86,7 @@ enum Command {
         score: String,
         #[command(flatten)]
         input: InputArgs,
-        /// Worker threads [default: all cores].
+        /// Worker threads (the default is every core).
         #[arg(long, default_value_t = default_threads())]
         threads: usize,
     },
@@ -120,18 +120,43 @@ enum Command {
         #[arg(long, default_value_t = 0)]
         seed: u64,
     },
+    /// Split a file of vectors into PREFIX.train.npy, PREFIX.calibration.npy and PREFIX.test.npy.
+    Split {
+        /// Vectors to split (.npy, .safetensors, .csv, Parquet or Arrow).
+        data: PathBuf,
+        /// Shares of the rows for training, calibration and test, summing to 1.
+        #[arg(long, value_delimiter = ',', default_value = "0.8,0.1,0.1")]
+        fractions: Vec<f64>,
+        /// Seed of the shuffle.
+        #[arg(long, default_value_t = 0)]
+        seed: u64,
+        /// Split by position without shuffling (time-ordered data: fit on the past, test on the future).
+        #[arg(long)]
+        ordered: bool,
+        /// Prefix of the output files.
+        #[arg(short, long)]
+        output: PathBuf,
+        #[command(flatten)]
+        input: InputArgs,
+    },
     /// Measure training and scoring throughput of the flow on synthetic data.
     Bench {
+        /// Width of the synthetic vectors.
         #[arg(long, default_value_t = 64)]
         dim: usize,
+        /// Conditioner hidden width.
         #[arg(long, default_value_t = 128)]
         hidden: usize,
+        /// Coupling layers.
         #[arg(long, default_value_t = 8)]
         layers: usize,
+        /// Conditioner hidden layers.
         #[arg(long, default_value_t = 2)]
         depth: usize,
+        /// Minibatch size.
         #[arg(long, default_value_t = 256)]
         batch: usize,
+        /// Worker threads.
         #[arg(long, default_value_t = 1)]
         threads: usize,
         /// Seconds per measurement.
@@ -143,6 +168,7 @@ enum Command {
     },
     /// Print how a model was made and how it did.
     Inspect {
+        /// Model file from `tidemark fit` (.safetensors).
         model: PathBuf,
         /// Print the raw metadata JSON instead.
         #[arg(long)]
@@ -150,20 +176,27 @@ enum Command {
     },
     /// Draw vectors from a fitted model into a .npy file.
     Sample {
+        /// Model file from `tidemark fit` (.safetensors).
         model: PathBuf,
+        /// Vectors to draw.
         #[arg(short = 'n', long)]
         count: usize,
+        /// Where the vectors go (.npy, float32).
         #[arg(short, long)]
         output: PathBuf,
+        /// Seed of the draw.
         #[arg(long, default_value_t = 0)]
         seed: u64,
     },
     /// Run the whole job on the shipped demo data and summarise it.
     Demo {
+        /// Folder holding the demo's .npy files (from scripts/make_demo_data.py).
         #[arg(long, default_value = "demo-data")]
         data_dir: PathBuf,
+        /// Folder for the model, calibrations, scores, evaluation and report.
         #[arg(long, default_value = "demo-out")]
         out_dir: PathBuf,
+        /// Worker threads (the default is every core).
         #[arg(long, default_value_t = default_threads())]
         threads: usize,
     },
@@ -204,6 +237,7 @@ impl InputArgs {
 
 #[derive(Args)]
 struct FitArgs {
+    /// Training vectors (.npy, .safetensors or .csv), one row per vector.
     data: PathBuf,
     /// Where to write the model (.safetensors).
     #[arg(short, long)]
@@ -501,6 +535,14 @@ fn run(cli: Cli) -> Result<()> {
             print!("{}", evaluate::table(&evaluated));
             Ok(())
         }
+        Command::Split { data: path, fractions, seed, ordered, output, input: input_args } => {
+            let split = tidemark::split::Split::new(&fractions, seed, ordered)?;
+            let x = input::open(&path, &input_args.spec())?.data;
+            for (file, rows) in tidemark::split::run(&x, &output, &split)? {
+                eprintln!("wrote {} ({rows} rows)", file.display());
+            }
+            Ok(())
+        }
         Command::Bench { dim, hidden, layers, depth, batch, threads, seconds, json } => {
             let cfg = tidemark::bench::BenchConfig { dim, hidden, layers, depth, batch, threads, seconds };
             let result = tidemark::bench::run(&cfg);
@@ -598,6 +640,28 @@ fn main() -> ExitCode {
         Err(e) => {
             eprintln!("error: {e}");
             ExitCode::FAILURE
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use clap::CommandFactory;
+
+    /// Every positional argument and option of every subcommand says what
+    /// it is for in `--help`.
+    #[test]
+    fn every_argument_has_a_help_line() {
+        let cli = Cli::command();
+        for sub in cli.get_subcommands() {
+            for arg in sub.get_arguments().filter(|a| !a.is_hide_set()) {
+                let id = arg.get_id().as_str();
+                if id == "help" || id == "version" {
+                    continue;
+                }
+                assert!(arg.get_help().is_some(), "tidemark {} {id} has no help line", sub.get_name());
+            }
         }
     }
 }

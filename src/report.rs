@@ -1,12 +1,13 @@
 //! Report: one self-contained HTML file (inline SVG drawn with plotters, no
-//! scripts, no fonts or files fetched) with, per score, overlaid histograms
-//! of the in-distribution and outlier sets with the calibrated threshold,
-//! ROC curves and the metric table; and the training curves when a
-//! training log is given.
+//! scripts, no fonts or files fetched) that draws an evaluation's results.
+//! It opens with a summary (AUROC per score and outlier set, the best score
+//! per set marked), then the calibrated decision, then the training curves
+//! when a log is given, then per score the metric table, histograms on a
+//! robust common range and ROC curves.
 
 use crate::calibrate::Calibration;
 use crate::error::{Error, Result};
-use crate::evaluate::{anomaly, median, roc_curve, Evaluated, METRIC_NAMES};
+use crate::evaluate::{anomaly, median, roc_curve, Estimate, Evaluated, METRIC_NAMES};
 use crate::train::LogEntry;
 use plotters::prelude::*;
 use std::fmt::Write as _;
@@ -18,6 +19,9 @@ pub struct ReportInput<'a> {
     pub calibration: Option<&'a Calibration>,
     pub log: Option<&'a [LogEntry]>,
 }
+
+/// Readable names of the metrics in [`METRIC_NAMES`], in the same order.
+pub const METRIC_LABELS: [&str; 5] = ["AUROC", "AUPR-In", "AUPR-Out", "FPR at 95% TPR", "Detection error"];
 
 const COLORS: [RGBColor; 6] = [
     RGBColor(31, 119, 180),
@@ -36,115 +40,139 @@ fn escape(s: &str) -> String {
     s.replace('&', "&amp;").replace('<', "&lt;").replace('>', "&gt;").replace('"', "&quot;")
 }
 
-/// Overlaid, normalised histograms of one column for every set, with an
-/// optional vertical threshold line.
-fn histogram_svg(column: &str, sets: &[(&str, &[f64])], threshold: Option<f64>) -> Result<String> {
-    let finite: Vec<f64> = sets.iter().flat_map(|s| s.1.iter().copied()).filter(|v| v.is_finite()).collect();
-    if finite.is_empty() {
-        return Ok(String::new());
+fn css(c: RGBColor) -> String {
+    format!("rgb({},{},{})", c.0, c.1, c.2)
+}
+
+/// A legend beside a chart (outside its plot area): a swatch per series.
+fn legend(items: &[(&str, RGBColor)]) -> String {
+    let mut s = String::from("<div class=\"legend\">");
+    for (name, color) in items {
+        let _ =
+            write!(s, "<div><span class=\"swatch\" style=\"background:{}\"></span>{}</div>", css(*color), escape(name));
     }
-    // The view is the in-distribution set's central 99% widened by half its
-    // width on each side (and the threshold); values beyond it are counted
-    // in the end bins, so far-off outliers show as a spike at the edge
-    // instead of squashing the in-distribution histogram.
-    let mut id: Vec<f64> = sets[0].1.iter().copied().filter(|v| v.is_finite()).collect();
+    s.push_str("</div>");
+    s
+}
+
+/// The value at quantile `q` of sorted `v` (nearest rank).
+fn quantile(sorted: &[f64], q: f64) -> f64 {
+    sorted[((q * (sorted.len() - 1) as f64).round() as usize).min(sorted.len() - 1)]
+}
+
+/// The histogram range of one score: the central 99.5% of the
+/// in-distribution values, widened to take in every outlier set's median
+/// and the threshold, plus 5% on each side. Far-off values would otherwise
+/// squash the in-distribution histogram into one bin.
+pub fn robust_range(sets: &[(&str, &[f64])], threshold: Option<f64>) -> Option<(f64, f64)> {
+    let finite = |v: &[f64]| {
+        let mut f: Vec<f64> = v.iter().copied().filter(|x| x.is_finite()).collect();
+        f.sort_by(f64::total_cmp);
+        f
+    };
+    let id = finite(sets.first()?.1);
     if id.is_empty() {
-        id = finite.clone();
+        return None;
     }
-    id.sort_by(f64::total_cmp);
-    let (q_lo, q_hi) = (id[(0.005 * (id.len() - 1) as f64) as usize], id[(0.995 * (id.len() - 1) as f64) as usize]);
-    let pad = 0.5 * (q_hi - q_lo).max(f64::EPSILON * q_hi.abs().max(1.0));
-    let (all_lo, all_hi) = finite.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), &v| (a.min(v), b.max(v)));
-    let mut lo = (q_lo - pad).max(all_lo);
-    let mut hi = (q_hi + pad).min(all_hi);
-    if let Some(t) = threshold {
+    let (mut lo, mut hi) = (quantile(&id, 0.0025), quantile(&id, 0.9975));
+    for (_, v) in &sets[1..] {
+        let v = finite(v);
+        if !v.is_empty() {
+            let m = quantile(&v, 0.5);
+            lo = lo.min(m);
+            hi = hi.max(m);
+        }
+    }
+    if let Some(t) = threshold.filter(|t| t.is_finite()) {
         lo = lo.min(t);
         hi = hi.max(t);
     }
-    if hi <= lo {
-        hi = lo + 1.0;
-    }
+    let pad = 0.05 * (hi - lo).max(f64::EPSILON * hi.abs().max(1.0));
+    Some((lo - pad, hi + pad))
+}
+
+/// Overlaid, normalised histograms of one column for every set on
+/// [`robust_range`], the threshold as a vertical line, and a note counting
+/// the values of each set outside the range (not drawn).
+fn histogram(column: &str, sets: &[(&str, &[f64])], threshold: Option<f64>) -> Result<String> {
+    let Some((lo, hi)) = robust_range(sets, threshold) else { return Ok(String::new()) };
     let bins = 40;
     let width = (hi - lo) / bins as f64;
+    let mut outside = Vec::new();
     let densities: Vec<Vec<f64>> = sets
         .iter()
-        .map(|(_, v)| {
+        .map(|(name, v)| {
             let mut counts = vec![0.0; bins];
             let n = v.iter().filter(|x| x.is_finite()).count().max(1) as f64;
-            for x in v.iter().filter(|x| x.is_finite()) {
-                let b = (((x - lo) / width).floor().max(0.0) as usize).min(bins - 1);
-                counts[b] += 1.0 / (n * width);
+            let (mut below, mut above) = (0usize, 0usize);
+            for &x in v.iter().filter(|x| x.is_finite()) {
+                if x < lo {
+                    below += 1;
+                } else if x > hi {
+                    above += 1;
+                } else {
+                    counts[(((x - lo) / width) as usize).min(bins - 1)] += 1.0 / (n * width);
+                }
+            }
+            if below + above > 0 {
+                outside.push(format!("{}: {below} below, {above} above", escape(name)));
             }
             counts
         })
         .collect();
-    let top = densities.iter().flatten().cloned().fold(0.0, f64::max).max(f64::MIN_POSITIVE) * 1.1;
+    let top = densities.iter().flatten().cloned().fold(0.0, f64::max).max(f64::MIN_POSITIVE) * 1.05;
     let mut svg = String::new();
     {
-        let root = SVGBackend::with_string(&mut svg, (560, 320)).into_drawing_area();
+        let root = SVGBackend::with_string(&mut svg, (520, 300)).into_drawing_area();
         root.fill(&WHITE).map_err(plot_error)?;
         let mut chart = ChartBuilder::on(&root)
-            .caption(
-                format!("{column}: distribution per set (end bins hold values beyond the view)"),
-                ("sans-serif", 14),
-            )
+            .caption(format!("{column}: distribution per set"), ("sans-serif", 15))
             .margin(10)
-            .x_label_area_size(35)
-            .y_label_area_size(55)
+            .x_label_area_size(38)
+            .y_label_area_size(60)
             .build_cartesian_2d(lo..hi, 0.0..top)
             .map_err(plot_error)?;
-        chart.configure_mesh().x_desc(column).y_desc("density").draw().map_err(plot_error)?;
-        for (i, ((name, _), dens)) in sets.iter().zip(&densities).enumerate() {
+        chart.configure_mesh().x_desc(column).y_desc("density").x_labels(6).draw().map_err(plot_error)?;
+        for (i, dens) in densities.iter().enumerate() {
             let color = COLORS[i % COLORS.len()];
             let mut steps = Vec::with_capacity(2 * bins);
             for (b, d) in dens.iter().enumerate() {
                 steps.push((lo + b as f64 * width, *d));
                 steps.push((lo + (b + 1) as f64 * width, *d));
             }
-            chart
-                .draw_series(LineSeries::new(steps, color.stroke_width(2)))
-                .map_err(plot_error)?
-                .label(*name)
-                .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], color.stroke_width(2)));
+            chart.draw_series(LineSeries::new(steps, color.stroke_width(2))).map_err(plot_error)?;
         }
-        if let Some(t) = threshold.filter(|t| *t >= lo && *t <= hi) {
-            chart
-                .draw_series(LineSeries::new(vec![(t, 0.0), (t, top)], BLACK.stroke_width(1)))
-                .map_err(plot_error)?
-                .label("calibrated threshold")
-                .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], BLACK));
+        if let Some(t) = threshold {
+            chart.draw_series(LineSeries::new(vec![(t, 0.0), (t, top)], BLACK.stroke_width(2))).map_err(plot_error)?;
         }
-        draw_legend(&mut chart, SeriesLabelPosition::UpperRight)?;
         root.present().map_err(plot_error)?;
     }
-    Ok(svg)
-}
-
-/// The series legend, on a translucent white box with a black border.
-fn draw_legend<'a, DB, CT>(chart: &mut ChartContext<'a, DB, CT>, position: SeriesLabelPosition) -> Result<()>
-where
-    DB: DrawingBackend + 'a,
-    CT: CoordTranslate,
-{
-    chart
-        .configure_series_labels()
-        .background_style(WHITE.mix(0.85))
-        .border_style(BLACK)
-        .position(position)
-        .draw()
-        .map_err(plot_error)
+    let mut items: Vec<(&str, RGBColor)> =
+        sets.iter().enumerate().map(|(i, (n, _))| (*n, COLORS[i % COLORS.len()])).collect();
+    if threshold.is_some() {
+        items.push(("calibrated threshold", BLACK));
+    }
+    let note = if outside.is_empty() {
+        String::new()
+    } else {
+        format!(
+            "<p class=\"note\">Outside the plotted range [{lo:.4}, {hi:.4}] (not drawn): {}.</p>",
+            outside.join("; ")
+        )
+    };
+    Ok(format!("<figure>{svg}{}{note}</figure>", legend(&items)))
 }
 
 /// ROC curves (outliers positive) of one column for every outlier set.
-fn roc_svg(column: &str, curves: &[(&str, Vec<(f64, f64, f64)>)]) -> Result<String> {
+fn roc(column: &str, curves: &[(&str, Vec<(f64, f64, f64)>)]) -> Result<String> {
     let mut svg = String::new();
     {
-        let root = SVGBackend::with_string(&mut svg, (360, 320)).into_drawing_area();
+        let root = SVGBackend::with_string(&mut svg, (340, 300)).into_drawing_area();
         root.fill(&WHITE).map_err(plot_error)?;
         let mut chart = ChartBuilder::on(&root)
-            .caption(format!("{column}: ROC"), ("sans-serif", 16))
+            .caption(format!("{column}: ROC"), ("sans-serif", 15))
             .margin(10)
-            .x_label_area_size(35)
+            .x_label_area_size(38)
             .y_label_area_size(45)
             .build_cartesian_2d(0.0..1.0, 0.0..1.0)
             .map_err(plot_error)?;
@@ -155,51 +183,173 @@ fn roc_svg(column: &str, curves: &[(&str, Vec<(f64, f64, f64)>)]) -> Result<Stri
             .draw()
             .map_err(plot_error)?;
         chart.draw_series(LineSeries::new(vec![(0.0, 0.0), (1.0, 1.0)], BLACK.mix(0.3))).map_err(plot_error)?;
-        for (i, (name, pts)) in curves.iter().enumerate() {
+        for (i, (_, pts)) in curves.iter().enumerate() {
             let color = COLORS[(i + 1) % COLORS.len()];
             chart
                 .draw_series(LineSeries::new(pts.iter().map(|p| (p.0, p.1)), color.stroke_width(2)))
-                .map_err(plot_error)?
-                .label(*name)
-                .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], color.stroke_width(2)));
+                .map_err(plot_error)?;
         }
-        draw_legend(&mut chart, SeriesLabelPosition::LowerRight)?;
         root.present().map_err(plot_error)?;
     }
-    Ok(svg)
+    let items: Vec<(&str, RGBColor)> =
+        curves.iter().enumerate().map(|(i, (n, _))| (*n, COLORS[(i + 1) % COLORS.len()])).collect();
+    Ok(format!("<figure>{svg}{}</figure>", legend(&items)))
 }
 
-/// Train and validation NLL per epoch.
-fn training_svg(log: &[LogEntry]) -> Result<String> {
-    let xs = 1.0..(log.len().max(2) as f64);
+/// Train and validation NLL per epoch, epochs on an integer axis.
+fn training(log: &[LogEntry]) -> Result<String> {
+    let last = log.iter().map(|e| e.epoch).max().unwrap_or(1).max(2) as u32;
     let values: Vec<f64> = log.iter().flat_map(|e| [e.train_nll, e.val_nll]).filter(|v| v.is_finite()).collect();
     let (lo, hi) = values.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), &v| (a.min(v), b.max(v)));
+    if !lo.is_finite() {
+        return Ok(String::new());
+    }
     let pad = ((hi - lo) * 0.05).max(1e-6);
     let mut svg = String::new();
     {
-        let root = SVGBackend::with_string(&mut svg, (560, 320)).into_drawing_area();
+        let root = SVGBackend::with_string(&mut svg, (520, 300)).into_drawing_area();
         root.fill(&WHITE).map_err(plot_error)?;
         let mut chart = ChartBuilder::on(&root)
-            .caption("training", ("sans-serif", 16))
+            .caption("training", ("sans-serif", 15))
             .margin(10)
-            .x_label_area_size(35)
-            .y_label_area_size(55)
-            .build_cartesian_2d(xs, (lo - pad)..(hi + pad))
+            .x_label_area_size(38)
+            .y_label_area_size(60)
+            .build_cartesian_2d(1u32..last, (lo - pad)..(hi + pad))
             .map_err(plot_error)?;
-        chart.configure_mesh().x_desc("epoch").y_desc("NLL (nats per dimension)").draw().map_err(plot_error)?;
-        for (i, (name, pick)) in [("train", true), ("validation", false)].into_iter().enumerate() {
-            let color = COLORS[i];
-            let pts = log.iter().map(move |e| (e.epoch as f64, if pick { e.train_nll } else { e.val_nll }));
-            chart
-                .draw_series(LineSeries::new(pts, color.stroke_width(2)))
-                .map_err(plot_error)?
-                .label(name)
-                .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], color.stroke_width(2)));
+        chart
+            .configure_mesh()
+            .x_desc("epoch")
+            .y_desc("NLL (nats per dimension)")
+            .x_labels((last as usize).min(10))
+            .draw()
+            .map_err(plot_error)?;
+        for (i, pick) in [true, false].into_iter().enumerate() {
+            let pts = log.iter().map(move |e| (e.epoch as u32, if pick { e.train_nll } else { e.val_nll }));
+            chart.draw_series(LineSeries::new(pts, COLORS[i].stroke_width(2))).map_err(plot_error)?;
         }
-        draw_legend(&mut chart, SeriesLabelPosition::MiddleRight)?;
         root.present().map_err(plot_error)?;
     }
-    Ok(svg)
+    Ok(format!("<figure>{svg}{}</figure>", legend(&[("train", COLORS[0]), ("validation", COLORS[1])])))
+}
+
+/// The AUROC of `column` against outlier set `set`.
+fn auroc_of<'a>(ev: &'a Evaluated, set: &str, column: &str) -> Option<&'a Estimate> {
+    let (_, per_column) = ev.results.iter().find(|(s, _)| s == set)?;
+    let (_, est) = per_column.iter().find(|(c, _)| c == column)?;
+    est.iter().find(|(m, _)| m == "auroc").map(|(_, e)| e)
+}
+
+/// Background colour of an AUROC cell: white at chance, green towards 1,
+/// red towards 0 (a score that ranks the outliers as *more* typical).
+fn heat(auroc: f64) -> String {
+    let t = ((auroc - 0.5).abs() * 2.0).clamp(0.0, 1.0);
+    let fade = |full: f64| (255.0 - t * (255.0 - full)).round() as u8;
+    if auroc >= 0.5 {
+        format!("rgb({},{},{})", fade(120.0), fade(200.0), fade(120.0))
+    } else {
+        format!("rgb({},{},{})", fade(230.0), fade(120.0), fade(120.0))
+    }
+}
+
+/// The summary: AUROC per score (rows) and outlier set (columns), the best
+/// score of each set marked.
+fn summary(ev: &Evaluated) -> String {
+    let mut html =
+        String::from("<h2>Summary: AUROC per score and outlier set</h2>\n<table class=\"summary\"><tr><th>score</th>");
+    for (set, _) in &ev.results {
+        let _ = write!(html, "<th>{}</th>", escape(set));
+    }
+    html.push_str("</tr>\n");
+    // The best AUROC per set; every score that reaches it is marked.
+    let best: Vec<f64> = ev
+        .results
+        .iter()
+        .map(|(set, _)| {
+            ev.columns.iter().filter_map(|c| auroc_of(ev, set, c)).map(|e| e.value).fold(f64::NEG_INFINITY, f64::max)
+        })
+        .collect();
+    for column in &ev.columns {
+        let _ = write!(html, "<tr><td class=\"name\">{}</td>", escape(column));
+        for ((set, _), best) in ev.results.iter().zip(&best) {
+            match auroc_of(ev, set, column) {
+                Some(e) => {
+                    // Compared as shown (three decimals), so equal-looking cells agree.
+                    let shown = |v: f64| (v * 1000.0).round();
+                    let mark = if shown(e.value) == shown(*best) { " <b>&#9733; best</b>" } else { "" };
+                    let _ = write!(
+                        html,
+                        "<td style=\"background:{}\">{:.3} <small>[{:.3}, {:.3}]</small>{mark}</td>",
+                        heat(e.value),
+                        e.value,
+                        e.ci95[0],
+                        e.ci95[1]
+                    );
+                }
+                None => html.push_str("<td></td>"),
+            }
+        }
+        html.push_str("</tr>\n");
+    }
+    html.push_str(
+        "</table>\n<p class=\"note\">1 = every outlier scored more anomalous than every in-distribution vector, 0.5 = chance, \
+         below 0.5 = the outliers look <i>more</i> typical than in-distribution vectors on that score. Brackets: bootstrap 95% intervals. \
+         &#9733; marks the best score per outlier set (every score that reaches it to three decimals).</p>\n",
+    );
+    for note in &ev.notes {
+        let _ = writeln!(html, "<p class=\"note\">{}</p>", escape(note));
+    }
+    html
+}
+
+/// The calibrated decision: threshold, false-alarm rate on the held-out
+/// in-distribution rows, share of each outlier set flagged.
+fn decision(ev: &Evaluated, calibration: Option<&Calibration>) -> String {
+    let mut html = String::from("<h2>Calibrated decision</h2>\n");
+    if let Some(c) = calibration {
+        let _ = writeln!(
+            html,
+            "<p>Flag a vector when <b>{}</b> {} <b>{:.6}</b>: conformal rank {} of {} held-out calibration vectors, \
+             target false-alarm rate {}.</p>",
+            escape(&c.score),
+            match c.direction {
+                crate::score::Direction::Higher => "is above",
+                crate::score::Direction::Lower => "is below",
+                crate::score::Direction::TwoSided => "is this far from its calibration median or further:",
+            },
+            c.threshold_raw,
+            c.rank,
+            c.rows,
+            c.false_alarm
+        );
+    }
+    match &ev.decision {
+        Some(d) => {
+            html.push_str("<table><tr><th>set</th><th>flagged</th><th>share</th></tr>\n");
+            let _ = writeln!(
+                html,
+                "<tr><td class=\"name\">in-distribution (false alarms)</td><td>{} of {}</td><td>{:.2}%</td></tr>",
+                d.false_alarm.flagged,
+                d.false_alarm.rows,
+                100.0 * d.false_alarm.share()
+            );
+            for (set, r) in &d.detection {
+                let _ = writeln!(
+                    html,
+                    "<tr><td class=\"name\">{} (detected)</td><td>{} of {}</td><td>{:.2}%</td></tr>",
+                    escape(set),
+                    r.flagged,
+                    r.rows,
+                    100.0 * r.share()
+                );
+            }
+            let _ = writeln!(html, "</table>\n<p class=\"note\">Flags from {}.</p>", escape(&d.source));
+        }
+        None => html.push_str(
+            "<p class=\"note\">No calibrated decision: pass <code>--calibration</code> (from <code>tidemark calibrate</code>) \
+             to see its false-alarm and detection rates here.</p>\n",
+        ),
+    }
+    html
 }
 
 /// Write the report to `path` (atomically).
@@ -208,27 +358,35 @@ pub fn write_report(path: &Path, input: &ReportInput) -> Result<()> {
     let mut html = String::new();
     html.push_str(
         "<!DOCTYPE html>\n<html><head><meta charset=\"utf-8\"><title>tidemark evaluation</title>\n<style>\
-         body{font-family:sans-serif;margin:24px;color:#222}table{border-collapse:collapse;margin:8px 0}\
-         td,th{border:1px solid #bbb;padding:3px 8px;text-align:right}th{background:#eee}\
-         .plots{display:flex;flex-wrap:wrap;gap:8px}</style></head><body>\n<h1>tidemark evaluation</h1>\n",
+         body{font-family:sans-serif;margin:24px;color:#222;max-width:1200px}table{border-collapse:collapse;margin:8px 0}\
+         td,th{border:1px solid #bbb;padding:3px 8px;text-align:right}th{background:#eee}td.name{text-align:left}\
+         .plots{display:flex;flex-wrap:wrap;gap:12px}figure{margin:0}.legend{font-size:13px;margin:2px 0 0 60px}\
+         .legend div{display:inline-block;margin-right:14px}.swatch{display:inline-block;width:18px;height:4px;\
+         vertical-align:middle;margin-right:5px}.note{color:#555;font-size:13px;max-width:900px}</style></head><body>\n\
+         <h1>tidemark evaluation</h1>\n",
     );
     let names: Vec<String> = ev.ood.iter().map(|o| escape(&o.0)).collect();
     let _ = writeln!(
         html,
-        "<p>In-distribution: {} ({} vectors). Outlier sets: {}.</p>\n<p>AUROC and AUPR-Out take outliers as positive, \
-         AUPR-In takes in-distribution vectors as positive; FPR at 95% TPR is the share of outliers accepted at the \
-         threshold that keeps 95% of in-distribution vectors. Brackets: bootstrap 95% intervals.</p>",
+        "<p>In-distribution: {} ({} vectors). Outlier sets: {}.</p>",
         escape(&ev.id.path.display().to_string()),
         ev.id.values.first().map(Vec::len).unwrap_or(0),
         names.join(", ")
     );
+    html.push_str(&summary(ev));
+    html.push_str(&decision(ev, input.calibration));
     if let Some(log) = input.log.filter(|l| !l.is_empty()) {
-        let _ = writeln!(html, "<h2>Training</h2>\n{}", training_svg(log)?);
+        let _ = writeln!(html, "<h2>Training</h2>\n{}", training(log)?);
     }
+    html.push_str(
+        "<h2>Details per score</h2>\n<p class=\"note\">AUROC and AUPR-Out take outliers as positive, AUPR-In takes \
+         in-distribution vectors as positive; FPR at 95% TPR is the share of outliers accepted at the threshold that \
+         keeps 95% of in-distribution vectors; detection error is the least 0.5 (1 - TPR) + 0.5 FPR over thresholds.</p>\n",
+    );
     for column in &ev.columns {
-        let id_raw = ev.id.column(column).expect("checked column");
+        let id_raw = ev.id.column(column).unwrap_or(&[]);
         let mut sets: Vec<(&str, &[f64])> = vec![("in-distribution", id_raw)];
-        sets.extend(ev.ood.iter().map(|(n, t)| (n.as_str(), t.column(column).expect("checked column"))));
+        sets.extend(ev.ood.iter().map(|(n, t)| (n.as_str(), t.column(column).unwrap_or(&[]))));
         let threshold = input.calibration.filter(|c| &c.score == column).map(|c| c.threshold_raw);
         let centre = median(id_raw);
         let id_anomaly = anomaly(column, id_raw, centre);
@@ -236,39 +394,51 @@ pub fn write_report(path: &Path, input: &ReportInput) -> Result<()> {
             .ood
             .iter()
             .map(|(n, t)| {
-                (n.as_str(), roc_curve(&id_anomaly, &anomaly(column, t.column(column).expect("checked"), centre)))
+                (n.as_str(), roc_curve(&id_anomaly, &anomaly(column, t.column(column).unwrap_or(&[]), centre)))
             })
             .collect();
-        let _ = writeln!(html, "<h2>{}</h2>", escape(column));
-        if let Some(c) = input.calibration.filter(|c| &c.score == column) {
-            let _ = writeln!(
-                html,
-                "<p>Calibrated threshold {:.6} at false-alarm rate {} (conformal rank {} of {} held-out vectors).</p>",
-                c.threshold_raw, c.false_alarm, c.rank, c.rows
-            );
-        }
+        let _ = writeln!(html, "<h3>{}</h3>", escape(column));
         html.push_str("<table><tr><th>outlier set</th>");
-        for m in METRIC_NAMES {
+        for m in METRIC_LABELS {
             let _ = write!(html, "<th>{m}</th>");
         }
         html.push_str("</tr>\n");
         for (set, per_column) in &ev.results {
             let Some((_, estimates)) = per_column.iter().find(|(c, _)| c == column) else { continue };
-            let _ = write!(html, "<tr><td>{}</td>", escape(set));
-            for (_, e) in estimates {
-                let _ = write!(html, "<td>{:.4} [{:.4}, {:.4}]</td>", e.value, e.ci95[0], e.ci95[1]);
+            let _ = write!(html, "<tr><td class=\"name\">{}</td>", escape(set));
+            for name in METRIC_NAMES {
+                if let Some((_, e)) = estimates.iter().find(|(m, _)| m == name) {
+                    let _ = write!(html, "<td>{:.4} <small>[{:.4}, {:.4}]</small></td>", e.value, e.ci95[0], e.ci95[1]);
+                }
             }
             html.push_str("</tr>\n");
         }
         html.push_str("</table>\n<div class=\"plots\">");
-        html.push_str(&histogram_svg(column, &sets, threshold)?);
-        html.push_str(&roc_svg(column, &curves)?);
+        html.push_str(&histogram(column, &sets, threshold)?);
+        html.push_str(&roc(column, &curves)?);
         html.push_str("</div>\n");
     }
     html.push_str(
-        "<p>These are statistics of the sets given. Validate any threshold on your own data before it drives a decision.</p>\n</body></html>\n",
+        "<p class=\"note\">These are statistics of the sets given. Validate any threshold on your own data before it drives a decision.</p>\n</body></html>\n",
     );
     crate::output::write_atomic(path, |w| {
         w.write_all(html.as_bytes()).map_err(|source| Error::Io { path: path.into(), source })
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The range holds the central 99.5% of the in-distribution values and
+    /// every outlier set's median, and not a far-off outlier's extreme.
+    #[test]
+    fn histogram_range_is_robust_to_far_outliers() {
+        let id: Vec<f64> = (0..1000).map(|i| i as f64 / 1000.0).collect();
+        let far: Vec<f64> = (0..100).map(|i| if i < 60 { 2.0 } else { 1e6 }).collect();
+        let (lo, hi) = robust_range(&[("id", &id), ("far", &far)], None).unwrap();
+        assert!(lo < 0.003 && lo > -0.2, "{lo}");
+        assert!((2.0..2.2).contains(&hi), "{hi}");
+        assert_eq!(METRIC_LABELS.len(), METRIC_NAMES.len());
+    }
 }

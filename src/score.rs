@@ -59,8 +59,12 @@ pub fn column_help(name: &str) -> &'static str {
         "log_likelihood" => "log p(x), nats, input space; higher = more typical",
         "bits_per_dim" => "-log2 p(x) / live features; lower = more typical",
         "base_log_density" => "log p(z) under the base distribution; higher = more typical",
-        "log_det" => "ln|det dz/dx| (flow + whitening); compare with training values",
-        "latent_norm" => "||z||; near sqrt(D) is typical for a D-dim standard normal",
+        "log_det" => {
+            "ln|det dz/dx| (flow + whitening); two-sided: far from the in-distribution median either way is anomalous"
+        }
+        "latent_norm" => {
+            "||z||; near sqrt(D) is typical for a D-dim standard normal; two-sided: far from it either way is anomalous"
+        }
         "mahalanobis_sq" => "squared distance of z to the nearest class mean; higher = more anomalous",
         "typicality" => {
             "|NLL - mean NLL of held-out rows| / their NLL std (the fit's validation rows); higher = more anomalous"
@@ -69,7 +73,7 @@ pub fn column_help(name: &str) -> &'static str {
             "-log density of (log_det, mahalanobis_sq) under a KDE of validation vectors; higher = more anomalous"
         }
         "log_likelihood_ratio" => "log p(x) - log p_background(x); higher = more typical",
-        "predicted_class" => "most probable class label",
+        "predicted_class" => "most probable class label (not a score)",
         "class_probability" => "posterior probability of the predicted class",
         "dead_feature_deviation" => "largest |x_j - training value| on dead features; higher = more anomalous",
         "subspace_residual" => {

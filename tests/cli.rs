@@ -12,15 +12,7 @@ fn tidemark() -> Command {
     Command::new(common::bin())
 }
 
-/// Deterministic correlated 4-d data, optionally shifted (invented).
-fn data(n: usize, shift: f32) -> Matrix {
-    let mut v = Vec::with_capacity(n * 4);
-    for i in 0..n {
-        let (a, b, c) = ((i as f32 * 0.61).sin(), (i as f32 * 1.37).cos(), (i as f32 * 0.23).sin());
-        v.extend([a + shift, 0.5 * a + b + shift, a * b + 0.3 * c, c - 0.2 * b]);
-    }
-    Matrix::new(n, 4, v)
-}
+use common::wavy as data;
 
 #[test]
 fn fit_score_inspect_sample_end_to_end() {

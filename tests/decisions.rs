@@ -15,15 +15,7 @@ fn tidemark() -> Command {
     c
 }
 
-/// Deterministic correlated 4-d data, optionally shifted (invented).
-fn data(n: usize, shift: f32) -> Matrix {
-    let mut v = Vec::with_capacity(n * 4);
-    for i in 0..n {
-        let (a, b, c) = ((i as f32 * 0.61).sin(), (i as f32 * 1.37).cos(), (i as f32 * 0.23).sin());
-        v.extend([a + shift, 0.5 * a + b + shift, a * b + 0.3 * c, c - 0.2 * b]);
-    }
-    Matrix::new(n, 4, v)
-}
+use common::wavy as data;
 
 fn stderr_of(out: &assert_cmd::assert::Assert) -> String {
     String::from_utf8_lossy(&out.get_output().stderr).to_string()
@@ -179,4 +171,37 @@ fn option_errors_name_the_flag_and_suggest_the_nearest_name() {
     // Far from every name: no guess.
     let e = err(&["score", &m, &p("held.npy"), "-o", &p("s2.csv"), "--columns", "zzz"]);
     assert!(e.contains("no column 'zzz' (it has:"), "{e}");
+}
+
+#[test]
+fn split_writes_three_files_that_hold_every_row_once() {
+    let dir = tempfile::tempdir().unwrap();
+    let all = data(101, 0.0);
+    let src = dir.path().join("all.npy");
+    common::save(&src, &all);
+    let prefix = dir.path().join("part");
+    let read = |name: &str| Dataset::open(&dir.path().join(format!("part.{name}.npy")), None).unwrap().to_matrix();
+    let out = tidemark()
+        .args(["split", src.to_str().unwrap(), "--fractions", "0.8,0.1,0.1", "--seed", "3", "-o"])
+        .arg(&prefix)
+        .assert()
+        .success();
+    assert!(stderr_of(&out).contains("part.calibration.npy (10 rows)"), "{}", stderr_of(&out));
+    let parts: Vec<Matrix> = ["train", "calibration", "test"].iter().map(|n| read(n)).collect();
+    assert_eq!(parts.iter().map(|m| m.rows).collect::<Vec<_>>(), vec![81, 10, 10]);
+    let mut rows: Vec<Vec<u32>> =
+        parts.iter().flat_map(|m| (0..m.rows).map(|r| m.row(r).iter().map(|v| v.to_bits()).collect())).collect();
+    let mut want: Vec<Vec<u32>> = (0..101).map(|r| all.row(r).iter().map(|v| v.to_bits()).collect()).collect();
+    rows.sort();
+    want.sort();
+    assert_eq!(rows, want);
+    // --ordered: by position, the last rows are the test file.
+    tidemark().args(["split", src.to_str().unwrap(), "--ordered", "-o"]).arg(&prefix).assert().success();
+    assert_eq!(read("test").row(9), all.row(100));
+    let out = tidemark()
+        .args(["split", src.to_str().unwrap(), "--fractions", "0.8,0.3", "-o"])
+        .arg(&prefix)
+        .assert()
+        .failure();
+    assert!(stderr_of(&out).contains("--fractions: give three shares"), "{}", stderr_of(&out));
 }

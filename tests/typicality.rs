@@ -111,22 +111,14 @@ fn typicality_centres_on_held_out_rows_of_an_overfitted_model() {
     // the variance). The standard error of the mean of 4,000 values is ~0.03
     // here, the centre and scale from 3,000 validation rows add ~0.03.
     let (batch, alpha) = (25, 0.1);
-    run(&[
-        "score",
-        &p("m.safetensors"),
-        &p("held_out.npy"),
-        "-o",
-        &p("held_out.csv"),
-        "--columns",
-        "typicality",
-        "--batch",
-        &batch.to_string(),
-        "--batch-alpha",
-        &alpha.to_string(),
-        "--threads",
-        "1",
-    ]);
-    let t = common::column(&std::fs::read_to_string(p("held_out.csv")).unwrap(), "typicality");
+    let (size, level) = (batch.to_string(), alpha.to_string());
+    let score = |name: &str| {
+        let (input, output) = (p(&format!("{name}.npy")), p(&format!("{name}.csv")));
+        let args = ["score", &p("m.safetensors"), &input, "-o", &output, "--columns", "typicality"];
+        run(&[&args[..], &["--batch", &size, "--batch-alpha", &level, "--threads", "1"]].concat());
+        std::fs::read_to_string(output).unwrap()
+    };
+    let t = common::column(&score("held_out"), "typicality");
     let mean_sq = common::mean(&t.iter().map(|v| v * v).collect::<Vec<_>>());
     eprintln!("held-out rows: mean typicality^2 {mean_sq:.3}");
     assert!((mean_sq - 1.0).abs() < 0.15, "mean typicality^2 on held-out rows {mean_sq}");
@@ -140,21 +132,7 @@ fn typicality_centres_on_held_out_rows_of_an_overfitted_model() {
 
     // Narrow batches: the mean NLL drops by about (1 - 0.85^2) D / 2 = 2.2
     // nats, ~4 batch standard deviations; at least 85% must be caught (150 of 160 in one run).
-    run(&[
-        "score",
-        &p("m.safetensors"),
-        &p("narrow.npy"),
-        "-o",
-        &p("narrow.csv"),
-        "--columns",
-        "typicality",
-        "--batch",
-        &batch.to_string(),
-        "--batch-alpha",
-        &alpha.to_string(),
-        "--threads",
-        "1",
-    ]);
+    score("narrow");
     let (caught, narrow) = flagged(Path::new(&p("narrow.batches.csv")));
     eprintln!("narrow batches flagged: {caught}/{narrow}");
     assert!(caught as f64 >= 0.85 * narrow as f64, "only {caught} of {narrow} narrow batches flagged");

@@ -44,3 +44,13 @@ pub fn column(csv: &str, name: &str) -> Vec<f64> {
 pub fn mean(v: &[f64]) -> f64 {
     v.iter().sum::<f64>() / v.len() as f64
 }
+
+/// Deterministic correlated 4-d data, optionally shifted (invented).
+pub fn wavy(n: usize, shift: f32) -> Matrix {
+    let mut v = Vec::with_capacity(n * 4);
+    for i in 0..n {
+        let (a, b, c) = ((i as f32 * 0.61).sin(), (i as f32 * 1.37).cos(), (i as f32 * 0.23).sin());
+        v.extend([a + shift, 0.5 * a + b + shift, a * b + 0.3 * c, c - 0.2 * b]);
+    }
+    Matrix::new(n, 4, v)
+}
