@@ -9,6 +9,7 @@
 
 pub mod bench;
 pub mod calibrate;
+pub mod check;
 pub mod data;
 pub mod demo;
 pub mod error;

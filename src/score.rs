@@ -285,7 +285,7 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
     // Per batch of the batch test: (sum of NLLs, rows), kept as the rows
     // stream past so memory grows with batches, not rows.
     let mut batches: Vec<(f64, usize)> = Vec::new();
-    crate::output::write_atomic(output, |w| {
+    let body = |w: &mut dyn Write| {
         let io = |source| Error::Io { path: output.to_path_buf(), source };
         match format {
             Format::Csv => writeln!(w, "{}", columns.join(",")).map_err(io)?,
@@ -315,16 +315,19 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
             }
         }
         Ok(())
-    })?;
+    };
     if format == Format::Npy && !crate::output::is_stdout(output) {
+        // The column names beside the matrix; the two are written as a pair.
         let sidecar = output.with_extension("json");
         let doc = serde_json::json!({
             "columns": columns,
             "descriptions": columns.iter().map(|c| column_help(c)).collect::<Vec<_>>(),
         });
-        crate::output::write_atomic(&sidecar, |w| {
+        crate::output::write_atomic_pair(output, body, &sidecar, |w| {
             writeln!(w, "{doc:#}").map_err(|source| Error::Io { path: sidecar.clone(), source })
         })?;
+    } else {
+        crate::output::write_atomic(output, body)?;
     }
     if let Some(b) = &opts.batch {
         write_batch_test(model, &batches, b)?;
