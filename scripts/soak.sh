@@ -145,6 +145,6 @@ done
 left=$(find . -name '*.tmp' | wc -l)
 ((left == 0)) || fail "$left temporary files left at the end"
 echo "soak: $i jobs, $runs runs, $kills SIGKILL, $terms SIGTERM, $resumes resumes, $restarts fits started again," \
-    "$reruns score/calibrate reruns,"
+    "$reruns score/calibrate reruns," \
     "$identical fits byte-identical to the uninterrupted model, $checked surviving files checked, $failures failures"
 ((failures == 0))
