@@ -15,9 +15,12 @@ set -u
 SECONDS_TOTAL=${1:?usage: scripts/soak.sh SECONDS}
 ROOT=$(cd "$(dirname "$0")/.." && pwd)
 cargo build --release --quiet --manifest-path "$ROOT/Cargo.toml" || exit 1
-BIN="$ROOT/target/release/tidemark"
 WORK=$(mktemp -d)
 trap 'rm -rf "$WORK"' EXIT
+trap 'exit 130' INT TERM
+# A copy, so that a rebuild during the soak does not change the binary under it.
+cp "$ROOT/target/release/tidemark" "$WORK/tidemark-soak"
+BIN="$WORK/tidemark-soak"
 cd "$WORK" || exit 1
 export CANDLE_NUM_THREADS=1
 RANDOM=${SOAK_SEED:-1}
