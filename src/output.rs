@@ -295,6 +295,14 @@ pub fn print(text: impl std::fmt::Display) -> Result<()> {
 mod tests {
     use super::*;
 
+    /// Tests that write through temporary files hold this, since
+    /// [`remove_temporaries`] removes every one in the process.
+    static SERIAL: Mutex<()> = Mutex::new(());
+
+    fn serial() -> std::sync::MutexGuard<'static, ()> {
+        SERIAL.lock().unwrap_or_else(|e| e.into_inner())
+    }
+
     #[test]
     fn an_output_naming_an_input_through_a_link_or_dots_is_refused() {
         let dir = tempfile::tempdir().unwrap();
@@ -335,6 +343,7 @@ mod tests {
 
     #[test]
     fn stale_temporaries_of_dead_processes_are_removed_and_live_ones_kept() {
+        let _serial = serial();
         let dir = tempfile::tempdir().unwrap();
         let target = dir.path().join("s.csv");
         // PIDs above the kernel's maximum (2^22) cannot be alive.
@@ -351,8 +360,23 @@ mod tests {
         assert_eq!(std::fs::read(&target).unwrap(), b"a\n");
     }
 
+    /// What the panic hook and a second signal call before the process ends
+    /// without unwinding.
+    #[test]
+    fn temporaries_in_flight_are_removed_on_request() {
+        let _serial = serial();
+        let dir = tempfile::tempdir().unwrap();
+        let staged = Staged::new(&dir.path().join("m.safetensors"));
+        std::fs::write(&staged.tmp, b"half").unwrap();
+        remove_temporaries();
+        assert!(!staged.tmp.exists());
+        drop(staged);
+        assert!(std::fs::read_dir(dir.path()).unwrap().next().is_none());
+    }
+
     #[test]
     fn a_failed_pair_leaves_neither_file() {
+        let _serial = serial();
         let dir = tempfile::tempdir().unwrap();
         let (a, b) = (dir.path().join("s.npy"), dir.path().join("s.json"));
         let fail = |_: &mut dyn Write| Err(Error::Invalid("stop".into()));
