@@ -410,9 +410,17 @@ fn derive(seed: u64, purpose: u64, counter: u64) -> u64 {
 fn split_rows(n: usize, val_fraction: f64, seed: u64) -> (Vec<usize>, Vec<usize>) {
     let mut idx: Vec<usize> = (0..n).collect();
     idx.shuffle(&mut StdRng::seed_from_u64(derive(seed, 1, 0)));
-    let n_val = if val_fraction > 0.0 { ((n as f64 * val_fraction).round() as usize).clamp(1, n - 1) } else { 0 };
-    let val = idx.split_off(n - n_val);
+    let val = idx.split_off(n - validation_rows(n, val_fraction));
     (idx, val)
+}
+
+/// Rows of `n` that the seeded split holds out for validation.
+fn validation_rows(n: usize, val_fraction: f64) -> usize {
+    if val_fraction > 0.0 {
+        ((n as f64 * val_fraction).round() as usize).clamp(1, n - 1)
+    } else {
+        0
+    }
 }
 
 /// Fewest rows `fit` accepts.

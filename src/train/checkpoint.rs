@@ -1,7 +1,7 @@
 //! Checkpoints: writing them, reading them back, and the checks that a
 //! resumed run continues the run that wrote it.
 
-use super::{labels_checksum, Adam, Fingerprint, FitOptions, Learned, Run, Settings, TrainState};
+use super::{labels_checksum, validation_rows, Adam, Fingerprint, FitOptions, Learned, Run, Settings, TrainState};
 use crate::error::{Error, Result};
 use crate::model::Model;
 use crate::output::note;
@@ -91,6 +91,9 @@ pub(super) fn resume(checkpoint: &Checkpoint, run: &Run, opts: &FitOptions) -> R
         }
         _ => {}
     }
+    // A minibatch larger than the training rows was cut to them.
+    let train_rows = run.data.rows - validation_rows(run.data.rows, learned.settings.val_fraction);
+    let opts = &FitOptions { batch_size: opts.batch_size.map(|b| b.min(train_rows)), ..opts.clone() };
     for msg in apply_resume_options(&mut learned.settings, &learned.state, opts)? {
         if !opts.quiet {
             note(msg);
