@@ -33,7 +33,7 @@ def make(n):
     z[:, 1] += 0.8 * z[:, 0] ** 2
     return z
 np.save("train.npy", make(4000))
-np.save("held.npy", make(600))
+np.save("held.npy", make(20000))
 EOF
 
 FIT=(--epochs 6 --patience 100 --hidden 32 --layers 4 --threads 1 --seed 3 --checkpoint-minutes 0 -q)
@@ -41,13 +41,15 @@ runs=0 kills=0 terms=0 resumes=0 restarts=0 reruns=0 identical=0 checked=0 failu
 
 fail() { echo "FAIL: $*"; failures=$((failures + 1)); }
 
-# Run a command in the background and stop it after a random delay (or let
-# it finish); sets $status to its exit status.
+# Run a command in the background and stop it after a random delay of up to
+# $1 milliseconds (or let it finish); sets $status to its exit status.
 run_and_maybe_kill() {
+    local most=$1
+    shift
     "$@" >/dev/null 2>>errors.log &
-    local pid=$! delay=$((RANDOM % 1500))
+    local pid=$! delay=$((RANDOM % most))
     runs=$((runs + 1))
-    sleep "$(printf '0.%03d' "$delay")"
+    sleep "$(printf '%d.%03d' $((delay / 1000)) $((delay % 1000)))"
     if kill -0 "$pid" 2>/dev/null; then
         if ((RANDOM % 2)); then
             kill -KILL "$pid" 2>/dev/null && kills=$((kills + 1))
@@ -75,7 +77,7 @@ check_survivors() {
         *.safetensors) model_loads "$f" || fail "$f does not load" ;;
         *.jsonl) python3 -c "import json,sys; [json.loads(l) for l in open(sys.argv[1])]" "$f" || fail "$f: bad JSON lines" ;;
         *.json) python3 -c "import json,sys; json.load(open(sys.argv[1]))" "$f" || fail "$f: bad JSON" ;;
-        *.npy) python3 -c "import numpy as np,sys; a=np.load(sys.argv[1]); assert a.shape==(600,9)" "$f" || fail "$f: bad .npy" ;;
+        *.npy) python3 -c "import numpy as np,sys; a=np.load(sys.argv[1]); assert a.shape==(20000,9)" "$f" || fail "$f: bad .npy" ;;
         esac
     done
 }
@@ -98,16 +100,16 @@ while (($(date +%s) - started < SECONDS_TOTAL)); do
     case $((RANDOM % 3)) in
     0)
         m=m$i.safetensors ck=ck$i.safetensors log=log$i.jsonl
-        run_and_maybe_kill "$BIN" fit train.npy -o "$m" --checkpoint "$ck" --log "$log" "${FIT[@]}"
+        run_and_maybe_kill 1500 "$BIN" fit train.npy -o "$m" --checkpoint "$ck" --log "$log" "${FIT[@]}"
         while ((status != 0)); do
             check_survivors "$m" "$ck" "$log"
             if [[ -e $ck ]]; then
                 resumes=$((resumes + 1))
-                run_and_maybe_kill "$BIN" fit train.npy -o "$m" --resume "$ck" --log "$log" "${FIT[@]}"
+                run_and_maybe_kill 1500 "$BIN" fit train.npy -o "$m" --resume "$ck" --log "$log" "${FIT[@]}"
             else
                 # Killed before its first checkpoint: start again.
                 restarts=$((restarts + 1))
-                run_and_maybe_kill "$BIN" fit train.npy -o "$m" --checkpoint "$ck" --log "$log" "${FIT[@]}" --force
+                run_and_maybe_kill 1500 "$BIN" fit train.npy -o "$m" --checkpoint "$ck" --log "$log" "${FIT[@]}" --force
             fi
         done
         if cmp -s "$m" ref.safetensors; then identical=$((identical + 1)); else fail "$m differs from the uninterrupted model"; fi
@@ -119,11 +121,11 @@ while (($(date +%s) - started < SECONDS_TOTAL)); do
         ;;
     1)
         s=s$i.npy
-        run_and_maybe_kill "$BIN" score ref.safetensors held.npy -o "$s"
+        run_and_maybe_kill 120 "$BIN" score ref.safetensors held.npy -o "$s"
         while ((status != 0)); do
             check_survivors "$s" "${s%.npy}.json"
             reruns=$((reruns + 1))
-            run_and_maybe_kill "$BIN" score ref.safetensors held.npy -o "$s" --force
+            run_and_maybe_kill 120 "$BIN" score ref.safetensors held.npy -o "$s" --force
         done
         check_survivors "$s"
         cmp -s "$s" ref_scores.npy && cmp -s "${s%.npy}.json" ref_scores.json || fail "$s differs from the uninterrupted scores"
@@ -133,11 +135,11 @@ while (($(date +%s) - started < SECONDS_TOTAL)); do
         ;;
     2)
         c=c$i.json
-        run_and_maybe_kill "$BIN" calibrate ref.safetensors held.npy -o "$c" --false-alarm 0.05
+        run_and_maybe_kill 120 "$BIN" calibrate ref.safetensors held.npy -o "$c" --false-alarm 0.05
         while ((status != 0)); do
             check_survivors "$c"
             reruns=$((reruns + 1))
-            run_and_maybe_kill "$BIN" calibrate ref.safetensors held.npy -o "$c" --false-alarm 0.05 --force
+            run_and_maybe_kill 120 "$BIN" calibrate ref.safetensors held.npy -o "$c" --false-alarm 0.05 --force
         done
         cmp -s "$c" ref_cal.json || fail "$c differs from the uninterrupted calibration"
         no_temporaries "$c"
