@@ -31,7 +31,7 @@ struct Cli {
 #[derive(Subcommand)]
 enum Command {
     /// Fit a flow to embedding vectors (.npy, .safetensors or .csv) and save it.
-    Fit(FitArgs),
+    Fit(Box<FitArgs>),
     /// Score vectors with a fitted model: one row of scores per vector.
     Score {
         model: PathBuf,
@@ -322,7 +322,7 @@ impl FitArgs {
     }
 }
 
-fn fit(a: FitArgs) -> Result<()> {
+fn fit(a: Box<FitArgs>) -> Result<()> {
     let flags = a.options();
     flags.check(&Source::Flags)?;
     let opts = match &a.config {
