@@ -14,6 +14,17 @@ use crate::score::{score_to_file, BadRows, BatchRule, ScoreOptions, Scorer};
 use crate::train::{fit_run, read_log, FitOptions, Run};
 use std::path::{Path, PathBuf};
 
+/// A line of the demo's account on standard output; a closed pipe (`| head`)
+/// ends the demo as a broken-pipe error, which the binary treats as success.
+macro_rules! say {
+    ($($t:tt)*) => { crate::output::print(format!("{}\n", format_args!($($t)*)))? };
+}
+
+/// Part of a line of the account.
+macro_rules! say_part {
+    ($($t:tt)*) => { crate::output::print(format_args!($($t)*))? };
+}
+
 /// Outlier sets, in the order the summary lists them.
 const OUTLIERS: [&str; 3] = ["unseen_model", "stuck_sensor", "drifted"];
 /// Scores compared in the summary; the first is calibrated into the score files.
@@ -39,7 +50,7 @@ pub fn run(data_dir: &Path, out_dir: &Path, threads: usize) -> Result<()> {
     let labels_path = file("train_labels");
     let labels = read_labels(&labels_path)?;
     check_label_count(&labels_path, labels.len(), x.rows)?;
-    println!(
+    say!(
         "1. fitting a class-conditional flow to {} ({} vectors x {} features)",
         file("train").display(),
         x.rows,
@@ -50,7 +61,7 @@ pub fn run(data_dir: &Path, out_dir: &Path, threads: usize) -> Result<()> {
     let model = fit_run(&run, &FitOptions { threads: Some(threads), quiet: true, ..FitOptions::default() })?;
     let model_path = out("model.safetensors");
     model.save(&model_path)?;
-    println!("   {}", model.meta.fit_summary(&model_path));
+    say!("   {}", model.meta.fit_summary(&model_path));
 
     // 2. Calibrate every shown score at the false-alarm rate.
     let cal_data = Dataset::open(&file("calibration"), None)?;
@@ -60,7 +71,7 @@ pub fn run(data_dir: &Path, out_dir: &Path, threads: usize) -> Result<()> {
         cal.save(&out(&format!("calibration_{score}.json")))?;
         calibrations.push(cal);
     }
-    println!(
+    say!(
         "2. calibrated {} thresholds at a {:.0}% false-alarm rate on {} ({} vectors): {}",
         SHOWN.len(),
         100.0 * FALSE_ALARM,
@@ -87,7 +98,7 @@ pub fn run(data_dir: &Path, out_dir: &Path, threads: usize) -> Result<()> {
         let e = model.evaluate(&data, threads);
         rows.push((set, flagged_shares(&scorer, &calibrations, &e), batch_flags(&model, &e)));
     }
-    println!("3. scored every set: {}", out("scores_*.csv").display());
+    say!("3. scored every set: {}", out("scores_*.csv").display());
 
     // 4. Evaluate and report.
     let ood: Vec<(String, PathBuf)> =
@@ -105,13 +116,12 @@ pub fn run(data_dir: &Path, out_dir: &Path, threads: usize) -> Result<()> {
     })?;
     let report = ReportInput { evaluated: &evaluated, calibration: Some(&calibrations[0]), log: Some(&log) };
     write_report(&out("report.html"), &report)?;
-    println!(
+    say!(
         "4. evaluated against held-out normal vectors: {} and {}\n",
         out("evaluation.json").display(),
         out("report.html").display()
     );
-    print_summary(&rows, &evaluated.results);
-    Ok(())
+    print_summary(&rows, &evaluated.results)
 }
 
 /// Share of a set's vectors flagged by each calibrated score.
@@ -130,19 +140,19 @@ fn batch_flags(model: &Model, e: &Evaluation) -> (usize, usize) {
     (flags.iter().filter(|&&f| f).count(), flags.len())
 }
 
-fn print_summary(rows: &[(&str, Vec<f64>, (usize, usize))], results: &Results) {
-    println!(
+fn print_summary(rows: &[(&str, Vec<f64>, (usize, usize))], results: &Results) -> Result<()> {
+    say!(
         "Share of each set flagged at the calibrated {:.0}% false-alarm thresholds, with AUROC against held-out\n\
          normal vectors in brackets (1 = perfect, 0.5 = chance, below 0.5 = looks *more* normal than normal):\n",
         100.0 * FALSE_ALARM
     );
-    print!("{:<14}", "set");
+    say_part!("{:<14}", "set");
     for s in SHOWN {
-        print!("{s:>22}");
+        say_part!("{s:>22}");
     }
-    println!("{:>22}", format!("batches of {BATCH} flagged"));
+    say!("{:>22}", format!("batches of {BATCH} flagged"));
     for (set, shares, (flagged, batches)) in rows {
-        print!("{set:<14}");
+        say_part!("{set:<14}");
         for (score, share) in SHOWN.iter().zip(shares) {
             let auroc = results
                 .iter()
@@ -151,15 +161,16 @@ fn print_summary(rows: &[(&str, Vec<f64>, (usize, usize))], results: &Results) {
                 .and_then(|(_, est)| est.iter().find(|(m, _)| m == "auroc"))
                 .map(|(_, e)| format!(" ({:.3})", e.value))
                 .unwrap_or_default();
-            print!("{:>22}", format!("{:.1}%{auroc}", 100.0 * share));
+            say_part!("{:>22}", format!("{:.1}%{auroc}", 100.0 * share));
         }
-        println!("{:>22}", format!("{flagged}/{batches}"));
+        say!("{:>22}", format!("{flagged}/{batches}"));
     }
-    println!(
+    say!(
         "\nThe stuck-sensor vectors get a *higher* likelihood than normal data: a likelihood threshold misses them\n\
          (AUROC near 0), and so does the one-sided latent distance. Typicality and the multi-statistic score rank them\n\
          as unusual (AUROC above 0.9) though not past a 1% threshold one vector at a time; the batch typicality test,\n\
          which pools 25 vectors, flags every batch of them. These thresholds come from the demo's own held-out data;\n\
          validate any threshold on your own data before it drives a decision."
     );
+    Ok(())
 }

@@ -17,6 +17,7 @@
 pub mod bench;
 pub mod calibrate;
 pub mod columnar;
+pub mod check;
 pub mod data;
 pub mod demo;
 pub mod error;

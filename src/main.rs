@@ -2,17 +2,20 @@
 
 use clap::{Args, Parser, Subcommand};
 use signal_hook::consts::{SIGINT, SIGTERM};
-use signal_hook::flag;
-use std::path::PathBuf;
+use signal_hook::iterator::Signals;
+use std::ffi::OsString;
+use std::path::{Path, PathBuf};
 use std::process::ExitCode;
-use std::sync::atomic::AtomicBool;
+use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
 use tidemark::calibrate::{self, Calibration};
+use tidemark::error::{EXIT_BAD_INPUT, EXIT_INTERRUPTED};
 use tidemark::flow::Mixing;
 use tidemark::model::{Kind, Model};
+use tidemark::output::{self, check_files, note, FileKey, Input, Output};
 use tidemark::preprocess::Method;
-use tidemark::train::{default_threads, FitOptions, Run};
-use tidemark::{columnar, data, demo, evaluate, input, report, score, stream, Result};
+use tidemark::train::{default_threads, Checkpoint, FitOptions, Run, Source};
+use tidemark::{check, columnar, data, demo, evaluate, input, report, score, stream, Error, Result};
 
 #[derive(Parser)]
 #[command(
@@ -28,7 +31,7 @@ struct Cli {
 #[derive(Subcommand)]
 enum Command {
     /// Fit a flow to embedding vectors (.npy, .safetensors or .csv) and save it.
-    Fit(FitArgs),
+    Fit(Box<FitArgs>),
     /// Score vectors with a fitted model: one row of scores per vector.
     #[command(after_help = score_columns_help())]
     Score {
@@ -68,6 +71,9 @@ enum Command {
         /// Worker threads (the default is every core).
         #[arg(long, default_value_t = default_threads())]
         threads: usize,
+        /// Replace output files that already exist.
+        #[arg(long)]
+        force: bool,
     },
     /// Pick a threshold at a false-alarm rate from held-out in-distribution vectors (split-conformal).
     Calibrate {
@@ -89,6 +95,9 @@ enum Command {
         /// Worker threads (the default is every core).
         #[arg(long, default_value_t = default_threads())]
         threads: usize,
+        /// Replace output files that already exist.
+        #[arg(long)]
+        force: bool,
     },
     /// Measure how well each score separates in-distribution scores from known outlier sets.
     Evaluate {
@@ -119,6 +128,9 @@ enum Command {
         /// Seed of the bootstrap resampling.
         #[arg(long, default_value_t = 0)]
         seed: u64,
+        /// Replace output files that already exist.
+        #[arg(long)]
+        force: bool,
     },
     /// Split a file of vectors into PREFIX.train.npy, PREFIX.calibration.npy and PREFIX.test.npy.
     Split {
@@ -165,6 +177,9 @@ enum Command {
         /// Also write the result as JSON.
         #[arg(long)]
         json: Option<PathBuf>,
+        /// Replace output files that already exist.
+        #[arg(long)]
+        force: bool,
     },
     /// Print how a model was made and how it did.
     Inspect {
@@ -187,6 +202,9 @@ enum Command {
         /// Seed of the draw.
         #[arg(long, default_value_t = 0)]
         seed: u64,
+        /// Replace output files that already exist.
+        #[arg(long)]
+        force: bool,
     },
     /// Run the whole job on the shipped demo data and summarise it.
     Demo {
@@ -346,91 +364,196 @@ struct FitArgs {
     /// No progress output.
     #[arg(long, short)]
     quiet: bool,
+    /// Replace output files that already exist (a resumed run may always
+    /// rewrite its own model, log and checkpoint).
+    #[arg(long)]
+    force: bool,
 }
+
+impl FitArgs {
+    /// The training options given as flags (unchecked).
+    fn options(&self) -> FitOptions {
+        FitOptions {
+            kind: self.kind,
+            background_noise: self.background_noise,
+            method: self.method,
+            layers: self.layers,
+            hidden: self.hidden,
+            depth: self.depth,
+            clamp: self.clamp,
+            mixing: self.mixing,
+            flow_dims: self.flow_dims,
+            epochs: self.epochs,
+            batch_size: self.batch_size,
+            lr: self.lr,
+            val_fraction: self.val_fraction,
+            patience: self.patience,
+            dropout: self.dropout,
+            noise: self.noise,
+            dead_threshold: self.dead_threshold,
+            weight_decay: self.weight_decay,
+            grad_clip: self.grad_clip,
+            max_retries: self.max_retries,
+            checkpoint_every: self.checkpoint_every,
+            checkpoint_minutes: self.checkpoint_minutes,
+            seed: self.seed,
+            threads: self.threads,
+            quiet: self.quiet,
+            inject_nan_at_step: self.inject_nan_at_step,
+        }
+    }
+}
+
+fn fit(a: Box<FitArgs>) -> Result<()> {
+    let flags = a.options();
+    flags.check(&Source::Flags)?;
+    let opts = match &a.config {
+        Some(path) => flags.or(FitOptions::from_json_file(path)?),
+        None => flags,
+    };
+    let resumed = a.resume.as_deref().map(Checkpoint::load).transpose()?;
+    let checkpoint = a
+        .checkpoint
+        .clone()
+        .or_else(|| a.resume.clone())
+        .unwrap_or_else(|| a.output.with_extension("checkpoint.safetensors"));
+    // A resumed run goes on writing the log it was writing.
+    let log = a.log.clone().or_else(|| resumed.as_ref().and_then(|c| c.log_path()).map(Path::to_path_buf));
+    check_fit_files(&a, resumed.as_ref(), &checkpoint, log.as_deref())?;
+    let mut spec = a.input.spec();
+    spec.columns.label_column = a.label_column.clone();
+    spec.max_rows = a.max_rows;
+    spec.seed = a.seed.unwrap_or(0);
+    let read = input::open(&a.data, &spec)?;
+    let x = read.data;
+    let labels = match &a.labels {
+        Some(_) if a.max_rows.is_some() => {
+            return Err(Error::Invalid(
+                "--max-rows with --labels FILE: put the labels in a column of the data file (--label-column)".into(),
+            ))
+        }
+        Some(p) => {
+            let l = data::read_labels(p)?;
+            data::check_label_count(p, l.len(), x.rows)?;
+            Some(l)
+        }
+        None => read.labels,
+    };
+    let val_spec = a.input.spec();
+    let val = a.val.as_deref().map(|p| input::open(p, &val_spec).map(|i| i.data)).transpose()?;
+    let stop = stop_on_signals();
+    let found = FileKey::of(&checkpoint).inode();
+    let run = Run {
+        data: &x,
+        val: val.as_ref(),
+        labels: labels.as_deref(),
+        output: Some(&a.output),
+        checkpoint: Some(checkpoint.clone()),
+        resume: resumed.as_ref(),
+        log: log.as_deref(),
+        stop: Some(&stop),
+    };
+    let model = match tidemark::train::fit_run(&run, &opts) {
+        Err(Error::Interrupted(msg)) if checkpoint.exists() => {
+            let added_log = log.as_deref().filter(|_| a.log.is_none());
+            return Err(Error::Interrupted(format!(
+                "{msg}; continue with: {}",
+                resume_command(std::env::args_os(), &checkpoint, added_log)
+            )));
+        }
+        result => result?,
+    };
+    model.save(&a.output)?;
+    // The run is complete: its checkpoint has nothing left to resume. Only
+    // a file this run wrote (a new inode) or resumed from is removed.
+    let resumed_from_it = resumed.as_ref().is_some_and(|c| FileKey::of(c.path()).same(&FileKey::of(&checkpoint)));
+    let written = FileKey::of(&checkpoint).inode().is_some_and(|now| Some(now) != found);
+    if resumed_from_it || written {
+        let _ = std::fs::remove_file(&checkpoint);
+    }
+    if !a.quiet {
+        note(model.meta.fit_summary(&a.output));
+    }
+    Ok(())
+}
+
+/// `fit`'s outputs against its inputs. A resumed run may rewrite the model,
+/// log and checkpoint it was writing; anything else that exists needs
+/// `--force`, and a checkpoint left by an earlier run is pointed out.
+fn check_fit_files(a: &FitArgs, resumed: Option<&Checkpoint>, checkpoint: &Path, log: Option<&Path>) -> Result<()> {
+    let same = |x: &Path, y: &Path| FileKey::of(x).same(&FileKey::of(y));
+    let own = |recorded: Option<&Path>, path: &Path| recorded.is_some_and(|r| same(r, path));
+    let mut inputs = vec![Input { flag: "DATA", path: &a.data }];
+    let named = [("--labels", &a.labels), ("--val", &a.val), ("--config", &a.config), ("--resume", &a.resume)];
+    inputs.extend(named.iter().filter_map(|(flag, p)| p.as_deref().map(|path| Input { flag, path })));
+    let mut outputs = vec![
+        Output {
+            flag: "-o",
+            path: &a.output,
+            replace: a.force || own(resumed.and_then(Checkpoint::model_path), &a.output),
+            may_be: None,
+        },
+        Output {
+            flag: "--checkpoint",
+            path: checkpoint,
+            // An existing checkpoint gets its own message below.
+            replace: true,
+            may_be: Some("--resume"),
+        },
+    ];
+    if let Some(log) = log {
+        let replace = a.force || own(resumed.and_then(Checkpoint::log_path), log);
+        outputs.push(Output { flag: "--log", path: log, replace, may_be: None });
+    }
+    check_files(&inputs, &outputs)?;
+    let own_checkpoint = resumed.is_some_and(|c| same(c.path(), checkpoint));
+    if !own_checkpoint && !a.force && std::fs::symlink_metadata(checkpoint).is_ok() {
+        return Err(Error::Invalid(format!(
+            "{}: a checkpoint of an earlier run is here; continue it with --resume {}, or pass --force to start over",
+            checkpoint.display(),
+            checkpoint.display()
+        )));
+    }
+    Ok(())
+}
+
+/// The command that continues an interrupted fit: this one as typed, with
+/// `--resume CHECKPOINT` in place of any `--checkpoint` or `--resume`, plus
+/// the log the run was writing when it was not named; quoted for a shell.
+fn resume_command(args: impl Iterator<Item = OsString>, checkpoint: &Path, log: Option<&Path>) -> String {
+    let mut words: Vec<String> = Vec::new();
+    let mut args = args.map(|a| a.to_string_lossy().into_owned());
+    while let Some(arg) = args.next() {
+        if arg == "--resume" || arg == "--checkpoint" {
+            args.next();
+        } else if !arg.starts_with("--resume=") && !arg.starts_with("--checkpoint=") {
+            words.push(arg);
+        }
+    }
+    words.extend(["--resume".to_string(), checkpoint.display().to_string()]);
+    if let Some(log) = log {
+        words.extend(["--log".to_string(), log.display().to_string()]);
+    }
+    words.iter().map(|w| shell_quote(w)).collect::<Vec<_>>().join(" ")
+}
+
+/// A word as a POSIX shell reads it back unchanged.
+fn shell_quote(word: &str) -> String {
+    let plain = |c: char| c.is_ascii_alphanumeric() || "_-./=:,@%+".contains(c);
+    if !word.is_empty() && word.chars().all(plain) {
+        word.to_string()
+    } else {
+        format!("'{}'", word.replace('\'', r"'\''"))
+    }
+}
+
+/// Most values `sample` draws (4 GiB of float32): a guard against a typo in
+/// `-n`, well above any sample a check of a model needs.
+const MAX_SAMPLE_VALUES: usize = 1 << 30;
 
 fn run(cli: Cli) -> Result<()> {
     match cli.command {
-        Command::Fit(a) => {
-            let mut spec = a.input.spec();
-            spec.columns.label_column = a.label_column.clone();
-            spec.max_rows = a.max_rows;
-            spec.seed = a.seed.unwrap_or(0);
-            let read = input::open(&a.data, &spec)?;
-            let x = read.data;
-            let labels =
-                match &a.labels {
-                    Some(_) if a.max_rows.is_some() => return Err(tidemark::Error::Invalid(
-                        "--max-rows with --labels FILE: put the labels in a column of the data file (--label-column)"
-                            .into(),
-                    )),
-                    Some(p) => {
-                        let l = data::read_labels(p)?;
-                        data::check_label_count(p, l.len(), x.rows)?;
-                        Some(l)
-                    }
-                    None => read.labels,
-                };
-            let opts = FitOptions {
-                kind: a.kind,
-                background_noise: a.background_noise,
-                method: a.method,
-                layers: a.layers,
-                hidden: a.hidden,
-                depth: a.depth,
-                clamp: a.clamp,
-                mixing: a.mixing,
-                flow_dims: a.flow_dims,
-                epochs: a.epochs,
-                batch_size: a.batch_size,
-                lr: a.lr,
-                val_fraction: a.val_fraction,
-                patience: a.patience,
-                dropout: a.dropout,
-                noise: a.noise,
-                dead_threshold: a.dead_threshold,
-                weight_decay: a.weight_decay,
-                grad_clip: a.grad_clip,
-                max_retries: a.max_retries,
-                checkpoint_every: a.checkpoint_every,
-                checkpoint_minutes: a.checkpoint_minutes,
-                seed: a.seed,
-                threads: a.threads,
-                quiet: a.quiet,
-                inject_nan_at_step: a.inject_nan_at_step,
-            };
-            let opts = match &a.config {
-                Some(path) => opts.or(FitOptions::from_json_file(path)?),
-                None => opts,
-            };
-            let val_spec = a.input.spec();
-            let val = a.val.as_deref().map(|p| input::open(p, &val_spec).map(|i| i.data)).transpose()?;
-            let stop = stop_on_signals();
-            let checkpoint = a
-                .checkpoint
-                .clone()
-                .or_else(|| a.resume.clone())
-                .unwrap_or_else(|| a.output.with_extension("checkpoint.safetensors"));
-            let run = Run {
-                data: &x,
-                val: val.as_ref(),
-                labels: labels.as_deref(),
-                output: Some(&a.output),
-                checkpoint: Some(checkpoint),
-                resume: a.resume.as_deref(),
-                log: a.log.as_deref(),
-                stop: Some(&stop),
-            };
-            let model = tidemark::train::fit_run(&run, &opts)?;
-            model.save(&a.output)?;
-            // The run is complete: its checkpoint has nothing left to resume.
-            if let Some(ck) = &run.checkpoint {
-                let _ = std::fs::remove_file(ck);
-            }
-            if !a.quiet {
-                eprintln!("{}", model.meta.fit_summary(&a.output));
-            }
-            Ok(())
-        }
+        Command::Fit(a) => fit(a),
         Command::Score {
             model,
             data: path,
@@ -445,7 +568,28 @@ fn run(cli: Cli) -> Result<()> {
             arrow_stdout,
             input: input_args,
             threads,
+            force,
         } => {
+            let threads = check::threads("--threads", threads)?;
+            let batch = match batch {
+                Some(size) => {
+                    let size = check::count("--batch", size, 1, 1 << 30)?;
+                    let alpha = check::open_unit("--batch-alpha", batch_alpha)?;
+                    Some(score::BatchTest::new(size, alpha, batch_output, &output)?)
+                }
+                None => None,
+            };
+            let sidecar = is_npy(&output).then(|| output.with_extension("json"));
+            let mut inputs = vec![Input { flag: "MODEL", path: &model }, Input { flag: "DATA", path: &path }];
+            inputs.extend(calibration.as_deref().map(|path| Input { flag: "--calibration", path }));
+            let mut outputs = vec![Output { flag: "-o", path: &output, replace: force, may_be: None }];
+            if let Some(side) = &sidecar {
+                outputs.push(Output { flag: "-o's .json sidecar", path: side, replace: force, may_be: None });
+            }
+            if let Some(b) = &batch {
+                outputs.push(Output { flag: "--batch-output", path: &b.output, replace: force, may_be: None });
+            }
+            check_files(&inputs, &outputs)?;
             let m = Model::load(&model)?;
             let calibration = match &calibration {
                 Some(p) => {
@@ -457,10 +601,6 @@ fn run(cli: Cli) -> Result<()> {
             };
             let mut spec = input_args.spec();
             spec.columns.keep = keep;
-            let batch = match batch {
-                Some(size) => Some(score::BatchTest::new(size, batch_alpha, batch_output, &output)?),
-                None => None,
-            };
             let decision = calibration.as_ref().map(|c| c as &dyn score::Decision);
             let opts = score::ScoreOptions { columns, threads, batch, decision, bad_rows };
             // Rows are checked for NaN and infinity by score itself (--bad-rows).
@@ -468,7 +608,7 @@ fn run(cli: Cli) -> Result<()> {
                 input::ScoreInput::Whole(x) => {
                     m.check_width(&path, x.cols)?;
                     if arrow_stdout {
-                        return Err(tidemark::Error::Invalid(
+                        return Err(Error::Invalid(
                             "--arrow-stdout needs a Parquet or Arrow input (or an Arrow IPC stream on standard input)"
                                 .into(),
                         ));
@@ -480,19 +620,25 @@ fn run(cli: Cli) -> Result<()> {
                     stream::score_batches(&m, &mut reader, &output, target, &opts)?
                 }
             };
-            eprintln!("{}", score_summary(&output, &summary, calibration.as_ref(), bad_rows));
+            note(score_summary(&output, &summary, calibration.as_ref(), bad_rows));
             Ok(())
         }
-        Command::Calibrate { model, held_out, output, false_alarm, score, input: input_args, threads } => {
+        Command::Calibrate { model, held_out, output, false_alarm, score, input: input_args, threads, force } => {
+            let threads = check::threads("--threads", threads)?;
+            let false_alarm = check::open_unit("--false-alarm", false_alarm)?;
+            check_files(
+                &[Input { flag: "MODEL", path: &model }, Input { flag: "HELD_OUT", path: &held_out }],
+                &[Output { flag: "-o", path: &output, replace: force, may_be: None }],
+            )?;
             let m = Model::load(&model)?;
             let x = input::open(&held_out, &input_args.spec())?.data;
             m.check_width(&held_out, x.cols)?;
             let (cal, warnings) = calibrate::calibrate(&m, &x, &score, false_alarm, threads)?;
             for w in warnings {
-                eprintln!("warning: {w}");
+                note(format!("warning: {w}"));
             }
             cal.save(&output)?;
-            eprintln!(
+            note(format!(
                 "{}: {} flagged when {} {} {:.6} (conformal rank {} of {} held-out vectors, false-alarm rate {})",
                 output.display(),
                 cal.score,
@@ -506,10 +652,21 @@ fn run(cli: Cli) -> Result<()> {
                 cal.rank,
                 cal.rows,
                 cal.false_alarm
-            );
+            ));
             Ok(())
         }
-        Command::Evaluate { id, ood, columns, output, report, calibration, log, bootstrap, seed } => {
+        Command::Evaluate { id, ood, columns, output, report, calibration, log, bootstrap, seed, force } => {
+            let bootstrap = check::count("--bootstrap", bootstrap, 1, 1_000_000)?;
+            let ood_flags: Vec<String> = ood.iter().map(|(name, _)| format!("--ood {name}")).collect();
+            let mut inputs = vec![Input { flag: "--id", path: &id }];
+            inputs.extend(ood.iter().zip(&ood_flags).map(|((_, path), flag)| Input { flag, path }));
+            inputs.extend(calibration.as_deref().map(|path| Input { flag: "--calibration", path }));
+            inputs.extend(log.as_deref().map(|path| Input { flag: "--log", path }));
+            let outputs: Vec<Output> = [("-o", &output), ("--report", &report)]
+                .into_iter()
+                .filter_map(|(flag, p)| p.as_deref().map(|path| Output { flag, path, replace: force, may_be: None }))
+                .collect();
+            check_files(&inputs, &outputs)?;
             let calibration = calibration.as_deref().map(Calibration::load).transpose()?;
             let log = log.as_deref().map(tidemark::train::read_log).transpose()?;
             let evaluated = evaluate::run(&evaluate::EvaluateOptions {
@@ -521,8 +678,8 @@ fn run(cli: Cli) -> Result<()> {
                 output: output.as_deref(),
                 calibration: calibration.as_ref(),
             })?;
-            for note in &evaluated.notes {
-                eprintln!("{note}");
+            for line in &evaluated.notes {
+                note(line);
             }
             if let Some(path) = &report {
                 let input = report::ReportInput {
@@ -532,25 +689,42 @@ fn run(cli: Cli) -> Result<()> {
                 };
                 report::write_report(path, &input)?;
             }
-            print!("{}", evaluate::table(&evaluated));
+            output::print(evaluate::table(&evaluated))?;
             Ok(())
         }
         Command::Split { data: path, fractions, seed, ordered, output, input: input_args } => {
             let split = tidemark::split::Split::new(&fractions, seed, ordered)?;
             let x = input::open(&path, &input_args.spec())?.data;
             for (file, rows) in tidemark::split::run(&x, &output, &split)? {
-                eprintln!("wrote {} ({rows} rows)", file.display());
+                note(format!("wrote {} ({rows} rows)", file.display()));
             }
             Ok(())
         }
-        Command::Bench { dim, hidden, layers, depth, batch, threads, seconds, json } => {
-            let cfg = tidemark::bench::BenchConfig { dim, hidden, layers, depth, batch, threads, seconds };
+        Command::Bench { dim, hidden, layers, depth, batch, threads, seconds, json, force } => {
+            let cfg = tidemark::bench::BenchConfig {
+                dim: check::count("--dim", dim, 2, 1 << 16)?,
+                hidden: check::count("--hidden", hidden, 1, 1 << 16)?,
+                layers: check::count("--layers", layers, 1, 1024)?,
+                depth: check::count("--depth", depth, 1, 64)?,
+                batch: check::count("--batch", batch, 1, 1 << 20)?,
+                threads: check::threads("--threads", threads)?,
+                seconds: check::positive("--seconds", seconds).and_then(|s| {
+                    if s <= 86_400.0 {
+                        Ok(s)
+                    } else {
+                        Err(Error::Invalid(format!("--seconds: must be at most a day (86400), got {s}")))
+                    }
+                })?,
+            };
+            if let Some(path) = &json {
+                check_files(&[], &[Output { flag: "--json", path, replace: force, may_be: None }])?;
+            }
             let result = tidemark::bench::run(&cfg);
-            println!("{}", tidemark::bench::describe(&result));
+            output::print(format!("{}\n", tidemark::bench::describe(&result)))?;
             if let Some(path) = json {
-                let text = serde_json::to_string_pretty(&result).expect("result serializes");
-                tidemark::output::write_atomic(&path, |w| {
-                    writeln!(w, "{text}").map_err(|source| tidemark::Error::Io { path: path.clone(), source })
+                let text = serde_json::to_string_pretty(&result).map_err(|e| Error::Invalid(e.to_string()))?;
+                output::write_atomic(&path, |w| {
+                    writeln!(w, "{text}").map_err(|source| Error::Io { path: path.clone(), source })
                 })?;
             }
             Ok(())
@@ -558,20 +732,33 @@ fn run(cli: Cli) -> Result<()> {
         Command::Inspect { model, json } => {
             let m = Model::load(&model)?;
             if json {
-                println!("{}", serde_json::to_string_pretty(&m.meta).expect("metadata serializes"));
+                let text = serde_json::to_string_pretty(&m.meta).map_err(|e| Error::Invalid(e.to_string()))?;
+                output::print(format!("{text}\n"))
             } else {
-                print!("{}", m.meta.describe());
+                output::print(m.meta.describe())
             }
-            Ok(())
         }
-        Command::Sample { model, count, output, seed } => {
+        Command::Sample { model, count, output, seed, force } => {
+            check::count("-n", count, 1, MAX_SAMPLE_VALUES)?;
+            check_files(
+                &[Input { flag: "MODEL", path: &model }],
+                &[Output { flag: "-o", path: &output, replace: force, may_be: None }],
+            )?;
             let m = Model::load(&model)?;
+            let per_vector = m.meta.input_dim.max(1);
+            check::count("-n", count, 1, MAX_SAMPLE_VALUES / per_vector).map_err(|_| {
+                Error::Invalid(format!(
+                    "-n: {count} vectors of {per_vector} values exceed the {MAX_SAMPLE_VALUES} values sample draws at most"
+                ))
+            })?;
             let samples = m.sample(count, seed);
-            tidemark::output::write_atomic(&output, |w| {
-                data::write_npy(w, &samples).map_err(|source| tidemark::Error::Io { path: output.clone(), source })
+            output::write_atomic(&output, |w| {
+                data::write_npy(w, &samples).map_err(|source| Error::Io { path: output.clone(), source })
             })
         }
-        Command::Demo { data_dir, out_dir, threads } => demo::run(&data_dir, &out_dir, threads),
+        Command::Demo { data_dir, out_dir, threads } => {
+            demo::run(&data_dir, &out_dir, check::threads("--threads", threads)?)
+        }
     }
 }
 
@@ -607,6 +794,11 @@ fn score_summary(
     line
 }
 
+/// Is this output a `.npy` file (written with a `.json` sidecar)?
+fn is_npy(path: &Path) -> bool {
+    !output::is_stdout(path) && path.extension().is_some_and(|e| e.eq_ignore_ascii_case("npy"))
+}
+
 /// `NAME=FILE` for `--ood`.
 fn parse_named(s: &str) -> std::result::Result<(String, PathBuf), String> {
     match s.split_once('=') {
@@ -616,30 +808,48 @@ fn parse_named(s: &str) -> std::result::Result<(String, PathBuf), String> {
 }
 
 /// SIGINT and SIGTERM set the returned flag, so training stops after its
-/// current step and checkpoints; a second signal exits at once (files are
-/// only ever renamed into place, so nothing is left half-written).
+/// current step and checkpoints. A second signal ends the process at once,
+/// removing the temporary files being written first (outputs are only ever
+/// renamed into place, so nothing is left half-written).
 fn stop_on_signals() -> Arc<AtomicBool> {
     let stop = Arc::new(AtomicBool::new(false));
-    for sig in [SIGINT, SIGTERM] {
-        // Registration fails only for forbidden signals; these two are allowed.
-        let _ = flag::register_conditional_shutdown(sig, 130, Arc::clone(&stop));
-        let _ = flag::register(sig, Arc::clone(&stop));
+    let flag = Arc::clone(&stop);
+    match Signals::new([SIGINT, SIGTERM]) {
+        Ok(mut signals) => {
+            std::thread::spawn(move || {
+                for _ in signals.forever() {
+                    if flag.swap(true, Ordering::SeqCst) {
+                        output::remove_temporaries();
+                        std::process::exit(EXIT_INTERRUPTED.into());
+                    }
+                }
+            });
+        }
+        Err(e) => note(format!("warning: cannot catch SIGINT/SIGTERM ({e}); an interrupted fit will not checkpoint")),
     }
     stop
 }
 
 fn main() -> ExitCode {
-    match run(Cli::parse()) {
+    tidemark::error::install_panic_hook();
+    let cli = match Cli::try_parse() {
+        Ok(cli) => cli,
+        Err(e) => {
+            // Help and version go to stdout with status 0; usage errors are bad input.
+            let _ = e.print();
+            return ExitCode::from(if e.use_stderr() { EXIT_BAD_INPUT } else { 0 });
+        }
+    };
+    match run(cli) {
         Ok(()) => ExitCode::SUCCESS,
-        // A reader that stopped early (`| head`) is not an error.
-        Err(tidemark::Error::Io { source, .. }) if source.kind() == std::io::ErrorKind::BrokenPipe => ExitCode::SUCCESS,
-        Err(e @ tidemark::Error::Interrupted(_)) => {
-            eprintln!("{e}");
-            ExitCode::from(130)
+        Err(e) if e.is_broken_pipe() => ExitCode::SUCCESS,
+        Err(e @ Error::Interrupted(_)) => {
+            note(&e);
+            ExitCode::from(e.exit_code())
         }
         Err(e) => {
-            eprintln!("error: {e}");
-            ExitCode::FAILURE
+            note(format!("error: {e}"));
+            ExitCode::from(e.exit_code())
         }
     }
 }
@@ -663,5 +873,17 @@ mod tests {
                 assert!(arg.get_help().is_some(), "tidemark {} {id} has no help line", sub.get_name());
             }
         }
+    }
+
+    #[test]
+    fn the_resume_command_keeps_every_option_and_reads_back_through_a_shell() {
+        let typed = ["tidemark", "fit", "my data.npy", "-o", "m.safetensors", "--checkpoint", "ck", "--hidden", "64"];
+        let cmd = resume_command(typed.iter().map(OsString::from), Path::new("ck"), Some(Path::new("it's.log")));
+        assert_eq!(cmd, r"tidemark fit 'my data.npy' -o m.safetensors --hidden 64 --resume ck --log 'it'\''s.log'");
+        // POSIX sh reads the words back as they were.
+        let out = std::process::Command::new("sh").arg("-c").arg(format!("printf '%s\\n' {cmd}")).output().unwrap();
+        let words: Vec<String> = String::from_utf8(out.stdout).unwrap().lines().map(String::from).collect();
+        assert_eq!(words[2], "my data.npy");
+        assert_eq!(words.last().unwrap(), "it's.log");
     }
 }

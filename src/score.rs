@@ -547,7 +547,7 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
     let written = if opts.bad_rows == BadRows::Skip { x.rows - bad.len() } else { x.rows };
     let mut progress = crate::progress::Progress::new(x.rows, "rows scored");
     let mut next_bad = bad.iter().peekable();
-    crate::output::write_atomic(output, |w| {
+    let body = |w: &mut dyn Write| {
         let io = |source| Error::Io { path: output.to_path_buf(), source };
         match format {
             Format::Csv => writeln!(w, "{}", header.join(",")).map_err(io)?,
@@ -570,9 +570,9 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
             progress.advance(end - start);
         }
         Ok(())
-    })?;
-    progress.finish();
+    };
     if format == Format::Npy && !crate::output::is_stdout(output) {
+        // The column names beside the matrix; the two are written as a pair.
         let sidecar = output.with_extension("json");
         let mut doc = serde_json::json!({
             "columns": header,
@@ -581,10 +581,13 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
         if flag_column {
             doc["bad_rows"] = bad.iter().map(|(r, why)| serde_json::json!({ "row": r, "reason": why })).collect();
         }
-        crate::output::write_atomic(&sidecar, |w| {
+        crate::output::write_atomic_pair(output, body, &sidecar, |w| {
             writeln!(w, "{doc:#}").map_err(|source| Error::Io { path: sidecar.clone(), source })
         })?;
+    } else {
+        crate::output::write_atomic(output, body)?;
     }
+    progress.finish();
     let mut summary = chunks.finish()?;
     summary.bad = bad;
     Ok(summary)

@@ -4,6 +4,7 @@
 //! is the first candidate, so a fitted flow never ends worse than a Gaussian
 //! on the validation rows.
 
+use crate::check;
 use crate::data::{mix64, Dataset};
 use crate::error::{Error, Result};
 use crate::flow::{Flow, FlowSpec, Mixing, Workers, HALF_LN_2PI};
@@ -11,14 +12,16 @@ use crate::model::{
     format_version_for, leading_columns_into, ClassCount, Kind, Meta, Model, PreprocessingMeta, ScoringMeta,
     ScoringRefs, Spread, TrainingSummary,
 };
+use crate::output::note;
 use crate::preprocess::{ColumnStats, Covariance, Method, Preprocessor, TransformScratch, DEFAULT_DEAD_THRESHOLD};
 use crate::simd::elementwise;
-use indicatif::{ProgressBar, ProgressStyle};
+pub use checkpoint::Checkpoint;
+use checkpoint::{absolute, resume, save_checkpoint};
+use progress::Progress;
 use rand::rngs::StdRng;
 use rand::seq::SliceRandom;
 use rand::SeedableRng;
 use rand_distr::{Distribution, StandardNormal};
-use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::Instant;
@@ -60,12 +63,48 @@ pub struct FitOptions {
 }
 
 impl FitOptions {
-    /// Read options from a JSON config file; an unknown key is an error
-    /// that names it.
+    /// Read options from a JSON config file; an unknown key or a value out
+    /// of range is an error that names it.
     pub fn from_json_file(path: &std::path::Path) -> Result<FitOptions> {
         let text = std::fs::read_to_string(path)
             .map_err(|e| Error::Invalid(format!("{}: cannot read config: {e}", path.display())))?;
-        serde_json::from_str(&text).map_err(|e| Error::Invalid(format!("{}: {e}", path.display())))
+        let opts: FitOptions =
+            serde_json::from_str(&text).map_err(|e| Error::Invalid(format!("{}: {e}", path.display())))?;
+        opts.check(&Source::Config(path))?;
+        Ok(opts)
+    }
+
+    /// Check every option that is set; what passes is what training trusts
+    /// (the settings resolved from it need no further checks but the ones
+    /// that depend on the data).
+    pub fn check(&self, source: &Source) -> Result<()> {
+        let n = |field: &str| source.name(field);
+        let opt = |v: Option<usize>, field: &str, lo: usize, hi: usize| -> Result<()> {
+            v.map_or(Ok(()), |v| check::count(&n(field), v, lo, hi).map(drop))
+        };
+        opt(self.layers, "layers", 0, 1024)?;
+        opt(self.hidden, "hidden", 1, 1 << 16)?;
+        opt(self.depth, "depth", 1, 64)?;
+        opt(self.flow_dims, "flow_dims", 1, 1 << 20)?;
+        opt(self.epochs, "epochs", 1, 1_000_000)?;
+        opt(self.batch_size, "batch_size", 1, 1 << 24)?;
+        opt(self.max_retries, "max_retries", 0, 1000)?;
+        opt(self.checkpoint_every, "checkpoint_every", 1, 1_000_000)?;
+        opt(self.threads, "threads", 1, check::MAX_THREADS)?;
+        let real = |v: Option<f64>, field: &str, test: fn(&str, f64) -> Result<f64>| -> Result<()> {
+            v.map_or(Ok(()), |v| test(&n(field), v).map(drop))
+        };
+        real(self.background_noise, "background_noise", check::positive)?;
+        real(self.clamp.map(f64::from), "clamp", check::positive)?;
+        real(self.lr, "lr", check::positive)?;
+        real(self.grad_clip, "grad_clip", check::positive)?;
+        real(self.noise, "noise", check::non_negative)?;
+        real(self.weight_decay, "weight_decay", check::non_negative)?;
+        real(self.checkpoint_minutes, "checkpoint_minutes", check::non_negative)?;
+        real(self.val_fraction, "val_fraction", |name, v| check::fraction_below(name, v, MAX_VAL_FRACTION))?;
+        real(self.dropout, "dropout", |name, v| check::fraction_below(name, v, 1.0))?;
+        real(self.dead_threshold, "dead_threshold", |name, v| check::fraction_below(name, v, 1.0))?;
+        Ok(())
     }
 
     /// Each option set here, else the one in `fallback`.
@@ -100,6 +139,30 @@ impl FitOptions {
         }
     }
 }
+
+mod checkpoint;
+mod progress;
+
+/// Where options came from, for naming them in messages.
+pub enum Source<'a> {
+    /// Command-line flags: `--grad-clip`.
+    Flags,
+    /// A JSON config file: `FILE: grad_clip`.
+    Config(&'a Path),
+}
+
+impl Source<'_> {
+    fn name(&self, field: &str) -> String {
+        match self {
+            Source::Flags => format!("--{}", field.replace('_', "-")),
+            Source::Config(path) => format!("{}: {field}", path.display()),
+        }
+    }
+}
+
+/// Validation share of the rows stays below this (0 fits on every row and
+/// validates on the training rows).
+const MAX_VAL_FRACTION: f64 = 0.9;
 
 /// Threads used when none are asked for: every core.
 pub fn default_threads() -> usize {
@@ -244,20 +307,11 @@ impl Settings {
             noise: o.noise.unwrap_or_else(|| by_rows_per_dim(per_dim, [0.2, 0.1, 0.0, 0.0])),
             dead_threshold: o.dead_threshold.unwrap_or(DEFAULT_DEAD_THRESHOLD),
             max_retries: o.max_retries.unwrap_or(3),
-            checkpoint_every: o.checkpoint_every.unwrap_or(1).max(1),
+            checkpoint_every: o.checkpoint_every.unwrap_or(1),
             checkpoint_minutes: o.checkpoint_minutes.unwrap_or(10.0),
             seed: o.seed.unwrap_or(0),
-            threads: o.threads.unwrap_or_else(default_threads).max(1),
+            threads: o.threads.unwrap_or_else(default_threads),
         };
-        if s.depth == 0 || s.hidden == 0 || s.epochs == 0 {
-            return Err(Error::Invalid("--depth, --hidden and --epochs must be at least 1".into()));
-        }
-        if !(0.0..1.0).contains(&s.dropout) || s.noise < 0.0 || s.clamp <= 0.0 || s.lr <= 0.0 {
-            return Err(Error::Invalid("--dropout must be in [0, 1); --noise >= 0; --clamp and --lr > 0".into()));
-        }
-        if !(0.0..0.9).contains(&s.val_fraction) {
-            return Err(Error::Invalid("--val-fraction must be in [0, 0.9)".into()));
-        }
         Ok(s)
     }
 }
@@ -356,9 +410,17 @@ fn derive(seed: u64, purpose: u64, counter: u64) -> u64 {
 fn split_rows(n: usize, val_fraction: f64, seed: u64) -> (Vec<usize>, Vec<usize>) {
     let mut idx: Vec<usize> = (0..n).collect();
     idx.shuffle(&mut StdRng::seed_from_u64(derive(seed, 1, 0)));
-    let n_val = if val_fraction > 0.0 { ((n as f64 * val_fraction).round() as usize).clamp(1, n - 1) } else { 0 };
-    let val = idx.split_off(n - n_val);
+    let val = idx.split_off(n - validation_rows(n, val_fraction));
     (idx, val)
+}
+
+/// Rows of `n` that the seeded split holds out for validation.
+fn validation_rows(n: usize, val_fraction: f64) -> usize {
+    if val_fraction > 0.0 {
+        ((n as f64 * val_fraction).round() as usize).clamp(1, n - 1)
+    } else {
+        0
+    }
 }
 
 /// Fewest rows `fit` accepts.
@@ -379,7 +441,7 @@ pub struct Run<'a> {
     /// Where checkpoints are kept (none when `None`).
     pub checkpoint: Option<PathBuf>,
     /// Continue from this checkpoint.
-    pub resume: Option<&'a Path>,
+    pub resume: Option<&'a Checkpoint>,
     /// JSON-lines training log.
     pub log: Option<&'a Path>,
     /// Set (by a signal handler) to stop after the current step.
@@ -448,11 +510,16 @@ struct TrainState {
     /// Training ended (early stopping or the last epoch): nothing to resume
     /// but the steps after the main flow.
     finished: bool,
+    /// The run's model file and training log (absolute), so that a resumed
+    /// run knows which existing files are its own.
+    #[serde(default)]
+    model_path: Option<PathBuf>,
+    #[serde(default)]
+    log_path: Option<PathBuf>,
 }
 
-const CHECKPOINT_KEY: &str = "tidemark_checkpoint";
-
 /// The learned state that a checkpoint saves besides the model skeleton.
+#[derive(Clone)]
 struct Learned {
     model: Model,
     settings: Settings,
@@ -470,19 +537,20 @@ pub fn fit(x: &Dataset, labels: Option<&[i64]>, opts: &FitOptions) -> Result<Mod
 /// log and a stop flag when given.
 pub fn fit_run(run: &Run, opts: &FitOptions) -> Result<Model> {
     let started = Instant::now();
+    opts.check(&Source::Flags)?;
     for path in [run.output, run.checkpoint.as_deref(), run.log].into_iter().flatten() {
         crate::output::check_directory(path)?;
     }
     let mut learned = match run.resume {
-        Some(path) => resume(path, run)?,
+        Some(checkpoint) => resume(checkpoint, run, opts)?,
         None => start(run, opts)?,
     };
     if !opts.quiet {
         let json = serde_json::to_string(&learned.settings).map_err(|e| Error::Invalid(e.to_string()))?;
-        eprintln!("settings: {json}");
+        note(format!("settings: {json}"));
         if run.resume.is_some() {
             let s = &learned.state;
-            eprintln!("resuming at epoch {} (batch {}, step {})", s.epoch, s.batch, s.step);
+            note(format!("resuming at epoch {} (batch {}, step {})", s.epoch, s.batch, s.step));
         }
     }
     train(run, opts, &mut learned, started)?;
@@ -514,21 +582,18 @@ fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
     }
     let seed = opts.seed.unwrap_or(0);
     let val_fraction = if run.val.is_some() { 0.0 } else { opts.val_fraction.unwrap_or(0.1) };
-    if !(0.0..0.9).contains(&val_fraction) {
-        return Err(Error::Invalid("--val-fraction must be in [0, 0.9)".into()));
-    }
     let (train_idx, _) = split_rows(x.rows, val_fraction, seed);
     let method = opts.method.unwrap_or(Method::Pca);
     let (kind, by_size) = opts.kind_for(train_idx.len(), x.cols, run.labels.is_some());
     if by_size && !opts.quiet {
-        eprintln!(
+        note(format!(
             "{} training rows for {} features ({:.1} per feature): fitting {} with Ledoit-Wolf shrinkage, \
              which beats a flow at this size; --kind flow fits a flow anyway",
             train_idx.len(),
             x.cols,
             train_idx.len() as f64 / x.cols as f64,
             if kind == Kind::ClassGaussian { "class means with a shared covariance" } else { "a Gaussian" }
-        );
+        ));
     }
     let opts = &FitOptions { kind: Some(kind), ..opts.clone() };
     let dead_threshold = opts.dead_threshold.unwrap_or(DEFAULT_DEAD_THRESHOLD);
@@ -604,6 +669,8 @@ fn new_learned(run: &Run, model: Model, settings: Settings, finished: bool) -> R
             val_data: run.val.map(Fingerprint::of),
             labels: run.labels.map(labels_checksum),
             finished,
+            model_path: absolute(run.output),
+            log_path: absolute(run.log),
         },
         model,
         settings,
@@ -668,7 +735,7 @@ fn train_background(run: &Run, opts: &FitOptions, main: &Learned, sigma: f64, st
     let quiet_run = Run { checkpoint: None, log: None, output: None, resume: None, labels: None, ..*run };
     let mut bg = new_learned(&quiet_run, model, settings, false)?;
     if !opts.quiet {
-        eprintln!("training the background flow (noise {sigma})");
+        note(format!("training the background flow (noise {sigma})"));
     }
     train(&quiet_run, opts, &mut bg, started)?;
     bg.model.flow.params = bg.best_params;
@@ -715,39 +782,6 @@ fn skeleton_meta(cols: usize, pre: &Preprocessor, flow: &Flow, s: &Settings, cla
         background_noise: s.background_noise,
         scoring: ScoringMeta::default(),
     })
-}
-
-/// Reload a checkpoint and check that the data is the same.
-fn resume(path: &Path, run: &Run) -> Result<Learned> {
-    let (model, extras) = Model::load_with(path)?;
-    let state: TrainState = serde_json::from_str(&extras.metadata(CHECKPOINT_KEY)?)
-        .map_err(|e| Error::model(path, format!("bad checkpoint state: {e}")))?;
-    let settings: Settings = serde_json::from_value(model.meta.training.settings.clone())
-        .map_err(|e| Error::model(path, format!("bad checkpoint settings: {e}")))?;
-    let refuse = |what: &Path, fp: &Fingerprint| {
-        Error::Invalid(format!(
-            "{}: differs from the data this run was started on ({} x {}, checksum {:016x}); resume needs the same file",
-            what.display(),
-            fp.rows,
-            fp.cols,
-            fp.checksum
-        ))
-    };
-    if Fingerprint::of(run.data) != state.data {
-        return Err(refuse(&run.data.path, &state.data));
-    }
-    match (run.val, &state.val_data) {
-        (Some(v), Some(fp)) if Fingerprint::of(v) != *fp => return Err(refuse(&v.path, fp)),
-        (None, Some(_)) | (Some(_), None) => {
-            return Err(Error::Invalid("give --val on resume exactly when the run was started with it".into()))
-        }
-        _ => {}
-    }
-    let n = model.flow.param_count();
-    let adam =
-        Adam { m: extras.tensor("checkpoint.adam_m", n)?, v: extras.tensor("checkpoint.adam_v", n)?, t: state.adam_t };
-    let best_params = extras.tensor("checkpoint.best_params", n)?;
-    Ok(Learned { model, settings, state, best_params, adam })
 }
 
 /// Train and validation rows, their classes, and how to whiten them.
@@ -828,7 +862,8 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant) -> Res
     let mut grad = vec![0.0f32; l.model.flow.param_count()];
     let mut batch = BatchBuffers::default();
     let decay = decay_mask(&l.model.flow);
-    let progress = Progress::new(s.epochs, l.state.epoch - 1, opts.quiet);
+    let position = |st: &TrainState| (st.epoch - 1) * steps_per_epoch + st.batch;
+    let progress = Progress::new(total_steps, position(&l.state), opts.quiet);
     let seconds_before = l.state.seconds;
     let mut last_checkpoint = Instant::now();
     let mut injected = false;
@@ -889,6 +924,7 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant) -> Res
             l.state.step += 1;
             epoch_samples += chunk.len();
             l.state.seconds = seconds_before + started.elapsed().as_secs_f64();
+            progress.step(position(&l.state));
             if run.stop.is_some_and(|f| f.load(Ordering::SeqCst)) {
                 stop_early(run, l, Halt::Interrupted)?;
             }
@@ -920,7 +956,7 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant) -> Res
             grad_norm: l.state.grad_norm_sum / steps_per_epoch as f64,
             seconds: l.state.seconds,
         });
-        progress.epoch(l.state.epoch, train_nll / d as f64, val_nll / d as f64, rate, improved);
+        progress.epoch(l.state.epoch, s.epochs, train_nll / d as f64, val_nll / d as f64, rate, improved);
         let epoch = l.state.epoch;
         l.state.epoch += 1;
         l.state.batch = 0;
@@ -973,15 +1009,9 @@ fn stop_early(run: &Run, l: &mut Learned, why: Halt) -> Result<()> {
     }
     let wrote = run.output.map(|p| format!("; best model so far written to {}", p.display())).unwrap_or_default();
     match why {
+        // The caller, who knows the command line, adds how to continue.
         Halt::Interrupted => Err(Error::Interrupted(match &run.checkpoint {
-            Some(ck) => format!(
-                "interrupted at epoch {}; checkpoint {}{wrote}; continue with: tidemark fit {} --resume {} -o {}",
-                l.state.epoch,
-                ck.display(),
-                run.data.path.display(),
-                ck.display(),
-                run.output.map(|p| p.display().to_string()).unwrap_or_default()
-            ),
+            Some(ck) => format!("interrupted at epoch {}; checkpoint {}{wrote}", l.state.epoch, ck.display()),
             None => format!("interrupted at epoch {}{wrote}", l.state.epoch),
         })),
         Halt::Diverged(epoch) => Err(Error::Invalid(format!(
@@ -989,17 +1019,6 @@ fn stop_early(run: &Run, l: &mut Learned, why: Halt) -> Result<()> {
             l.state.retries
         ))),
     }
-}
-
-fn save_checkpoint(run: &Run, l: &Learned) -> Result<()> {
-    let Some(path) = &run.checkpoint else { return Ok(()) };
-    let state = serde_json::to_string(&l.state).map_err(|e| Error::Invalid(e.to_string()))?;
-    let extra = vec![
-        ("checkpoint.best_params".to_string(), &l.best_params[..]),
-        ("checkpoint.adam_m".to_string(), &l.adam.m[..]),
-        ("checkpoint.adam_v".to_string(), &l.adam.v[..]),
-    ];
-    l.model.save_with(path, extra, Some((CHECKPOINT_KEY, state)))
 }
 
 /// Read a JSON-lines training log written by `fit --log`.
@@ -1122,54 +1141,6 @@ elementwise! {
             }
         }
         acc.iter().sum::<f64>() + tail
-    }
-}
-
-/// Epoch progress on stderr: a bar on a terminal, one line per epoch otherwise.
-struct Progress {
-    bar: Option<ProgressBar>,
-    quiet: bool,
-    started: Instant,
-}
-
-impl Progress {
-    fn new(epochs: usize, done: usize, quiet: bool) -> Progress {
-        let bar = (!quiet && std::io::stderr().is_terminal()).then(|| {
-            let bar = ProgressBar::new(epochs as u64);
-            bar.set_style(
-                ProgressStyle::with_template("{bar:30} epoch {pos}/{len} {msg} [{elapsed_precise} < {eta_precise}]")
-                    .expect("valid template"),
-            );
-            bar.set_position(done as u64);
-            bar
-        });
-        Progress { bar, quiet, started: Instant::now() }
-    }
-
-    fn epoch(&self, epoch: usize, train: f64, val: f64, rate: f64, improved: bool) {
-        let mark = if improved { " *" } else { "" };
-        let msg = format!("train NLL {train:.4} val NLL {val:.4} nats/dim, {rate:.0} vec/s{mark}");
-        match &self.bar {
-            Some(bar) => {
-                bar.set_position(epoch as u64);
-                bar.set_message(msg);
-            }
-            None if !self.quiet => eprintln!("epoch {epoch:>4}  {msg}  ({:.1}s)", self.started.elapsed().as_secs_f64()),
-            None => {}
-        }
-    }
-
-    fn note(&self, msg: &str) {
-        match &self.bar {
-            Some(bar) => bar.println(msg),
-            None => eprintln!("{msg}"),
-        }
-    }
-
-    fn finish(&self) {
-        if let Some(bar) = &self.bar {
-            bar.finish();
-        }
     }
 }
 

@@ -12,14 +12,12 @@ fn tidemark() -> Command {
     Command::new(common::bin())
 }
 
-use common::wavy as data;
-
 #[test]
 fn fit_score_inspect_sample_end_to_end() {
     let dir = tempfile::tempdir().unwrap();
     let (train, shifted) = (dir.path().join("train.npy"), dir.path().join("shifted.npy"));
-    common::save(&train, &data(800, 0.0));
-    common::save(&shifted, &data(200, 1.5));
+    common::save(&train, &common::wavy(800, 0.0));
+    common::save(&shifted, &common::wavy(200, 1.5));
     let model = dir.path().join("model.safetensors");
     tidemark()
         .args(["fit", train.to_str().unwrap(), "-o", model.to_str().unwrap(), "--epochs", "8", "--seed", "4"])
@@ -65,7 +63,7 @@ fn fit_score_inspect_sample_end_to_end() {
 fn same_seed_same_threads_gives_an_identical_model_file() {
     let dir = tempfile::tempdir().unwrap();
     let train = dir.path().join("train.npy");
-    common::save(&train, &data(400, 0.0));
+    common::save(&train, &common::wavy(400, 0.0));
     let fit = |name: &str| {
         let model = dir.path().join(name);
         tidemark()
@@ -149,7 +147,7 @@ fn bad_inputs_fail_with_one_clear_line_and_no_output() {
 fn outputs_in_missing_directories_are_refused_before_training() {
     let dir = tempfile::tempdir().unwrap();
     let train = dir.path().join("train.npy");
-    common::save(&train, &data(200, 0.0));
+    common::save(&train, &common::wavy(200, 0.0));
     let (t, missing) = (train.to_str().unwrap(), dir.path().join("no_such_dir"));
     let model = dir.path().join("model.safetensors");
     for flag in ["-o", "--checkpoint", "--log"] {
@@ -172,7 +170,7 @@ fn outputs_in_missing_directories_are_refused_before_training() {
 fn scoring_data_of_the_wrong_width_is_refused() {
     let dir = tempfile::tempdir().unwrap();
     let train = dir.path().join("train.npy");
-    common::save(&train, &data(300, 0.0));
+    common::save(&train, &common::wavy(300, 0.0));
     let model = dir.path().join("model.safetensors");
     tidemark()
         .args(["fit", train.to_str().unwrap(), "-o", model.to_str().unwrap(), "--epochs", "1", "-q"])
@@ -201,7 +199,7 @@ fn scoring_data_of_the_wrong_width_is_refused() {
 fn config_files_set_options_flags_override_and_unknown_keys_are_named() {
     let dir = tempfile::tempdir().unwrap();
     let train = dir.path().join("train.npy");
-    common::save(&train, &data(300, 0.0));
+    common::save(&train, &common::wavy(300, 0.0));
     let model = dir.path().join("model.safetensors");
     let config = dir.path().join("c.json");
     std::fs::write(&config, r#"{"layers": 3, "hidden": 40, "epochs": 2, "seed": 9}"#).unwrap();
@@ -233,7 +231,7 @@ fn config_files_set_options_flags_override_and_unknown_keys_are_named() {
 fn output_formats_columns_batch_test_and_background_ratio() {
     let dir = tempfile::tempdir().unwrap();
     let train = dir.path().join("train.npy");
-    common::save(&train, &data(600, 0.0));
+    common::save(&train, &common::wavy(600, 0.0));
     let model = dir.path().join("model.safetensors");
     let (t, m) = (train.to_str().unwrap(), model.to_str().unwrap());
     tidemark().args(["fit", t, "-o", m, "--epochs", "3", "--background-noise", "0.5", "-q"]).assert().success();
@@ -294,8 +292,8 @@ fn output_formats_columns_batch_test_and_background_ratio() {
 fn calibrate_then_score_with_p_values() {
     let dir = tempfile::tempdir().unwrap();
     let (train, held) = (dir.path().join("train.npy"), dir.path().join("held.npy"));
-    common::save(&train, &data(600, 0.0));
-    common::save(&held, &data(300, 0.37));
+    common::save(&train, &common::wavy(600, 0.0));
+    common::save(&held, &common::wavy(300, 0.37));
     let model = dir.path().join("model.safetensors");
     let (t, h, m) = (train.to_str().unwrap(), held.to_str().unwrap(), model.to_str().unwrap());
     tidemark().args(["fit", t, "-o", m, "--epochs", "3", "-q"]).assert().success();
@@ -318,10 +316,10 @@ fn calibrate_then_score_with_p_values() {
     assert!(p.iter().zip(&flagged).all(|(p, f)| (*p <= 0.05) == (*f == 1.0)));
 
     // Calibrating on the training file warns; too few rows for the rate is refused.
-    let out = tidemark().args(["calibrate", m, t, "-o", c, "--false-alarm", "0.05"]).assert().success();
+    let out = tidemark().args(["calibrate", m, t, "-o", c, "--false-alarm", "0.05", "--force"]).assert().success();
     assert!(String::from_utf8_lossy(&out.get_output().stderr).contains("is the file the model was fitted on"));
     let tiny = dir.path().join("tiny.npy");
-    common::save(&tiny, &data(50, 0.1));
+    common::save(&tiny, &common::wavy(50, 0.1));
     let cal2 = dir.path().join("cal2.json");
     refuses(
         &["calibrate", m, tiny.to_str().unwrap(), "-o", cal2.to_str().unwrap(), "--false-alarm", "0.01"],
@@ -353,7 +351,7 @@ fn few_rows_per_feature_default_to_a_gaussian_unless_a_flow_is_asked_for() {
     let model = dir.path().join("model.safetensors");
     let (t, m) = (train.to_str().unwrap(), model.to_str().unwrap());
     let kind_with = |extra: &[&str]| -> (String, String) {
-        let out = tidemark().args(["fit", t, "-o", m, "--epochs", "2"]).args(extra).assert().success();
+        let out = tidemark().args(["fit", t, "-o", m, "--epochs", "2", "--force"]).args(extra).assert().success();
         let stderr = String::from_utf8(out.get_output().stderr.clone()).unwrap();
         let out = tidemark().args(["inspect", m, "--json"]).assert().success();
         let meta: serde_json::Value = serde_json::from_slice(&out.get_output().stdout).unwrap();

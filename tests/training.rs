@@ -5,10 +5,10 @@
 mod common;
 
 use assert_cmd::Command;
-use common::{bin, column, mean};
+use common::{bin, column, mean, send, wait_for};
 use std::path::Path;
 use std::process::Stdio;
-use std::time::{Duration, Instant};
+use std::time::Duration;
 use tidemark::data::Matrix;
 
 /// Deterministic non-Gaussian 6-d data (invented).
@@ -32,25 +32,6 @@ fn contents(path: &Path) -> (Vec<u8>, serde_json::Value) {
     let n = u64::from_le_bytes(bytes[..8].try_into().unwrap()) as usize;
     let header: serde_json::Value = serde_json::from_slice(&bytes[8..8 + n]).unwrap();
     (bytes[8 + n..].to_vec(), header)
-}
-
-fn send(pid: u32, signal: &str) {
-    let sig = match signal {
-        "-TERM" => libc::SIGTERM,
-        "-INT" => libc::SIGINT,
-        _ => libc::SIGKILL,
-    };
-    // SAFETY: kill(2) on a child process this test spawned and has not reaped.
-    let rc = unsafe { libc::kill(pid as libc::pid_t, sig) };
-    assert_eq!(rc, 0, "kill {signal} {pid}");
-}
-
-fn wait_for(path: &Path, limit: Duration) {
-    let t = Instant::now();
-    while !path.exists() {
-        assert!(t.elapsed() < limit, "{} never appeared", path.display());
-        std::thread::sleep(Duration::from_millis(5));
-    }
 }
 
 const LONG_RUN: [&str; 12] =
@@ -120,6 +101,7 @@ fn the_newest_checkpoint_always_loads_after_sigkill() {
         let _ = std::fs::remove_file(&checkpoint);
         let mut child = std::process::Command::new(bin())
             .args(["fit", s(&train), "-o", s(&model), "--checkpoint", s(&checkpoint), "--seed", &i.to_string()])
+            .arg("--force")
             .args(args)
             .stderr(Stdio::null())
             .spawn()

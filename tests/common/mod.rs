@@ -2,6 +2,7 @@
 #![allow(dead_code)]
 
 use std::path::{Path, PathBuf};
+use std::time::{Duration, Instant};
 use tidemark::data::{write_npy, Matrix};
 
 /// A committed fixture (written by scripts/make_fixtures.py).
@@ -43,6 +44,27 @@ pub fn column(csv: &str, name: &str) -> Vec<f64> {
 
 pub fn mean(v: &[f64]) -> f64 {
     v.iter().sum::<f64>() / v.len() as f64
+}
+
+/// Send a signal ("-TERM", "-INT", else SIGKILL) to a child process.
+pub fn send(pid: u32, signal: &str) {
+    let sig = match signal {
+        "-TERM" => libc::SIGTERM,
+        "-INT" => libc::SIGINT,
+        _ => libc::SIGKILL,
+    };
+    // SAFETY: kill(2) on a child process this test spawned and has not reaped.
+    let rc = unsafe { libc::kill(pid as libc::pid_t, sig) };
+    assert_eq!(rc, 0, "kill {signal} {pid}");
+}
+
+/// Wait until `path` exists.
+pub fn wait_for(path: &Path, limit: Duration) {
+    let t = Instant::now();
+    while !path.exists() {
+        assert!(t.elapsed() < limit, "{} never appeared", path.display());
+        std::thread::sleep(Duration::from_millis(5));
+    }
 }
 
 /// Deterministic correlated 4-d data, optionally shifted (invented).
