@@ -495,6 +495,12 @@ fn run(cli: Cli) -> Result<()> {
                 println!("{}", serde_json::to_string_pretty(&m.meta).expect("metadata serializes"));
             } else {
                 print!("{}", m.meta.describe());
+                let centre = score::held_out_nll(&m);
+                let rows = match m.refs.validation_nll.len() {
+                    0 => "the training rows (no validation rows stored)".to_string(),
+                    n => format!("{n} held-out validation rows"),
+                };
+                println!("{:<28}NLL mean {:.4}, std {:.4} over {rows}", "typicality centre", centre.mean, centre.std);
             }
             Ok(())
         }
