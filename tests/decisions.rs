@@ -136,9 +136,8 @@ fn calibrated_and_uncalibrated_scores_evaluate_together_with_decision_rates() {
     let doc: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(p("results.json")).unwrap()).unwrap();
     assert_eq!(doc["decision"]["false_alarm"]["flagged"], count);
     assert_eq!(doc["decision"]["false_alarm"]["rows"], 300);
-    let far = &doc["decision"]["detection"][0];
-    assert_eq!(far[0], "far");
-    assert!(far[1]["flagged"].as_u64().unwrap() > 150, "{far}");
+    let far = &doc["decision"]["detection"]["far"];
+    assert!(far["flagged"].as_u64().unwrap() > 150 && far["rows"] == 200, "{far}");
     assert!(table.contains(&format!("Decision (calibration of typicality at false-alarm rate 0.1): {count} of 300")));
     // The report: summary, then the decision, then details; readable labels;
     // the far set's values beyond the robust range counted, not drawn.
