@@ -308,7 +308,7 @@ impl Rate {
 
 /// A calibrated decision read as the decision it is: the false-alarm rate
 /// on the in-distribution file and the share of each outlier set flagged.
-#[derive(Clone, Debug, serde::Serialize)]
+#[derive(Clone, Debug)]
 pub struct DecisionRates {
     /// Where the flags come from: the calibration applied to its score
     /// column, or the files' `flagged` column.
@@ -425,7 +425,11 @@ fn results_json(e: &Evaluated, o: &EvaluateOptions) -> serde_json::Value {
             "ci95": format!("percentile bootstrap, {} resamples of both sets, seed {}", o.bootstrap, o.seed),
         },
         "skipped": e.notes,
-        "decision": e.decision,
+        "decision": e.decision.as_ref().map(|d| serde_json::json!({
+            "source": d.source,
+            "false_alarm": d.false_alarm,
+            "detection": d.detection.iter().map(|(n, r)| (n.clone(), serde_json::json!(r))).collect::<serde_json::Map<_, _>>(),
+        })),
         "sets": e.results.iter().map(|(name, per_column)| {
             let scores: serde_json::Map<String, serde_json::Value> = per_column
                 .iter()

@@ -735,7 +735,18 @@ fn run(cli: Cli) -> Result<()> {
                 let text = serde_json::to_string_pretty(&m.meta).map_err(|e| Error::Invalid(e.to_string()))?;
                 output::print(format!("{text}\n"))
             } else {
-                output::print(m.meta.describe())
+                let centre = score::held_out_nll(&m);
+                let rows = match m.refs.validation_nll.len() {
+                    0 => "the training rows (no validation rows stored)".to_string(),
+                    n => format!("{n} held-out validation rows"),
+                };
+                output::print(format!(
+                    "{}{:<28}NLL mean {:.4}, std {:.4} over {rows}\n",
+                    m.meta.describe(),
+                    "typicality centre",
+                    centre.mean,
+                    centre.std
+                ))
             }
         }
         Command::Sample { model, count, output, seed, force } => {

@@ -64,7 +64,7 @@ fn quantile(sorted: &[f64], q: f64) -> f64 {
 /// in-distribution values, widened to take in every outlier set's median
 /// and the threshold, plus 5% on each side. Far-off values would otherwise
 /// squash the in-distribution histogram into one bin.
-pub fn robust_range(sets: &[(&str, &[f64])], threshold: Option<f64>) -> Option<(f64, f64)> {
+pub fn robust_range(sets: &[(&str, &[f64])], thresholds: &[f64]) -> Option<(f64, f64)> {
     let finite = |v: &[f64]| {
         let mut f: Vec<f64> = v.iter().copied().filter(|x| x.is_finite()).collect();
         f.sort_by(f64::total_cmp);
@@ -83,7 +83,7 @@ pub fn robust_range(sets: &[(&str, &[f64])], threshold: Option<f64>) -> Option<(
             hi = hi.max(m);
         }
     }
-    if let Some(t) = threshold.filter(|t| t.is_finite()) {
+    for &t in thresholds.iter().filter(|t| t.is_finite()) {
         lo = lo.min(t);
         hi = hi.max(t);
     }
@@ -92,10 +92,10 @@ pub fn robust_range(sets: &[(&str, &[f64])], threshold: Option<f64>) -> Option<(
 }
 
 /// Overlaid, normalised histograms of one column for every set on
-/// [`robust_range`], the threshold as a vertical line, and a note counting
+/// [`robust_range`], the thresholds as vertical lines, and a note counting
 /// the values of each set outside the range (not drawn).
-fn histogram(column: &str, sets: &[(&str, &[f64])], threshold: Option<f64>) -> Result<String> {
-    let Some((lo, hi)) = robust_range(sets, threshold) else { return Ok(String::new()) };
+fn histogram(column: &str, sets: &[(&str, &[f64])], thresholds: &[f64]) -> Result<String> {
+    let Some((lo, hi)) = robust_range(sets, thresholds) else { return Ok(String::new()) };
     let bins = 40;
     let width = (hi - lo) / bins as f64;
     let mut outside = Vec::new();
@@ -142,14 +142,14 @@ fn histogram(column: &str, sets: &[(&str, &[f64])], threshold: Option<f64>) -> R
             }
             chart.draw_series(LineSeries::new(steps, color.stroke_width(2))).map_err(plot_error)?;
         }
-        if let Some(t) = threshold {
+        for &t in thresholds {
             chart.draw_series(LineSeries::new(vec![(t, 0.0), (t, top)], BLACK.stroke_width(2))).map_err(plot_error)?;
         }
         root.present().map_err(plot_error)?;
     }
     let mut items: Vec<(&str, RGBColor)> =
         sets.iter().enumerate().map(|(i, (n, _))| (*n, COLORS[i % COLORS.len()])).collect();
-    if threshold.is_some() {
+    if !thresholds.is_empty() {
         items.push(("calibrated threshold", BLACK));
     }
     let note = if outside.is_empty() {
@@ -387,7 +387,15 @@ pub fn write_report(path: &Path, input: &ReportInput) -> Result<()> {
         let id_raw = ev.id.column(column).unwrap_or(&[]);
         let mut sets: Vec<(&str, &[f64])> = vec![("in-distribution", id_raw)];
         sets.extend(ev.ood.iter().map(|(n, t)| (n.as_str(), t.column(column).unwrap_or(&[]))));
-        let threshold = input.calibration.filter(|c| &c.score == column).map(|c| c.threshold_raw);
+        // On the score's own scale: a two-sided threshold is a distance from
+        // the calibration median, so it is drawn on both sides of it.
+        let thresholds: Vec<f64> = match input.calibration.filter(|c| &c.score == column) {
+            Some(c) if c.direction == crate::score::Direction::TwoSided => {
+                vec![c.center - c.threshold_raw, c.center + c.threshold_raw]
+            }
+            Some(c) => vec![c.threshold_raw],
+            None => vec![],
+        };
         let centre = median(id_raw);
         let id_anomaly = anomaly(column, id_raw, centre);
         let curves: Vec<(&str, Vec<(f64, f64, f64)>)> = ev
@@ -414,7 +422,7 @@ pub fn write_report(path: &Path, input: &ReportInput) -> Result<()> {
             html.push_str("</tr>\n");
         }
         html.push_str("</table>\n<div class=\"plots\">");
-        html.push_str(&histogram(column, &sets, threshold)?);
+        html.push_str(&histogram(column, &sets, &thresholds)?);
         html.push_str(&roc(column, &curves)?);
         html.push_str("</div>\n");
     }
@@ -436,7 +444,7 @@ mod tests {
     fn histogram_range_is_robust_to_far_outliers() {
         let id: Vec<f64> = (0..1000).map(|i| i as f64 / 1000.0).collect();
         let far: Vec<f64> = (0..100).map(|i| if i < 60 { 2.0 } else { 1e6 }).collect();
-        let (lo, hi) = robust_range(&[("id", &id), ("far", &far)], None).unwrap();
+        let (lo, hi) = robust_range(&[("id", &id), ("far", &far)], &[]).unwrap();
         assert!(lo < 0.003 && lo > -0.2, "{lo}");
         assert!((2.0..2.2).contains(&hi), "{hi}");
         assert_eq!(METRIC_LABELS.len(), METRIC_NAMES.len());

@@ -136,10 +136,22 @@ fn calibrated_and_uncalibrated_scores_evaluate_together_with_decision_rates() {
     let doc: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(p("results.json")).unwrap()).unwrap();
     assert_eq!(doc["decision"]["false_alarm"]["flagged"], count);
     assert_eq!(doc["decision"]["false_alarm"]["rows"], 300);
-    let far = &doc["decision"]["detection"][0];
-    assert_eq!(far[0], "far");
-    assert!(far[1]["flagged"].as_u64().unwrap() > 150, "{far}");
+    let far = &doc["decision"]["detection"]["far"];
+    assert!(far["flagged"].as_u64().unwrap() > 150 && far["rows"] == 200, "{far}");
     assert!(table.contains(&format!("Decision (calibration of typicality at false-alarm rate 0.1): {count} of 300")));
+    // The report: summary, then the decision, then details; readable labels;
+    // the far set's values beyond the robust range counted, not drawn.
+    tidemark()
+        .args(["evaluate", "--id", &p("held.csv"), "--ood", &format!("far={}", p("far.csv")), "--bootstrap", "20"])
+        .args(["--calibration", &p("cal.json"), "--report", &p("report.html")])
+        .assert()
+        .success();
+    let html = std::fs::read_to_string(p("report.html")).unwrap();
+    let at = |s: &str| html.find(s).unwrap_or_else(|| panic!("report lacks {s}"));
+    assert!(at("Summary: AUROC") < at("Calibrated decision") && at("Calibrated decision") < at("Details per score"));
+    assert!(html.contains(&format!("{count} of 300")) && html.contains("FPR at 95% TPR"), "decision and labels");
+    assert!(!html.contains("fpr_at_95_tpr") && html.contains("&#9733; best"));
+    assert!(html.contains("Outside the plotted range"), "overflow note");
     // Asking to rank a decision is refused with the reason.
     let out = tidemark()
         .args(["evaluate", "--id", &p("held.csv"), "--ood", &format!("far={}", p("far.csv")), "--columns", "flagged"])
