@@ -27,7 +27,9 @@ pub fn auroc(inliers: &[f64], outliers: &[f64]) -> f64 {
     let mut i = 0;
     while i < all.len() {
         let mut j = i;
-        while j < all.len() && all[j].0 == all[i].0 {
+        // Ties under the total order, so a NaN is tied with itself and
+        // every group advances.
+        while j < all.len() && all[j].0.total_cmp(&all[i].0).is_eq() {
             j += 1;
         }
         let mid_rank = (i + j + 1) as f64 / 2.0;
@@ -51,7 +53,7 @@ pub fn roc_curve(negatives: &[f64], positives: &[f64]) -> Vec<(f64, f64, f64)> {
     let mut i = 0;
     while i < all.len() {
         let t = all[i].0;
-        while i < all.len() && all[i].0 == t {
+        while i < all.len() && all[i].0.total_cmp(&t).is_eq() {
             if all[i].1 {
                 tp += 1.0;
             } else {
@@ -335,6 +337,16 @@ pub fn table(results: &Results) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// NaN scores (refused by the readers) must still not stall the tie
+    /// loops: under the total order NaN is one more distinct value.
+    #[test]
+    fn nan_scores_end_the_tie_loops() {
+        let curve = roc_curve(&[1.0, f64::NAN], &[f64::NAN, 2.0]);
+        assert_eq!(curve.len(), 4, "start plus three distinct values");
+        assert_eq!(curve.last().map(|p| (p.0, p.1)), Some((1.0, 1.0)));
+        assert!(auroc(&[1.0, f64::NAN], &[f64::NAN, 2.0]).is_finite());
+    }
 
     /// By definition: the share of (inlier, outlier) pairs ranked right,
     /// ties one half, counted pair by pair.

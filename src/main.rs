@@ -425,7 +425,7 @@ fn run(cli: Cli) -> Result<()> {
         Command::Inspect { model, json } => {
             let m = Model::load(&model)?;
             if json {
-                println!("{}", serde_json::to_string_pretty(&m.meta).expect("metadata serializes"));
+                println!("{}", m.meta.to_json());
             } else {
                 print!("{}", m.meta.describe());
             }

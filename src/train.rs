@@ -63,9 +63,25 @@ impl FitOptions {
     /// Read options from a JSON config file; an unknown key is an error
     /// that names it.
     pub fn from_json_file(path: &std::path::Path) -> Result<FitOptions> {
-        let text = std::fs::read_to_string(path)
-            .map_err(|e| Error::Invalid(format!("{}: cannot read config: {e}", path.display())))?;
-        serde_json::from_str(&text).map_err(|e| Error::Invalid(format!("{}: {e}", path.display())))
+        FitOptions::from_json(path, &crate::data::read_text(path)?)
+    }
+
+    /// Options from the text of a JSON config file (`path` names it in messages).
+    /// Malformed JSON, a key we do not know and a value of the wrong type
+    /// are each one message naming the file and the key.
+    pub fn from_json(path: &std::path::Path, text: &str) -> Result<FitOptions> {
+        let bad = |msg: String| Error::Invalid(format!("{}: {msg}", path.display()));
+        let doc: serde_json::Value = serde_json::from_str(text).map_err(|e| bad(format!("not valid JSON ({e})")))?;
+        let serde_json::Value::Object(fields) = doc else {
+            return Err(bad("a config file is one JSON object of option names and values".into()));
+        };
+        for (key, value) in fields {
+            let shown = crate::data::printable(&key, 40);
+            let one = serde_json::Value::Object(serde_json::Map::from_iter([(key, value)]));
+            serde_json::from_value::<FitOptions>(one).map_err(|e| bad(format!("key '{shown}': {e}")))?;
+        }
+        // Each key alone was fine; this catches a key given twice.
+        serde_json::from_str(text).map_err(|e| bad(e.to_string()))
     }
 
     /// Each option set here, else the one in `fallback`.
