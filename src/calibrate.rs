@@ -90,7 +90,8 @@ impl Calibration {
     /// A calibration from the text of a calibration file (`path` names it
     /// in messages).
     pub fn parse(path: &Path, text: &str) -> Result<Calibration> {
-        let bad = |msg: String| Error::Invalid(format!("{}: {msg}", path.display()));
+        // Messages quote the file's text (serde quotes keys): no control codes.
+        let bad = |msg: String| Error::Invalid(format!("{}: {}", path.display(), crate::data::printable(&msg, 600)));
         let cal: Calibration =
             serde_json::from_str(text).map_err(|e| bad(format!("not a tidemark calibration file ({e})")))?;
         if cal.format != "tidemark-calibration" || cal.format_version != FORMAT_VERSION {

@@ -593,8 +593,9 @@ impl Model {
             .get(META_KEY)
             .ok_or_else(|| Error::model(path, "is not a tidemark model (no tidemark metadata)"))?;
         verify_checksum(path, metadata, &st)?;
-        let meta: Meta =
-            serde_json::from_str(json).map_err(|e| Error::model(path, format!("bad model metadata: {e}")))?;
+        let meta: Meta = serde_json::from_str(json).map_err(|e| {
+            Error::model(path, format!("bad model metadata: {}", crate::data::printable(&e.to_string(), 300)))
+        })?;
         if !(1..=FORMAT_VERSION).contains(&meta.format_version) {
             return Err(Error::model(
                 path,

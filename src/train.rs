@@ -70,7 +70,8 @@ impl FitOptions {
     /// Malformed JSON, a key we do not know and a value of the wrong type
     /// are each one message naming the file and the key.
     pub fn from_json(path: &std::path::Path, text: &str) -> Result<FitOptions> {
-        let bad = |msg: String| Error::Invalid(format!("{}: {msg}", path.display()));
+        // Messages quote the file's text (serde quotes keys): no control codes.
+        let bad = |msg: String| Error::Invalid(format!("{}: {}", path.display(), crate::data::printable(&msg, 600)));
         let doc: serde_json::Value = serde_json::from_str(text).map_err(|e| bad(format!("not valid JSON ({e})")))?;
         let serde_json::Value::Object(fields) = doc else {
             return Err(bad("a config file is one JSON object of option names and values".into()));
