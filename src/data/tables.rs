@@ -73,10 +73,13 @@ pub(super) fn parse_csv_matrix(path: &Path, bytes: &[u8]) -> Result<Matrix, Data
         for (c, field) in rec.iter().enumerate() {
             let column = || column_name(header.as_deref(), c);
             let v = number(path, *line, column, field)?;
-            if !(v as f32).is_finite() {
+            // Parsed as f32 directly: through f64 a decimal can round twice
+            // and miss the float32 it was written from.
+            let v32: f32 = field.parse().unwrap_or(f32::INFINITY);
+            if !v32.is_finite() {
                 return fail(path, format!("line {line}, {}: {v:e} is outside the float32 range", column()));
             }
-            data.push(v as f32);
+            data.push(v32);
         }
     }
     Ok(Matrix::new(records.len(), cols, data))
