@@ -223,6 +223,11 @@ put("scores-no-sidecar.npy", npy_of(np.array(good, dtype=np.float32)))
 put("scores-sidecar-short.npy", npy_of(np.array(good, dtype=np.float32)))
 put("scores-sidecar-short.json", json.dumps({"columns": ["log_likelihood"]}))
 
+# ---- training logs (evaluate --log) and too little data to fit
+put("log-not-json.jsonl", '{"epoch": 1, "step": 10, "lr": 0.001, "train_nll": 1.0, "val_nll": 1.0, "grad_norm": 1.0, "seconds": 1.0}\nnot json\n')
+put("log-wrong-type.jsonl", '{"epoch": "one", "step": 10, "lr": 0.001, "train_nll": 1.0, "val_nll": 1.0, "grad_norm": 1.0, "seconds": 1.0}\n')
+put("fit-too-few-rows.npy", npy_of(small[:3].astype("<f4")))
+
 # ---- model files that are not models (damaged real models are derived by the test)
 put("model-text.safetensors", "this is not a model\n")
 put("model-no-metadata.safetensors", st_ok)

@@ -517,7 +517,11 @@ pub fn fit_run(run: &Run, opts: &FitOptions) -> Result<Model> {
 fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
     let x = run.data;
     if x.rows < MIN_ROWS {
-        return Err(Error::Invalid(format!("need at least {MIN_ROWS} rows to fit, got {}", x.rows)));
+        return Err(Error::Invalid(format!(
+            "{}: need at least {MIN_ROWS} rows to fit, got {}",
+            x.path.display(),
+            x.rows
+        )));
     }
     if let Some(v) = run.val {
         if v.cols != x.cols {
@@ -1021,15 +1025,16 @@ fn save_checkpoint(run: &Run, l: &Learned) -> Result<()> {
 
 /// Read a JSON-lines training log written by `fit --log`.
 pub fn read_log(path: &Path) -> Result<Vec<LogEntry>> {
-    let text =
-        std::fs::read_to_string(path).map_err(|e| Error::Invalid(format!("{}: cannot read: {e}", path.display())))?;
+    let text = crate::data::read_text(path)?;
     text.lines()
         .enumerate()
         .filter(|(_, l)| !l.trim().is_empty())
         .map(|(i, l)| {
-            serde_json::from_str(l).map_err(|e| {
+            let entry: LogEntry = serde_json::from_str(l).map_err(|e| {
+                let e = crate::data::printable(&e.to_string(), 300);
                 Error::Invalid(format!("{}: line {}: not a training log entry ({e})", path.display(), i + 1))
-            })
+            })?;
+            Ok(entry)
         })
         .collect()
 }
