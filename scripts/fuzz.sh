@@ -23,9 +23,14 @@ seed safetensors_data tests/fixtures/*.safetensors tests/bad_inputs/st-*.safeten
 seed model_file tests/bad_inputs/model-*.safetensors fuzz/seeds/*.safetensors
 seed calibration tests/bad_inputs/cal-*.json fuzz/seeds/*.cal.json
 seed config tests/bad_inputs/config-*.json configs/*.json
+# Build once, then run the binaries: editing the crate meanwhile does not
+# send every target back to the compiler.
 nice -n 19 cargo fuzz build --sanitizer none
+bin=fuzz/target/x86_64-unknown-linux-gnu/release
 for t in "${targets[@]}"; do
     echo "== $t: ${secs}s"
-    nice -n 19 cargo fuzz run --sanitizer none "$t" -- -max_total_time="$secs" -rss_limit_mb=2048 \
-        -max_len=65536 -timeout=10 -print_final_stats=1 2>&1 | grep -E "^(stat::|==|.*(Done|crash|panicked|SUMMARY|Test unit written))" || true
+    mkdir -p "fuzz/artifacts/$t"
+    nice -n 19 "$bin/$t" "fuzz/corpus/$t" -artifact_prefix="fuzz/artifacts/$t/" -max_total_time="$secs" \
+        -rss_limit_mb=2048 -max_len=65536 -timeout=10 -print_final_stats=1 2>&1 |
+        grep -E "^(stat::|INFO: Seed|Done|==[0-9]+==|.*(panicked|SUMMARY|Test unit written|DEDUP))" || true
 done
