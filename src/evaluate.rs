@@ -27,9 +27,7 @@ pub fn auroc(inliers: &[f64], outliers: &[f64]) -> f64 {
     let mut i = 0;
     while i < all.len() {
         let mut j = i;
-        // Ties under the total order, so a NaN is tied with itself and
-        // every group advances.
-        while j < all.len() && all[j].0.total_cmp(&all[i].0).is_eq() {
+        while j < all.len() && tied(all[j].0, all[i].0) {
             j += 1;
         }
         let mid_rank = (i + j + 1) as f64 / 2.0;
@@ -38,6 +36,12 @@ pub fn auroc(inliers: &[f64], outliers: &[f64]) -> f64 {
     }
     let (n_in, n_out) = (inliers.len() as f64, outliers.len() as f64);
     (rank_sum - n_out * (n_out + 1.0) / 2.0) / (n_in * n_out)
+}
+
+/// Equal scores, with NaN tied to NaN: every value is tied with itself, so
+/// each tie group holds at least one value and the loops over them advance.
+fn tied(a: f64, b: f64) -> bool {
+    a == b || (a.is_nan() && b.is_nan())
 }
 
 /// One point of a ROC curve per distinct score, highest threshold first,
@@ -53,7 +57,7 @@ pub fn roc_curve(negatives: &[f64], positives: &[f64]) -> Vec<(f64, f64, f64)> {
     let mut i = 0;
     while i < all.len() {
         let t = all[i].0;
-        while i < all.len() && all[i].0.total_cmp(&t).is_eq() {
+        while i < all.len() && tied(all[i].0, t) {
             if all[i].1 {
                 tp += 1.0;
             } else {
@@ -339,7 +343,7 @@ mod tests {
     use super::*;
 
     /// NaN scores (refused by the readers) must still not stall the tie
-    /// loops: under the total order NaN is one more distinct value.
+    /// loops: NaN counts as one more distinct value.
     #[test]
     fn nan_scores_end_the_tie_loops() {
         let curve = roc_curve(&[1.0, f64::NAN], &[f64::NAN, 2.0]);
