@@ -395,8 +395,9 @@ impl Model {
 
     /// log of each class's prior (its share of the training labels).
     fn log_priors(&self) -> Vec<f64> {
-        let total: usize = self.meta.classes.iter().map(|c| c.rows).sum();
-        self.meta.classes.iter().map(|c| (c.rows as f64 / total as f64).ln()).collect()
+        // In f64: row counts come from the file and their sum may not fit.
+        let total: f64 = self.meta.classes.iter().map(|c| c.rows as f64).sum();
+        self.meta.classes.iter().map(|c| (c.rows as f64 / total).ln()).collect()
     }
 
     /// Evaluate whitened rows (`rows x dim`), appending to `out`.
