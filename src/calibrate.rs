@@ -79,17 +79,57 @@ impl Calibration {
     }
 
     pub fn load(path: &Path) -> Result<Calibration> {
-        let text = std::fs::read_to_string(path)
-            .map_err(|e| Error::Invalid(format!("{}: cannot read: {e}", path.display())))?;
-        let cal: Calibration = serde_json::from_str(&text)
-            .map_err(|e| Error::Invalid(format!("{}: not a tidemark calibration file ({e})", path.display())))?;
+        Calibration::parse(path, &crate::data::read_text(path)?)
+    }
+
+    /// A calibration from the text of a calibration file (`path` names it
+    /// in messages).
+    pub fn parse(path: &Path, text: &str) -> Result<Calibration> {
+        // Messages quote the file's text (serde quotes keys): no control codes.
+        let bad = |msg: String| Error::Invalid(format!("{}: {}", path.display(), crate::data::printable(&msg, 600)));
+        let cal: Calibration =
+            serde_json::from_str(text).map_err(|e| bad(format!("not a tidemark calibration file ({e})")))?;
         if cal.format != "tidemark-calibration" || cal.format_version != FORMAT_VERSION {
-            return Err(Error::Invalid(format!(
-                "{}: not a tidemark calibration file of version {FORMAT_VERSION}",
-                path.display()
-            )));
+            return Err(bad(format!("not a tidemark calibration file of version {FORMAT_VERSION}")));
         }
+        cal.check().map_err(bad)?;
         Ok(cal)
+    }
+
+    /// Every field consistent with the others, as [`calibrate`] writes them.
+    fn check(&self) -> std::result::Result<(), String> {
+        let score = crate::data::printable(&self.score, 40);
+        if matches!(self.score.as_str(), "p_value" | "flagged") {
+            return Err(format!("field 'score': '{score}' is computed from a calibration, it cannot be calibrated"));
+        }
+        match crate::score::direction_of(&self.score) {
+            Some(d) if d == self.direction => {}
+            Some(_) => return Err(format!("field 'direction' does not match the score '{score}'")),
+            None => return Err(format!("field 'score': '{score}' is not an anomaly score")),
+        }
+        if !(self.false_alarm > 0.0 && self.false_alarm < 1.0) {
+            return Err(format!("field 'false_alarm': {} is not between 0 and 1", self.false_alarm));
+        }
+        if self.anomaly.is_empty() || self.anomaly.len() != self.rows {
+            return Err(format!("field 'anomaly' holds {} values for {} rows", self.anomaly.len(), self.rows));
+        }
+        if let Some(i) = self.anomaly.iter().position(|v| !v.is_finite()) {
+            return Err(format!("field 'anomaly': value {i} is not a finite number"));
+        }
+        if let Some(i) = self.anomaly.windows(2).position(|w| w[0] > w[1]) {
+            return Err(format!("field 'anomaly': values {i} and {} are not in ascending order", i + 1));
+        }
+        if !self.center.is_finite() {
+            return Err("field 'center' is not a finite number".into());
+        }
+        if conformal_threshold(&self.anomaly, self.false_alarm) != Some((self.rank, self.threshold)) {
+            return Err("fields 'rank' and 'threshold' do not match the values and the false-alarm rate".into());
+        }
+        let raw = if self.direction == Direction::Lower { -self.threshold } else { self.threshold };
+        if self.threshold_raw != raw {
+            return Err("field 'threshold_raw' does not match 'threshold'".into());
+        }
+        Ok(())
     }
 
     pub fn save(&self, path: &Path) -> Result<()> {
@@ -103,6 +143,13 @@ impl Calibration {
     pub fn check_model(&self, model: &Model, path: &Path) -> Result<()> {
         if self.model != model.fingerprint() {
             return Err(Error::Invalid(format!("{}: was calibrated for a different model", path.display())));
+        }
+        if !crate::score::available_columns(model).contains(&self.score) {
+            return Err(Error::Invalid(format!(
+                "{}: field 'score': the model has no column '{}'",
+                path.display(),
+                crate::data::printable(&self.score, 40)
+            )));
         }
         Ok(())
     }

@@ -4,7 +4,13 @@
 use half::{bf16, f16};
 use std::fmt;
 use std::io::Read;
+
+mod npy;
+mod tables;
+
+pub use npy::{write_npy, write_npy_header};
 use std::path::{Path, PathBuf};
+pub use tables::read_score_table;
 
 /// A problem with an input file, always naming the file.
 #[derive(Debug, thiserror::Error)]
@@ -46,7 +52,7 @@ impl Matrix {
     }
 }
 
-/// Element encodings a memory-mapped `.npy` may hold.
+/// Element encodings of mapped embeddings.
 #[derive(Clone, Copy, Debug)]
 enum Elem {
     F16,
@@ -65,6 +71,44 @@ impl Elem {
     }
 }
 
+/// File formats embeddings are read from, chosen by extension.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Format {
+    Npy,
+    Safetensors,
+    Csv,
+}
+
+impl Format {
+    pub fn of(path: &Path) -> Result<Format, DataError> {
+        match extension(path).as_str() {
+            "npy" => Ok(Format::Npy),
+            "safetensors" => Ok(Format::Safetensors),
+            "csv" => Ok(Format::Csv),
+            other => fail(
+                path,
+                format!("unsupported file type '.{}' (expected .npy, .safetensors or .csv)", printable(other, 20)),
+            ),
+        }
+    }
+}
+
+/// A file's bytes: memory-mapped, or in memory.
+pub enum Bytes {
+    Mapped(memmap2::Mmap),
+    Owned(Vec<u8>),
+}
+
+impl std::ops::Deref for Bytes {
+    type Target = [u8];
+    fn deref(&self) -> &[u8] {
+        match self {
+            Bytes::Mapped(m) => m,
+            Bytes::Owned(v) => v,
+        }
+    }
+}
+
 /// Rows of embeddings for the pipeline: in memory (CSV), or a `.npy` or
 /// `.safetensors` file memory-mapped so that a dump larger than memory is
 /// never copied whole.
@@ -77,7 +121,7 @@ pub struct Dataset {
 
 enum Storage {
     Owned(Vec<f32>),
-    Mapped { map: memmap2::Mmap, offset: usize, elem: Elem, big_endian: bool, fortran: bool },
+    Encoded { bytes: Bytes, offset: usize, elem: Elem, big_endian: bool, fortran: bool },
 }
 
 impl Dataset {
@@ -92,13 +136,22 @@ impl Dataset {
     /// [`Dataset::open`] without the check for NaN and infinite values, for
     /// a caller that checks each row itself (`score --bad-rows`).
     pub fn open_unchecked(path: &Path, tensor: Option<&str>) -> Result<Dataset, DataError> {
-        let ds = match extension(path).as_str() {
-            "npy" => Dataset::map_npy(path)?,
-            "safetensors" => Dataset::map_safetensors(path, tensor)?,
-            "csv" => Dataset::from_matrix(path, read_csv_matrix(path)?),
-            other => {
-                return fail(path, format!("unsupported file type '.{other}' (expected .npy, .safetensors or .csv)"))
-            }
+        let format = Format::of(path)?;
+        let bytes = match format {
+            Format::Csv => Bytes::Owned(read_file(path)?),
+            Format::Npy | Format::Safetensors => map_file(path)?,
+        };
+        Dataset::from_bytes(path, format, bytes, tensor)
+    }
+
+    /// Embeddings from the contents of a file in `format` (`path` names it
+    /// in messages); every size is checked against `bytes` and every value
+    /// is checked.
+    pub fn from_bytes(path: &Path, format: Format, bytes: Bytes, tensor: Option<&str>) -> Result<Dataset, DataError> {
+        let ds = match format {
+            Format::Npy => Dataset::from_npy(path, bytes)?,
+            Format::Safetensors => Dataset::from_safetensors(path, bytes, tensor)?,
+            Format::Csv => Dataset::from_matrix(path, tables::parse_csv_matrix(path, &bytes)?),
         };
         if ds.rows == 0 {
             return fail(&ds.path, "has zero rows");
@@ -109,48 +162,29 @@ impl Dataset {
         Ok(ds)
     }
 
-    fn map(path: &Path) -> Result<memmap2::Mmap, DataError> {
-        let file = open(path)?;
-        // SAFETY: the map is read-only; a file changed underneath by another
-        // process could change values, which the data checksum on resume catches.
-        unsafe { memmap2::Mmap::map(&file) }.or_else(|e| fail(path, format!("cannot map: {e}")))
-    }
-
-    fn map_npy(path: &Path) -> Result<Dataset, DataError> {
-        let (header, offset) = npy_header(path)?;
-        check_matrix_shape(path, &header.shape)?;
-        let elem = match &header.descr[1..] {
-            "f2" => Elem::F16,
-            "f4" => Elem::F32,
-            "f8" => Elem::F64,
+    fn from_npy(path: &Path, bytes: Bytes) -> Result<Dataset, DataError> {
+        let a = npy::parse(path, &bytes)?;
+        check_matrix_shape(path, &a.shape)?;
+        let elem = match a.scalar {
+            npy::Scalar::F16 => Elem::F16,
+            npy::Scalar::F32 => Elem::F32,
+            npy::Scalar::F64 => Elem::F64,
             _ => {
-                let d = &header.descr;
                 return fail(
                     path,
-                    format!("unsupported dtype '{d}' for embeddings (expected float32, float64 or float16)"),
-                );
+                    format!("unsupported dtype '{}' for embeddings (expected float32, float64 or float16)", a.descr),
+                )
             }
         };
-        let map = Dataset::map(path)?;
-        let (rows, cols) = (header.shape[0], header.shape[1]);
-        let need = rows * cols * elem.width();
-        let have = map.len().saturating_sub(offset);
-        if have < need {
-            return fail(path, format!("truncated: shape {:?} needs {need} data bytes, file has {have}", header.shape));
-        }
-        let (big_endian, fortran) = (header.descr.starts_with('>'), header.fortran_order);
-        Ok(Dataset {
-            path: path.to_path_buf(),
-            rows,
-            cols,
-            storage: Storage::Mapped { map, offset, elem, big_endian, fortran },
-        })
+        let (rows, cols) = (a.shape[0], a.shape[1]);
+        let storage =
+            Storage::Encoded { bytes, offset: a.offset, elem, big_endian: a.big_endian, fortran: a.fortran_order };
+        Ok(Dataset { path: path.to_path_buf(), rows, cols, storage })
     }
 
-    fn map_safetensors(path: &Path, tensor: Option<&str>) -> Result<Dataset, DataError> {
-        let map = Dataset::map(path)?;
-        let (offset, rows, cols, elem) = locate_tensor(path, &map, tensor)?;
-        let storage = Storage::Mapped { map, offset, elem, big_endian: false, fortran: false };
+    fn from_safetensors(path: &Path, bytes: Bytes, tensor: Option<&str>) -> Result<Dataset, DataError> {
+        let (offset, rows, cols, elem) = locate_tensor(path, &bytes, tensor)?;
+        let storage = Storage::Encoded { bytes, offset, elem, big_endian: false, fortran: false };
         Ok(Dataset { path: path.to_path_buf(), rows, cols, storage })
     }
 
@@ -172,9 +206,9 @@ impl Dataset {
     fn value(&self, r: usize, c: usize) -> f32 {
         match &self.storage {
             Storage::Owned(v) => v[r * self.cols + c],
-            Storage::Mapped { map, offset, elem, big_endian, fortran } => {
+            Storage::Encoded { bytes, offset, elem, big_endian, fortran } => {
                 let i = if *fortran { c * self.rows + r } else { r * self.cols + c };
-                let b = element(&map[*offset..], i, elem.width(), *big_endian);
+                let b = element(&bytes[*offset..], i, elem.width(), *big_endian);
                 match elem {
                     Elem::F16 => f16::from_le_bytes([b[0], b[1]]).to_f32(),
                     Elem::BF16 => bf16::from_le_bytes([b[0], b[1]]).to_f32(),
@@ -185,17 +219,29 @@ impl Dataset {
         }
     }
 
+    /// The stored float64 value at (r, c) before it became float32, for
+    /// files that hold float64.
+    fn wide_value(&self, r: usize, c: usize) -> Option<f64> {
+        match &self.storage {
+            Storage::Encoded { bytes, offset, elem: Elem::F64, big_endian, fortran } => {
+                let i = if *fortran { c * self.rows + r } else { r * self.cols + c };
+                Some(f64::from_le_bytes(element(&bytes[*offset..], i, 8, *big_endian)))
+            }
+            _ => None,
+        }
+    }
+
     /// Copy row `r` into `out` (`cols` values).
     pub fn row_into(&self, r: usize, out: &mut [f32]) {
         match &self.storage {
             Storage::Owned(v) => out.copy_from_slice(&v[r * self.cols..(r + 1) * self.cols]),
-            Storage::Mapped { map, offset, elem: Elem::F32, big_endian: false, fortran: false } => {
-                let bytes = &map[offset + r * self.cols * 4..offset + (r + 1) * self.cols * 4];
+            Storage::Encoded { bytes, offset, elem: Elem::F32, big_endian: false, fortran: false } => {
+                let bytes = &bytes[offset + r * self.cols * 4..offset + (r + 1) * self.cols * 4];
                 for (o, b) in out.iter_mut().zip(bytes.chunks_exact(4)) {
                     *o = f32::from_le_bytes([b[0], b[1], b[2], b[3]]);
                 }
             }
-            Storage::Mapped { .. } => {
+            Storage::Encoded { .. } => {
                 for (c, o) in out.iter_mut().enumerate() {
                     *o = self.value(r, c);
                 }
@@ -236,7 +282,12 @@ impl Dataset {
         let mut row = vec![0.0f32; self.cols];
         for r in 0..self.rows {
             self.row_into(r, &mut row);
-            if let Some((c, what)) = first_bad_value(&row) {
+            if let Some(c) = row.iter().position(|v| !v.is_finite()) {
+                let what = match self.wide_value(r, c) {
+                    Some(w) if w.is_finite() => format!("{w:e}, outside the float32 range"),
+                    _ if row[c].is_nan() => "NaN".to_string(),
+                    _ => "infinite".to_string(),
+                };
                 return fail(&self.path, format!("row {r}, column {c} (0-based) is {what}"));
             }
         }
@@ -268,17 +319,31 @@ pub fn read_matrix(path: &Path, tensor: Option<&str>) -> Result<Matrix, DataErro
 /// Read one integer class label per row from `.npy` (any integer dtype) or
 /// a one-column `.csv` (header optional).
 pub fn read_labels(path: &Path) -> Result<Vec<i64>, DataError> {
-    let labels = match extension(path).as_str() {
-        "npy" => {
-            let (header, bytes) = read_npy(path)?;
-            if header.shape.len() > 2 || (header.shape.len() == 2 && header.shape[1] != 1) {
-                return fail(path, format!("labels must be 1-D (or one column), found shape {:?}", header.shape));
-            }
-            let n = header.shape.first().copied().unwrap_or(1);
-            decode_ints(path, &header.descr, &bytes, n)?
+    let format = match extension(path).as_str() {
+        "npy" => Format::Npy,
+        "csv" => Format::Csv,
+        other => {
+            return fail(
+                path,
+                format!("unsupported label file type '.{}' (expected .npy or .csv)", printable(other, 20)),
+            )
         }
-        "csv" => read_csv_labels(path)?,
-        other => return fail(path, format!("unsupported label file type '.{other}' (expected .npy or .csv)")),
+    };
+    parse_labels(path, format, &read_file(path)?)
+}
+
+/// Labels from the contents of a label file in `format` (`.npy` or `.csv`).
+pub fn parse_labels(path: &Path, format: Format, bytes: &[u8]) -> Result<Vec<i64>, DataError> {
+    let labels = match format {
+        Format::Npy => {
+            let a = npy::parse(path, bytes)?;
+            if a.shape.len() > 2 || (a.shape.len() == 2 && a.shape[1] != 1) {
+                return fail(path, format!("labels must be 1-D (or one column), found shape {:?}", a.shape));
+            }
+            decode_ints(path, &a, &bytes[a.offset..a.offset + a.data_len])?
+        }
+        Format::Csv => tables::parse_csv_labels(path, bytes)?,
+        Format::Safetensors => return fail(path, "labels are read from .npy or .csv files"),
     };
     if labels.is_empty() {
         return fail(path, "has zero labels");
@@ -298,113 +363,75 @@ fn extension(path: &Path) -> String {
     path.extension().and_then(|e| e.to_str()).unwrap_or("").to_ascii_lowercase()
 }
 
-fn open(path: &Path) -> Result<std::fs::File, DataError> {
+/// `s` with control and invisible formatting characters escaped and cut
+/// to `max` characters: for messages and listings that show text taken
+/// from a file, which must not drive the terminal.
+pub fn printable(s: &str, max: usize) -> String {
+    let mut out = String::new();
+    for (i, ch) in s.chars().enumerate() {
+        if i == max {
+            out.push_str("...");
+            break;
+        }
+        if drives_terminal(ch) {
+            out.extend(ch.escape_unicode());
+        } else {
+            out.push(ch);
+        }
+    }
+    out
+}
+
+/// Control characters, and the invisible ones that reorder or hide text.
+pub fn drives_terminal(ch: char) -> bool {
+    ch.is_control()
+        || matches!(ch, '\u{200B}'..='\u{200F}' | '\u{202A}'..='\u{202E}' | '\u{2066}'..='\u{2069}' | '\u{FEFF}')
+}
+
+/// Open a file for reading. Only regular files: a directory gets a clear
+/// message, and a pipe or device (which could block forever or never end)
+/// is refused before it is opened.
+pub fn open_file(path: &Path) -> Result<std::fs::File, DataError> {
+    let meta = std::fs::metadata(path).or_else(|e| fail(path, format!("cannot open: {e}")))?;
+    if meta.is_dir() {
+        return fail(path, "is a directory, not a file");
+    }
+    if !meta.is_file() {
+        return fail(path, "is not a regular file (pipes and devices are not read)");
+    }
     std::fs::File::open(path).or_else(|e| fail(path, format!("cannot open: {e}")))
 }
 
-// ---------------------------------------------------------------- .npy
-
-/// The parts of a `.npy` header this tool uses.
-#[derive(Debug)]
-struct NpyHeader {
-    descr: String,
-    fortran_order: bool,
-    shape: Vec<usize>,
+/// The whole of a regular file (see [`open_file`]), reading no more than
+/// the length it had when opened.
+pub fn read_file(path: &Path) -> Result<Vec<u8>, DataError> {
+    let file = open_file(path)?;
+    let len = file.metadata().map(|m| m.len()).or_else(|e| fail(path, format!("cannot read: {e}")))?;
+    let mut bytes = Vec::new();
+    file.take(len).read_to_end(&mut bytes).or_else(|e| fail(path, format!("cannot read: {e}")))?;
+    Ok(bytes)
 }
 
-/// Parse the header of a `.npy` file (format versions 1.0, 2.0 and 3.0);
-/// returns it with the byte offset where the data starts.
-fn npy_header(path: &Path) -> Result<(NpyHeader, usize), DataError> {
-    let mut f = std::io::BufReader::new(open(path)?);
-    let mut magic = [0u8; 8];
-    if f.read_exact(&mut magic).is_err() || &magic[..6] != b"\x93NUMPY" {
-        return fail(path, "is not a .npy file (bad magic string)");
-    }
-    let header_len = match magic[6] {
-        1 => {
-            let mut b = [0u8; 2];
-            f.read_exact(&mut b).or_else(|_| fail(path, "truncated .npy header"))?;
-            u16::from_le_bytes(b) as usize
-        }
-        2 | 3 => {
-            let mut b = [0u8; 4];
-            f.read_exact(&mut b).or_else(|_| fail(path, "truncated .npy header"))?;
-            u32::from_le_bytes(b) as usize
-        }
-        v => return fail(path, format!("unsupported .npy format version {v}.{}", magic[7])),
-    };
-    let mut text = vec![0u8; header_len];
-    f.read_exact(&mut text).or_else(|_| fail(path, "truncated .npy header"))?;
-    let text = String::from_utf8(text).or_else(|_| fail(path, ".npy header is not text"))?;
-    let header = parse_npy_header(&text).ok_or_else(|| DataError {
-        path: path.to_path_buf(),
-        msg: format!("cannot parse .npy header {}", text.trim()),
-    })?;
-    if dtype_width(&header.descr).is_none() {
-        return fail(path, format!("unsupported dtype '{}'", header.descr));
-    }
-    let prefix = if magic[6] == 1 { 10 } else { 12 };
-    Ok((header, prefix + header_len))
+/// A regular file as UTF-8 text.
+pub fn read_text(path: &Path) -> Result<String, DataError> {
+    String::from_utf8(read_file(path)?)
+        .or_else(|e| fail(path, format!("is not UTF-8 text (invalid byte at offset {})", e.utf8_error().valid_up_to())))
 }
 
-/// Parse the header and read the raw data bytes of a `.npy` file.
-fn read_npy(path: &Path) -> Result<(NpyHeader, Vec<u8>), DataError> {
-    let (header, offset) = npy_header(path)?;
-    let mut f = std::io::BufReader::new(open(path)?);
-    std::io::copy(&mut (&mut f).take(offset as u64), &mut std::io::sink())
-        .or_else(|e| fail(path, format!("read error: {e}")))?;
-    let expected = header.shape.iter().product::<usize>() * dtype_width(&header.descr).unwrap_or(0);
-    let mut bytes = Vec::with_capacity(expected);
-    f.take(expected as u64).read_to_end(&mut bytes).or_else(|e| fail(path, format!("read error: {e}")))?;
-    if bytes.len() < expected {
-        return fail(
-            path,
-            format!("truncated: shape {:?} needs {expected} data bytes, file has {}", header.shape, bytes.len()),
-        );
+/// Memory-map a regular file (see [`open_file`]).
+fn map_file(path: &Path) -> Result<Bytes, DataError> {
+    let file = open_file(path)?;
+    if file.metadata().map(|m| m.len()).unwrap_or(0) == 0 {
+        return fail(path, "is empty");
     }
-    Ok((header, bytes))
+    // SAFETY: the map is read-only; a file changed underneath by another
+    // process could change values, which the data checksum on resume catches.
+    let map = unsafe { memmap2::Mmap::map(&file) }.or_else(|e| fail(path, format!("cannot map: {e}")))?;
+    Ok(Bytes::Mapped(map))
 }
 
-/// Parse the Python dict literal of a `.npy` header, e.g.
-/// `{'descr': '<f4', 'fortran_order': False, 'shape': (3, 4), }`.
-fn parse_npy_header(text: &str) -> Option<NpyHeader> {
-    let value_after = |key: &str| -> Option<&str> {
-        let at = text.find(&format!("'{key}'")).or_else(|| text.find(&format!("\"{key}\"")))?;
-        let rest = &text[at + key.len() + 2..];
-        Some(rest[rest.find(':')? + 1..].trim_start())
-    };
-    let descr_raw = value_after("descr")?;
-    let quote = descr_raw.chars().next()?;
-    let descr = descr_raw[1..].split(quote).next()?.to_string();
-    let fortran_order = value_after("fortran_order")?.starts_with("True");
-    let shape_raw = value_after("shape")?;
-    let inner = &shape_raw[shape_raw.find('(')? + 1..shape_raw.find(')')?];
-    let shape = inner
-        .split(',')
-        .map(str::trim)
-        .filter(|s| !s.is_empty())
-        .map(|s| s.trim_end_matches('L').parse().ok())
-        .collect::<Option<Vec<usize>>>()?;
-    Some(NpyHeader { descr, fortran_order, shape })
-}
-
-/// Bytes per element of a numpy dtype string, for the dtypes we read.
-fn dtype_width(descr: &str) -> Option<usize> {
-    let (order, kind) = descr.split_at(1);
-    if !matches!(order, "<" | ">" | "|" | "=") {
-        return None;
-    }
-    match kind {
-        "f2" | "i2" | "u2" => Some(2),
-        "f4" | "i4" | "u4" => Some(4),
-        "f8" | "i8" | "u8" => Some(8),
-        "i1" | "u1" | "b1" => Some(1),
-        _ => None,
-    }
-}
-
-/// Copy `n` elements of `width` bytes each, flipping byte order when the
-/// file is big-endian, so decoders below always see little-endian bytes.
+/// Copy element `i` of `width` bytes, flipping byte order when the file is
+/// big-endian, so decoders always see little-endian bytes.
 fn element(bytes: &[u8], i: usize, width: usize, big_endian: bool) -> [u8; 8] {
     let mut out = [0u8; 8];
     out[..width].copy_from_slice(&bytes[i * width..(i + 1) * width]);
@@ -414,21 +441,22 @@ fn element(bytes: &[u8], i: usize, width: usize, big_endian: bool) -> [u8; 8] {
     out
 }
 
-fn decode_ints(path: &Path, descr: &str, bytes: &[u8], n: usize) -> Result<Vec<i64>, DataError> {
-    let big = descr.starts_with('>');
-    let width = dtype_width(descr).unwrap_or(0);
-    let conv: fn([u8; 8]) -> i64 = match &descr[1..] {
-        "i1" => |b| b[0] as i8 as i64,
-        "u1" => |b| b[0] as i64,
-        "i2" => |b| i16::from_le_bytes([b[0], b[1]]) as i64,
-        "u2" => |b| u16::from_le_bytes([b[0], b[1]]) as i64,
-        "i4" => |b| i32::from_le_bytes([b[0], b[1], b[2], b[3]]) as i64,
-        "u4" => |b| u32::from_le_bytes([b[0], b[1], b[2], b[3]]) as i64,
-        "i8" => i64::from_le_bytes,
-        "u8" => |b| u64::from_le_bytes(b).min(i64::MAX as u64) as i64,
-        _ => return fail(path, format!("unsupported dtype '{descr}' for labels (expected an integer dtype)")),
+/// Integer labels from `.npy` data (`data` is exactly the array's bytes).
+fn decode_ints(path: &Path, a: &npy::NpyArray, data: &[u8]) -> Result<Vec<i64>, DataError> {
+    use npy::Scalar;
+    let conv: fn([u8; 8]) -> i64 = match a.scalar {
+        Scalar::I8 => |b| b[0] as i8 as i64,
+        Scalar::U8 => |b| b[0] as i64,
+        Scalar::I16 => |b| i16::from_le_bytes([b[0], b[1]]) as i64,
+        Scalar::U16 => |b| u16::from_le_bytes([b[0], b[1]]) as i64,
+        Scalar::I32 => |b| i32::from_le_bytes([b[0], b[1], b[2], b[3]]) as i64,
+        Scalar::U32 => |b| u32::from_le_bytes([b[0], b[1], b[2], b[3]]) as i64,
+        Scalar::I64 => i64::from_le_bytes,
+        Scalar::U64 => |b| u64::from_le_bytes(b).min(i64::MAX as u64) as i64,
+        _ => return fail(path, format!("unsupported dtype '{}' for labels (expected an integer dtype)", a.descr)),
     };
-    Ok((0..n).map(|i| conv(element(bytes, i, width, big))).collect())
+    let width = a.scalar.width();
+    Ok((0..data.len() / width).map(|i| conv(element(data, i, width, a.big_endian))).collect())
 }
 
 fn check_matrix_shape(path: &Path, shape: &[usize]) -> Result<(), DataError> {
@@ -438,52 +466,30 @@ fn check_matrix_shape(path: &Path, shape: &[usize]) -> Result<(), DataError> {
     Ok(())
 }
 
-/// Write a float32 2-D `.npy` file (format 1.0) to `w`.
-pub fn write_npy<W: std::io::Write + ?Sized>(w: &mut W, m: &Matrix) -> std::io::Result<()> {
-    write_npy_header(w, m.rows, m.cols)?;
-    let mut buf = Vec::with_capacity(m.data.len() * 4);
-    for v in &m.data {
-        buf.extend_from_slice(&v.to_le_bytes());
-    }
-    w.write_all(&buf)
-}
-
-/// The header of a float32 2-D `.npy` file (format 1.0) of `rows x cols`;
-/// the little-endian values follow, row by row.
-pub fn write_npy_header<W: std::io::Write + ?Sized>(w: &mut W, rows: usize, cols: usize) -> std::io::Result<()> {
-    let mut header = format!("{{'descr': '<f4', 'fortran_order': False, 'shape': ({rows}, {cols}), }}");
-    // Pad so that magic + length + header + newline is a multiple of 64.
-    let unpadded = 10 + header.len() + 1;
-    header.push_str(&" ".repeat(unpadded.next_multiple_of(64) - unpadded));
-    header.push('\n');
-    w.write_all(b"\x93NUMPY\x01\x00")?;
-    w.write_all(&(header.len() as u16).to_le_bytes())?;
-    w.write_all(header.as_bytes())
-}
-
-// ---------------------------------------------------------------- .safetensors
-
 /// Find the 2-D tensor to read in a safetensors file: its byte offset in
 /// the file, its shape and its element type.
 fn locate_tensor(path: &Path, bytes: &[u8], tensor: Option<&str>) -> Result<(usize, usize, usize, Elem), DataError> {
     let st = safetensors::SafeTensors::deserialize(bytes)
-        .or_else(|e| fail(path, format!("not a valid safetensors file ({e})")))?;
-    let mut names: Vec<&str> = st.names().into_iter().collect();
+        .or_else(|e| fail(path, format!("not a valid safetensors file ({})", printable(&e.to_string(), 200))))?;
+    let mut names: Vec<String> = st.names().into_iter().map(|n| printable(n, 60)).collect();
     names.sort();
-    let name = match (tensor, names.as_slice()) {
-        (Some(t), _) => t,
-        (None, [only]) => only,
-        (None, []) => return fail(path, "holds no tensors"),
-        (None, _) => {
-            return fail(path, format!("holds several tensors; choose one with --tensor: {}", names.join(", ")))
-        }
+    let listing = || {
+        let shown: Vec<&str> = names.iter().take(20).map(String::as_str).collect();
+        let more = if names.len() > 20 { format!(" and {} more", names.len() - 20) } else { String::new() };
+        format!("{}{more}", shown.join(", "))
     };
-    let view =
-        st.tensor(name).or_else(|_| fail(path, format!("has no tensor '{name}' (it has: {})", names.join(", "))))?;
+    let name = match (tensor, st.names().as_slice()) {
+        (Some(t), _) => t.to_string(),
+        (None, [only]) => only.to_string(),
+        (None, []) => return fail(path, "holds no tensors"),
+        (None, _) => return fail(path, format!("holds several tensors; choose one with --tensor: {}", listing())),
+    };
+    let shown = printable(&name, 60);
+    let view = st.tensor(&name).or_else(|_| fail(path, format!("has no tensor '{shown}' (it has: {})", listing())))?;
     let shape = view.shape();
-    if shape.len() != 2 {
-        return fail(path, format!("tensor '{name}' is {}-D {shape:?}; expected 2-D (rows x features)", shape.len()));
-    }
+    let &[rows, cols] = shape else {
+        return fail(path, format!("tensor '{shown}' is {}-D {shape:?}; expected 2-D (rows x features)", shape.len()));
+    };
     use safetensors::Dtype;
     let elem = match view.dtype() {
         Dtype::F32 => Elem::F32,
@@ -493,173 +499,24 @@ fn locate_tensor(path: &Path, bytes: &[u8], tensor: Option<&str>) -> Result<(usi
         other => {
             return fail(
                 path,
-                format!("tensor '{name}' has unsupported dtype {other:?} (expected F32, F64, F16 or BF16)"),
+                format!("tensor '{shown}' has unsupported dtype {other:?} (expected F32, F64, F16 or BF16)"),
             )
         }
     };
+    let need = rows.checked_mul(cols).and_then(|n| n.checked_mul(elem.width()));
+    if need != Some(view.data().len()) {
+        return fail(
+            path,
+            format!("tensor '{shown}': shape {shape:?} does not match its {} data bytes", view.data().len()),
+        );
+    }
     let offset = view.data().as_ptr() as usize - bytes.as_ptr() as usize;
-    Ok((offset, shape[0], shape[1], elem))
-}
-
-// ---------------------------------------------------------------- .csv
-
-fn csv_records(path: &Path) -> Result<Vec<(u64, csv::StringRecord)>, DataError> {
-    let mut reader =
-        csv::ReaderBuilder::new().has_headers(false).flexible(true).trim(csv::Trim::All).from_reader(open(path)?);
-    let mut out = Vec::new();
-    for rec in reader.records() {
-        let rec = rec.or_else(|e| fail(path, format!("CSV error: {e}")))?;
-        let line = rec.position().map(|p| p.line()).unwrap_or(0);
-        if rec.iter().all(str::is_empty) {
-            continue;
-        }
-        out.push((line, rec));
-    }
-    Ok(out)
-}
-
-/// A first row with any field that is not a number is a header.
-fn split_header(records: &mut Vec<(u64, csv::StringRecord)>) -> Option<Vec<String>> {
-    let first = &records.first()?.1;
-    if first.iter().all(|f| f.parse::<f64>().is_ok()) {
-        return None;
-    }
-    let names = first.iter().map(str::to_string).collect();
-    records.remove(0);
-    Some(names)
-}
-
-fn read_csv_matrix(path: &Path) -> Result<Matrix, DataError> {
-    let mut records = csv_records(path)?;
-    let header = split_header(&mut records);
-    let cols = header.as_ref().map(Vec::len).or_else(|| records.first().map(|r| r.1.len())).unwrap_or(0);
-    let mut data = Vec::with_capacity(records.len() * cols);
-    for (line, rec) in &records {
-        if rec.len() != cols {
-            return fail(path, format!("line {line} has {} fields, expected {cols}", rec.len()));
-        }
-        for (c, field) in rec.iter().enumerate() {
-            let v: f64 = field.parse().or_else(|_| {
-                let col = match &header {
-                    Some(names) => format!("column {} ('{}')", c + 1, names[c]),
-                    None => format!("column {}", c + 1),
-                };
-                fail(path, format!("line {line}, {col}: '{field}' is not a number"))
-            })?;
-            data.push(v as f32);
-        }
-    }
-    Ok(Matrix::new(records.len(), cols, data))
-}
-
-fn read_csv_labels(path: &Path) -> Result<Vec<i64>, DataError> {
-    let mut records = csv_records(path)?;
-    if records.first().is_some_and(|(_, r)| r.len() == 1 && r[0].parse::<i64>().is_err()) {
-        records.remove(0);
-    }
-    records
-        .iter()
-        .map(|(line, rec)| {
-            if rec.len() != 1 {
-                return fail(path, format!("line {line} has {} fields; a label file has one column", rec.len()));
-            }
-            rec[0].parse::<i64>().or_else(|_| fail(path, format!("line {line}: '{}' is not an integer label", &rec[0])))
-        })
-        .collect()
-}
-
-// ---------------------------------------------------------------- score files
-
-/// Read a score file written by `tidemark score`: CSV with a header, `.npy`
-/// with its sidecar `.json` of column names, or JSON lines (null = NaN).
-/// Returns the column names and the values column by column.
-pub fn read_score_table(path: &Path) -> Result<(Vec<String>, Vec<Vec<f64>>), DataError> {
-    let (names, rows): (Vec<String>, Vec<Vec<f64>>) = match extension(path).as_str() {
-        "csv" => {
-            let mut records = csv_records(path)?;
-            let names = split_header(&mut records).ok_or_else(|| DataError {
-                path: path.to_path_buf(),
-                msg: "has no header row naming the score columns".into(),
-            })?;
-            let rows = records
-                .iter()
-                .map(|(line, rec)| {
-                    if rec.len() != names.len() {
-                        return fail(path, format!("line {line} has {} fields, expected {}", rec.len(), names.len()));
-                    }
-                    rec.iter()
-                        .enumerate()
-                        .map(|(c, f)| {
-                            f.parse::<f64>().or_else(|_| {
-                                fail(path, format!("line {line}, column '{}': '{f}' is not a number", names[c]))
-                            })
-                        })
-                        .collect()
-                })
-                .collect::<Result<_, _>>()?;
-            (names, rows)
-        }
-        "npy" => {
-            let m = read_matrix(path, None)?;
-            let side = path.with_extension("json");
-            let text = std::fs::read_to_string(&side)
-                .or_else(|e| fail(&side, format!("cannot read the column names beside {}: {e}", path.display())))?;
-            let doc: serde_json::Value =
-                serde_json::from_str(&text).or_else(|e| fail(&side, format!("bad JSON: {e}")))?;
-            let names: Vec<String> = doc["columns"]
-                .as_array()
-                .map(|a| a.iter().filter_map(|v| v.as_str().map(str::to_string)).collect())
-                .unwrap_or_default();
-            if names.len() != m.cols {
-                return fail(&side, format!("names {} columns but {} has {}", names.len(), path.display(), m.cols));
-            }
-            (names, (0..m.rows).map(|r| m.row(r).iter().map(|&v| v as f64).collect()).collect())
-        }
-        "jsonl" => {
-            let text = std::fs::read_to_string(path).or_else(|e| fail(path, format!("cannot read: {e}")))?;
-            let mut names: Vec<String> = Vec::new();
-            let mut rows = Vec::new();
-            for (i, line) in text.lines().enumerate().filter(|(_, l)| !l.trim().is_empty()) {
-                let obj: serde_json::Map<String, serde_json::Value> =
-                    serde_json::from_str(line).or_else(|e| fail(path, format!("line {}: {e}", i + 1)))?;
-                if names.is_empty() {
-                    names = obj.keys().cloned().collect();
-                }
-                let row = names
-                    .iter()
-                    .map(|n| match obj.get(n) {
-                        Some(serde_json::Value::Null) => Ok(f64::NAN),
-                        Some(v) => v
-                            .as_f64()
-                            .ok_or(())
-                            .or_else(|_| fail(path, format!("line {}: '{n}' is not a number", i + 1))),
-                        None => fail(path, format!("line {}: missing '{n}'", i + 1)),
-                    })
-                    .collect::<Result<Vec<f64>, _>>()?;
-                rows.push(row);
-            }
-            (names, rows)
-        }
-        other => return fail(path, format!("unsupported score file type '.{other}' (expected .csv, .npy or .jsonl)")),
-    };
-    if rows.is_empty() {
-        return fail(path, "has no rows");
-    }
-    let columns = (0..names.len()).map(|c| rows.iter().map(|r| r[c]).collect()).collect();
-    Ok((names, columns))
+    Ok((offset, rows, cols, elem))
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    #[test]
-    fn parses_header_variants() {
-        let h = parse_npy_header("{'descr': '<f8', 'fortran_order': True, 'shape': (3, 4), }").unwrap();
-        assert_eq!((h.descr.as_str(), h.fortran_order, h.shape), ("<f8", true, vec![3, 4]));
-        let h = parse_npy_header("{'descr': '|u1', 'fortran_order': False, 'shape': (7,), }").unwrap();
-        assert_eq!(h.shape, vec![7]);
-    }
 
     #[test]
     fn npy_round_trip() {
@@ -673,5 +530,11 @@ mod tests {
         // The whole header block is 64-byte aligned, as numpy writes it.
         let bytes = std::fs::read(&p).unwrap();
         assert_eq!((bytes.len() - 24) % 64, 0);
+    }
+
+    #[test]
+    fn printable_escapes_terminal_codes() {
+        assert_eq!(printable("a\u{1b}[2Jb\u{202E}c", 100), "a\\u{1b}[2Jb\\u{202e}c");
+        assert_eq!(printable("abcdef", 3), "abc...");
     }
 }

@@ -29,7 +29,7 @@ pub fn auroc(inliers: &[f64], outliers: &[f64]) -> f64 {
     let mut i = 0;
     while i < all.len() {
         let mut j = i;
-        while j < all.len() && all[j].0 == all[i].0 {
+        while j < all.len() && tied(all[j].0, all[i].0) {
             j += 1;
         }
         let mid_rank = (i + j + 1) as f64 / 2.0;
@@ -49,7 +49,7 @@ fn tie_groups(negatives: &[f64], positives: &[f64]) -> Vec<(f64, usize, usize)> 
     let mut groups: Vec<(f64, usize, usize)> = Vec::new();
     for (v, positive) in all {
         match groups.last_mut() {
-            Some(g) if g.0 == v => {}
+            Some(g) if tied(g.0, v) => {}
             _ => groups.push((v, 0, 0)),
         }
         if let Some(g) = groups.last_mut() {
@@ -61,6 +61,12 @@ fn tie_groups(negatives: &[f64], positives: &[f64]) -> Vec<(f64, usize, usize)> 
         }
     }
     groups
+}
+
+/// Equal scores, with NaN tied to NaN: every value is tied with itself, so
+/// each tie group holds at least one value and the loops over them advance.
+fn tied(a: f64, b: f64) -> bool {
+    a == b || (a.is_nan() && b.is_nan())
 }
 
 /// One point of a ROC curve per distinct score, highest threshold first,
@@ -494,6 +500,16 @@ pub fn table(e: &Evaluated) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// NaN scores (refused by the readers) must still not stall the tie
+    /// loops: NaN counts as one more distinct value.
+    #[test]
+    fn nan_scores_end_the_tie_loops() {
+        let curve = roc_curve(&[1.0, f64::NAN], &[f64::NAN, 2.0]);
+        assert_eq!(curve.len(), 4, "start plus three distinct values");
+        assert_eq!(curve.last().map(|p| (p.0, p.1)), Some((1.0, 1.0)));
+        assert!(auroc(&[1.0, f64::NAN], &[f64::NAN, 2.0]).is_finite());
+    }
 
     /// By definition: the share of (inlier, outlier) pairs ranked right,
     /// ties one half, counted pair by pair.

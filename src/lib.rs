@@ -16,8 +16,8 @@
 
 pub mod bench;
 pub mod calibrate;
-pub mod columnar;
 pub mod check;
+pub mod columnar;
 pub mod data;
 pub mod demo;
 pub mod error;

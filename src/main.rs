@@ -732,8 +732,7 @@ fn run(cli: Cli) -> Result<()> {
         Command::Inspect { model, json } => {
             let m = Model::load(&model)?;
             if json {
-                let text = serde_json::to_string_pretty(&m.meta).map_err(|e| Error::Invalid(e.to_string()))?;
-                output::print(format!("{text}\n"))
+                output::print(format!("{}\n", m.meta.to_json()))
             } else {
                 let centre = score::held_out_nll(&m);
                 let rows = match m.refs.validation_nll.len() {

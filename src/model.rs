@@ -13,8 +13,6 @@ use crate::flow::{self, Flow, FlowSpec, Workers, HALF_LN_2PI};
 use crate::preprocess::{Method, Preprocessor};
 use rand::SeedableRng;
 use rand_distr::{Distribution, StandardNormal};
-use safetensors::{Dtype, SafeTensors};
-use std::collections::HashMap;
 use std::path::Path;
 
 /// Newest version of the model file layout; bumped on any incompatible
@@ -34,6 +32,8 @@ pub fn format_version_for(mixing: crate::flow::Mixing) -> u32 {
 
 /// Key of the JSON document in the safetensors `__metadata__`.
 const META_KEY: &str = "tidemark";
+
+mod file;
 
 /// How a model was trained and how it did.
 #[derive(Clone, Debug, Default, serde::Serialize, serde::Deserialize)]
@@ -109,7 +109,8 @@ impl Meta {
             format!("{} {:?}", p.dead_features.len(), p.dead_features)
         };
         let mut s = String::new();
-        let mut line = |k: &str, v: String| s.push_str(&format!("{k:<28}{v}\n"));
+        // Strings here come from the file: no control codes reach the terminal.
+        let mut line = |k: &str, v: String| s.push_str(&format!("{k:<28}{}\n", crate::data::printable(&v, 100_000)));
         line("model", format!("{} v{} ({})", self.format, self.format_version, self.created_by));
         line("input features", self.input_dim.to_string());
         line("dead features", format!("{dead} (std <= {:e} x largest std)", p.dead_threshold));
@@ -157,6 +158,21 @@ impl Meta {
         }
         line("settings", t.settings.to_string());
         s
+    }
+
+    /// The metadata as pretty JSON, for `inspect --json`, with every
+    /// character that could drive a terminal written as a JSON escape.
+    pub fn to_json(&self) -> String {
+        let text = serde_json::to_string_pretty(self).unwrap_or_default();
+        let mut out = String::with_capacity(text.len());
+        for ch in text.chars() {
+            if ch != '\n' && crate::data::drives_terminal(ch) {
+                out.push_str(&format!("\\u{:04x}", ch as u32));
+            } else {
+                out.push(ch);
+            }
+        }
+        out
     }
 
     /// One line for the end of `fit`.
@@ -379,8 +395,9 @@ impl Model {
 
     /// log of each class's prior (its share of the training labels).
     fn log_priors(&self) -> Vec<f64> {
-        let total: usize = self.meta.classes.iter().map(|c| c.rows).sum();
-        self.meta.classes.iter().map(|c| (c.rows as f64 / total as f64).ln()).collect()
+        // In f64: row counts come from the file and their sum may not fit.
+        let total: f64 = self.meta.classes.iter().map(|c| c.rows as f64).sum();
+        self.meta.classes.iter().map(|c| (c.rows as f64 / total).ln()).collect()
     }
 
     /// Evaluate whitened rows (`rows x dim`), appending to `out`.
@@ -472,299 +489,6 @@ impl Model {
         }
         Matrix::new(n, self.meta.input_dim, self.pre.inverse(&u, n))
     }
-
-    /// Write the model as one `.safetensors` file (atomically).
-    pub fn save(&self, path: &Path) -> Result<()> {
-        self.save_with(path, Vec::new(), None)
-    }
-
-    /// Write the model plus extra f32 tensors and one extra metadata entry
-    /// (used by checkpoints).
-    pub(crate) fn save_with(
-        &self,
-        path: &Path,
-        extra: Vec<(String, &[f32])>,
-        extra_meta: Option<(&str, String)>,
-    ) -> Result<()> {
-        let mut tensors: Vec<(String, Dtype, Vec<usize>, Vec<u8>)> = Vec::new();
-        for (name, values) in extra {
-            tensors.push((name, Dtype::F32, vec![values.len()], le_bytes_f32(values)));
-        }
-        let mut put = |name: &str, dtype: Dtype, shape: Vec<usize>, bytes: Vec<u8>| {
-            tensors.push((name.to_string(), dtype, shape, bytes));
-        };
-        let pre = &self.pre;
-        let (live, k) = (pre.live.len(), pre.dim());
-        put("preprocess.mean", Dtype::F64, vec![live], le_bytes_f64(&pre.mean));
-        put("preprocess.scale", Dtype::F64, vec![k], le_bytes_f64(&pre.scale));
-        put("preprocess.live_features", Dtype::I64, vec![live], le_bytes_i64(&pre.live));
-        if let Some(c) = &pre.components {
-            put("preprocess.components", Dtype::F32, vec![k, live], le_bytes_f32(c));
-        }
-        if !pre.dead.is_empty() {
-            put("preprocess.dead_values", Dtype::F64, vec![pre.dead.len()], le_bytes_f64(&pre.dead_value));
-        }
-        flow_tensors(&self.flow, "flow", &mut put);
-        if let Some(bg) = &self.background {
-            flow_tensors(bg, "background", &mut put);
-        }
-        let r = &self.refs;
-        let kde_cols = self.meta.scoring.kde_columns.len().max(1);
-        if !r.kde_points.is_empty() {
-            put(
-                "scores.kde_points",
-                Dtype::F64,
-                vec![r.kde_points.len() / kde_cols, kde_cols],
-                le_bytes_f64(&r.kde_points),
-            );
-        }
-        if !r.validation_nll.is_empty() {
-            put("scores.validation_nll", Dtype::F64, vec![r.validation_nll.len()], le_bytes_f64(&r.validation_nll));
-        }
-        let meta_json = serde_json::to_string(&self.meta).map_err(|e| Error::model(path, e))?;
-        let mut metadata = HashMap::from([(META_KEY.to_string(), meta_json)]);
-        if let Some((key, value)) = extra_meta {
-            metadata.insert(key.to_string(), value);
-        }
-        let views = tensors
-            .iter()
-            .map(|(name, dtype, shape, bytes)| {
-                let view = safetensors::tensor::TensorView::new(*dtype, shape.clone(), bytes)
-                    .map_err(|e| Error::model(path, e))?;
-                Ok((name.clone(), view))
-            })
-            .collect::<Result<Vec<_>>>()?;
-        if crate::output::is_stdout(path) {
-            let bytes = safetensors::serialize(views, Some(metadata)).map_err(|e| Error::model(path, e))?;
-            return crate::output::write_atomic(path, |w| {
-                w.write_all(&bytes).map_err(|source| Error::Io { path: path.into(), source })
-            });
-        }
-        // Straight from the tensors to the file: no second copy of the
-        // whole file in memory (checkpoints carry the optimizer state).
-        crate::output::write_atomic_via(path, |tmp| {
-            safetensors::serialize_to_file(views, Some(metadata), tmp).map_err(|e| Error::model(path, e))
-        })
-    }
-
-    /// Read a model file written by [`Model::save`].
-    pub fn load(path: &Path) -> Result<Model> {
-        Ok(Model::load_with(path)?.0)
-    }
-
-    /// Read a model file and give access to what [`Model::save_with`] added.
-    pub(crate) fn load_with(path: &Path) -> Result<(Model, Extras)> {
-        let bytes = std::fs::read(path).map_err(|e| Error::model(path, format!("cannot read model: {e}")))?;
-        let model = Model::from_bytes(path, &bytes)?;
-        Ok((model, Extras { path: path.to_path_buf(), bytes }))
-    }
-
-    fn from_bytes(path: &Path, bytes: &[u8]) -> Result<Model> {
-        let st =
-            SafeTensors::deserialize(bytes).map_err(|e| Error::model(path, format!("not a safetensors file ({e})")))?;
-        let (_, header) = SafeTensors::read_metadata(bytes).map_err(|e| Error::model(path, e))?;
-        let json = header
-            .metadata()
-            .as_ref()
-            .and_then(|m| m.get(META_KEY))
-            .ok_or_else(|| Error::model(path, "is not a tidemark model (no tidemark metadata)"))?;
-        let meta: Meta =
-            serde_json::from_str(json).map_err(|e| Error::model(path, format!("bad model metadata: {e}")))?;
-        if !(1..=FORMAT_VERSION).contains(&meta.format_version) {
-            return Err(Error::model(
-                path,
-                format!(
-                    "model format version {} is not supported (this build reads {FORMAT_VERSION})",
-                    meta.format_version
-                ),
-            ));
-        }
-        let get = |name: &str, dtype: Dtype, len: usize| -> Result<Vec<u8>> {
-            let t = st.tensor(name).map_err(|_| Error::model(path, format!("missing tensor '{name}'")))?;
-            let n: usize = t.shape().iter().product();
-            if t.dtype() != dtype || n != len {
-                return Err(Error::model(
-                    path,
-                    format!("tensor '{name}' has dtype {:?} and {n} values, expected {dtype:?} and {len}", t.dtype()),
-                ));
-            }
-            Ok(t.data().to_vec())
-        };
-        let pm = &meta.preprocessing;
-        let (d, k) = (pm.live_features, pm.whitened_dims);
-        if k > d || (pm.method == Method::Standardize && k != d) {
-            return Err(Error::model(path, "whitened dimensions do not match the live features"));
-        }
-        let live: Vec<usize> = from_i64(&get("preprocess.live_features", Dtype::I64, d)?);
-        let mut is_live = vec![false; meta.input_dim];
-        for &j in &live {
-            if j >= meta.input_dim {
-                return Err(Error::model(path, "live feature index out of range"));
-            }
-            is_live[j] = true;
-        }
-        let dead: Vec<usize> = (0..meta.input_dim).filter(|&j| !is_live[j]).collect();
-        if dead != pm.dead_features {
-            return Err(Error::model(path, "dead feature list does not match the live features"));
-        }
-        let pre = Preprocessor {
-            method: pm.method,
-            input_dim: meta.input_dim,
-            dead_value: if dead.is_empty() {
-                vec![]
-            } else {
-                from_f64(&get("preprocess.dead_values", Dtype::F64, dead.len())?)
-            },
-            live,
-            dead,
-            mean: from_f64(&get("preprocess.mean", Dtype::F64, d)?),
-            components: match pm.method {
-                Method::Pca => Some(from_f32(&get("preprocess.components", Dtype::F32, k * d)?)),
-                Method::Standardize => None,
-            },
-            scale: from_f64(&get("preprocess.scale", Dtype::F64, k)?),
-            floored: pm.floored_components,
-            shrinkage: pm.shrinkage,
-        };
-        if meta.flow.dim != meta.flow_dims || meta.flow_dims > k || meta.flow.depth == 0 {
-            return Err(Error::model(path, "flow dimensions do not match the preprocessing"));
-        }
-        let flow = read_flow(path, &get, "flow", &meta.flow, meta.format_version)?;
-        let background = match &meta.background {
-            Some(spec) if spec.dim == meta.flow_dims => {
-                Some(read_flow(path, &get, "background", spec, meta.format_version)?)
-            }
-            Some(_) => return Err(Error::model(path, "background flow dimensions do not match")),
-            None => None,
-        };
-        let s = &meta.scoring;
-        let refs = ScoringRefs {
-            kde_points: if s.kde_rows == 0 {
-                vec![]
-            } else {
-                from_f64(&get("scores.kde_points", Dtype::F64, s.kde_rows * s.kde_columns.len())?)
-            },
-            validation_nll: if s.validation_rows == 0 {
-                vec![]
-            } else {
-                from_f64(&get("scores.validation_nll", Dtype::F64, s.validation_rows)?)
-            },
-        };
-        if s.kde_mean.len() != s.kde_columns.len() || s.kde_std.len() != s.kde_columns.len() {
-            return Err(Error::model(path, "bad multi-statistic score metadata"));
-        }
-        Ok(Model { meta, pre, flow, background, refs })
-    }
-}
-
-/// The raw file behind a loaded model, for the extras a checkpoint adds.
-pub(crate) struct Extras {
-    path: std::path::PathBuf,
-    bytes: Vec<u8>,
-}
-
-impl Extras {
-    /// A 1-D f32 tensor of `len` values added by [`Model::save_with`].
-    pub fn tensor(&self, name: &str, len: usize) -> Result<Vec<f32>> {
-        let st = SafeTensors::deserialize(&self.bytes).map_err(|e| Error::model(&self.path, e))?;
-        let t = st.tensor(name).map_err(|_| Error::model(&self.path, format!("missing tensor '{name}'")))?;
-        if t.dtype() != Dtype::F32 || t.shape() != [len] {
-            return Err(Error::model(&self.path, format!("tensor '{name}' has the wrong dtype or shape")));
-        }
-        Ok(from_f32(t.data()))
-    }
-
-    /// A metadata entry added by [`Model::save_with`].
-    pub fn metadata(&self, key: &str) -> Result<String> {
-        let (_, header) = SafeTensors::read_metadata(&self.bytes).map_err(|e| Error::model(&self.path, e))?;
-        header
-            .metadata()
-            .as_ref()
-            .and_then(|m| m.get(key).cloned())
-            .ok_or_else(|| Error::model(&self.path, format!("has no '{key}' metadata (not a checkpoint?)")))
-    }
-}
-
-/// Add a flow's tensors under `prefix` (`{prefix}.{layer}.actnorm.log_scale`, ...).
-fn flow_tensors(flow: &Flow, prefix: &str, put: &mut dyn FnMut(&str, Dtype, Vec<usize>, Vec<u8>)) {
-    let p = &flow.params;
-    let dim = flow.spec.dim;
-    for (k, slot) in flow.slots.iter().enumerate() {
-        put(
-            &format!("{prefix}.{k}.actnorm.log_scale"),
-            Dtype::F32,
-            vec![dim],
-            le_bytes_f32(&p[slot.log_scale..slot.log_scale + dim]),
-        );
-        put(&format!("{prefix}.{k}.actnorm.bias"), Dtype::F32, vec![dim], le_bytes_f32(&p[slot.bias..slot.bias + dim]));
-        let perm: Vec<usize> = flow.perms[k].iter().map(|&v| v as usize).collect();
-        put(&format!("{prefix}.{k}.permutation"), Dtype::I64, vec![dim], le_bytes_i64(&perm));
-        if let Some(mix) = slot.mix {
-            put(&format!("{prefix}.{k}.mixing.lu"), Dtype::F32, vec![dim, dim], le_bytes_f32(&p[mix..mix + dim * dim]));
-        }
-        for (i, lin) in slot.linears.iter().enumerate() {
-            let w = &p[lin.weight..lin.weight + lin.out * lin.inp];
-            put(&format!("{prefix}.{k}.net.{i}.weight"), Dtype::F32, vec![lin.out, lin.inp], le_bytes_f32(w));
-            put(
-                &format!("{prefix}.{k}.net.{i}.bias"),
-                Dtype::F32,
-                vec![lin.out],
-                le_bytes_f32(&p[lin.bias..lin.bias + lin.out]),
-            );
-        }
-    }
-    if flow.spec.classes > 0 {
-        let means = &p[flow.class_means..flow.class_means + flow.spec.classes * dim];
-        put(&format!("{prefix}.class_means"), Dtype::F32, vec![flow.spec.classes, dim], le_bytes_f32(means));
-    }
-}
-
-/// Read a flow written by [`flow_tensors`].
-fn read_flow(
-    path: &Path,
-    get: &dyn Fn(&str, Dtype, usize) -> Result<Vec<u8>>,
-    prefix: &str,
-    spec: &FlowSpec,
-    version: u32,
-) -> Result<Flow> {
-    if spec.depth == 0 || (spec.layers > 0 && spec.dim < 2) {
-        return Err(Error::model(path, format!("{prefix}: invalid flow shape")));
-    }
-    if version < format_version_for(spec.mixing) {
-        return Err(Error::model(path, format!("{prefix}: LU mixing in a version {version} model file")));
-    }
-    let mut flow = Flow::new(spec.clone(), 0);
-    let dim = flow.spec.dim;
-    let fill = |flow: &mut Flow, name: String, at: usize, n: usize| -> Result<()> {
-        let vals = from_f32(&get(&name, Dtype::F32, n)?);
-        flow.params[at..at + n].copy_from_slice(&vals);
-        Ok(())
-    };
-    for k in 0..flow.spec.layers {
-        let slot = flow.slots[k].clone();
-        fill(&mut flow, format!("{prefix}.{k}.actnorm.log_scale"), slot.log_scale, dim)?;
-        fill(&mut flow, format!("{prefix}.{k}.actnorm.bias"), slot.bias, dim)?;
-        if let Some(mix) = slot.mix {
-            fill(&mut flow, format!("{prefix}.{k}.mixing.lu"), mix, dim * dim)?;
-        }
-        for (i, lin) in slot.linears.iter().enumerate() {
-            fill(&mut flow, format!("{prefix}.{k}.net.{i}.weight"), lin.weight, lin.out * lin.inp)?;
-            fill(&mut flow, format!("{prefix}.{k}.net.{i}.bias"), lin.bias, lin.out)?;
-        }
-        let perm: Vec<usize> = from_i64(&get(&format!("{prefix}.{k}.permutation"), Dtype::I64, dim)?);
-        let mut seen = vec![false; dim];
-        for &p in &perm {
-            if p >= dim || std::mem::replace(&mut seen[p], true) {
-                return Err(Error::model(path, format!("{prefix}.{k}.permutation is not a permutation")));
-            }
-        }
-        flow.perms[k] = perm.iter().map(|&p| p as u32).collect();
-    }
-    if spec.classes > 0 {
-        let at = flow.class_means;
-        fill(&mut flow, format!("{prefix}.class_means"), at, spec.classes * dim)?;
-    }
-    Ok(flow)
 }
 
 /// ln(sum exp(v)), computed stably.
@@ -787,23 +511,4 @@ fn leading_columns(u: &[f32], rows: usize, d: usize, k: usize) -> Vec<f32> {
     let mut out = Vec::with_capacity(rows * k);
     leading_columns_into(&u[..rows * d], d, k, &mut out);
     out
-}
-
-fn le_bytes_f32(v: &[f32]) -> Vec<u8> {
-    v.iter().flat_map(|x| x.to_le_bytes()).collect()
-}
-fn le_bytes_f64(v: &[f64]) -> Vec<u8> {
-    v.iter().flat_map(|x| x.to_le_bytes()).collect()
-}
-fn le_bytes_i64(v: &[usize]) -> Vec<u8> {
-    v.iter().flat_map(|&x| (x as i64).to_le_bytes()).collect()
-}
-fn from_f32(b: &[u8]) -> Vec<f32> {
-    b.chunks_exact(4).map(|c| f32::from_le_bytes(c.try_into().expect("4 bytes"))).collect()
-}
-fn from_f64(b: &[u8]) -> Vec<f64> {
-    b.chunks_exact(8).map(|c| f64::from_le_bytes(c.try_into().expect("8 bytes"))).collect()
-}
-fn from_i64(b: &[u8]) -> Vec<usize> {
-    b.chunks_exact(8).map(|c| i64::from_le_bytes(c.try_into().expect("8 bytes")).max(0) as usize).collect()
 }

@@ -66,12 +66,28 @@ impl FitOptions {
     /// Read options from a JSON config file; an unknown key or a value out
     /// of range is an error that names it.
     pub fn from_json_file(path: &std::path::Path) -> Result<FitOptions> {
-        let text = std::fs::read_to_string(path)
-            .map_err(|e| Error::Invalid(format!("{}: cannot read config: {e}", path.display())))?;
-        let opts: FitOptions =
-            serde_json::from_str(&text).map_err(|e| Error::Invalid(format!("{}: {e}", path.display())))?;
+        let opts = FitOptions::from_json(path, &crate::data::read_text(path)?)?;
         opts.check(&Source::Config(path))?;
         Ok(opts)
+    }
+
+    /// Options from the text of a JSON config file (`path` names it in messages).
+    /// Malformed JSON, a key we do not know and a value of the wrong type
+    /// are each one message naming the file and the key.
+    pub fn from_json(path: &std::path::Path, text: &str) -> Result<FitOptions> {
+        // Messages quote the file's text (serde quotes keys): no control codes.
+        let bad = |msg: String| Error::Invalid(format!("{}: {}", path.display(), crate::data::printable(&msg, 600)));
+        let doc: serde_json::Value = serde_json::from_str(text).map_err(|e| bad(format!("not valid JSON ({e})")))?;
+        let serde_json::Value::Object(fields) = doc else {
+            return Err(bad("a config file is one JSON object of option names and values".into()));
+        };
+        for (key, value) in fields {
+            let shown = crate::data::printable(&key, 40);
+            let one = serde_json::Value::Object(serde_json::Map::from_iter([(key, value)]));
+            serde_json::from_value::<FitOptions>(one).map_err(|e| bad(format!("key '{shown}': {e}")))?;
+        }
+        // Each key alone was fine; this catches a key given twice.
+        serde_json::from_str(text).map_err(|e| bad(e.to_string()))
     }
 
     /// Check every option that is set; what passes is what training trusts
@@ -568,7 +584,11 @@ pub fn fit_run(run: &Run, opts: &FitOptions) -> Result<Model> {
 fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
     let x = run.data;
     if x.rows < MIN_ROWS {
-        return Err(Error::Invalid(format!("need at least {MIN_ROWS} rows to fit, got {}", x.rows)));
+        return Err(Error::Invalid(format!(
+            "{}: need at least {MIN_ROWS} rows to fit, got {}",
+            x.path.display(),
+            x.rows
+        )));
     }
     if let Some(v) = run.val {
         if v.cols != x.cols {
@@ -1023,15 +1043,16 @@ fn stop_early(run: &Run, l: &mut Learned, why: Halt) -> Result<()> {
 
 /// Read a JSON-lines training log written by `fit --log`.
 pub fn read_log(path: &Path) -> Result<Vec<LogEntry>> {
-    let text =
-        std::fs::read_to_string(path).map_err(|e| Error::Invalid(format!("{}: cannot read: {e}", path.display())))?;
+    let text = crate::data::read_text(path)?;
     text.lines()
         .enumerate()
         .filter(|(_, l)| !l.trim().is_empty())
         .map(|(i, l)| {
-            serde_json::from_str(l).map_err(|e| {
+            let entry: LogEntry = serde_json::from_str(l).map_err(|e| {
+                let e = crate::data::printable(&e.to_string(), 300);
                 Error::Invalid(format!("{}: line {}: not a training log entry ({e})", path.display(), i + 1))
-            })
+            })?;
+            Ok(entry)
         })
         .collect()
 }

@@ -215,10 +215,14 @@ fn config_files_set_options_flags_override_and_unknown_keys_are_named() {
 
     std::fs::write(&config, r#"{"layers": 3, "hiden": 40}"#).unwrap();
     std::fs::remove_file(&model).unwrap();
-    refuses(&["fit", t, "-o", m, "--config", c], "unknown field `hiden`", &model);
+    refuses(&["fit", t, "-o", m, "--config", c], "c.json: key 'hiden': unknown field `hiden`", &model);
 
     std::fs::write(&config, r#"{"layers": "six"}"#).unwrap();
-    refuses(&["fit", t, "-o", m, "--config", c], "c.json: invalid type: string \"six\", expected usize", &model);
+    refuses(
+        &["fit", t, "-o", m, "--config", c],
+        "c.json: key 'layers': invalid type: string \"six\", expected usize",
+        &model,
+    );
 
     // Every shipped config is valid.
     for entry in std::fs::read_dir(PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("configs")).unwrap() {
