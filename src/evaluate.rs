@@ -238,10 +238,20 @@ pub fn run(o: &EvaluateOptions) -> Result<Results> {
     };
     let id = read(o.id)?;
     let ood: Vec<(String, ScoreTable)> = o.ood.iter().map(|(n, p)| Ok((n.clone(), read(p)?))).collect::<Result<_>>()?;
+    Ok(run_tables(o, &id, &ood)?.0)
+}
+
+/// [`run`] on score tables already in memory (`o.id` and `o.ood` are not
+/// read): the results, and the JSON document `run` writes to `o.output`.
+pub fn run_tables(
+    o: &EvaluateOptions,
+    id: &ScoreTable,
+    ood: &[(String, ScoreTable)],
+) -> Result<(Results, serde_json::Value)> {
     if ood.is_empty() {
         return Err(Error::Invalid("give at least one --ood NAME=SCORES".into()));
     }
-    let columns = common_columns(&id, &ood, o.columns)?;
+    let columns = common_columns(id, ood, o.columns)?;
     let results: Results = ood
         .iter()
         .map(|(name, table)| {
@@ -258,28 +268,28 @@ pub fn run(o: &EvaluateOptions) -> Result<Results> {
             (name.clone(), per_column)
         })
         .collect();
+    let doc = serde_json::json!({
+        "in_distribution": id.path.display().to_string(),
+        "conventions": {
+            "orientation": "every score oriented so that higher = more anomalous; two-sided scores (log_det, latent_norm) as distance from the in-distribution median",
+            "auroc": "outliers positive; ties count one half",
+            "aupr_in": "in-distribution positive",
+            "aupr_out": "outliers positive",
+            "fpr_at_95_tpr": "in-distribution positive: share of outliers accepted at the threshold that keeps 95% of in-distribution vectors",
+            "detection_error": "min over thresholds of 0.5 (1 - TPR) + 0.5 FPR",
+            "ci95": format!("percentile bootstrap, {} resamples of both sets, seed {}", o.bootstrap, o.seed),
+        },
+        "sets": results.iter().map(|(name, per_column)| {
+            let scores: serde_json::Map<String, serde_json::Value> = per_column
+                .iter()
+                .map(|(c, est)| (c.clone(), estimates_json(est)))
+                .collect();
+            let rows = ood.iter().find(|(n, _)| n == name).map(|(_, t)| t.values[0].len()).unwrap_or(0);
+            (name.clone(), serde_json::json!({ "rows": rows, "scores": scores }))
+        }).collect::<serde_json::Map<_, _>>(),
+        "in_distribution_rows": id.values[0].len(),
+    });
     if let Some(path) = o.output {
-        let doc = serde_json::json!({
-            "in_distribution": o.id.display().to_string(),
-            "conventions": {
-                "orientation": "every score oriented so that higher = more anomalous; two-sided scores (log_det, latent_norm) as distance from the in-distribution median",
-                "auroc": "outliers positive; ties count one half",
-                "aupr_in": "in-distribution positive",
-                "aupr_out": "outliers positive",
-                "fpr_at_95_tpr": "in-distribution positive: share of outliers accepted at the threshold that keeps 95% of in-distribution vectors",
-                "detection_error": "min over thresholds of 0.5 (1 - TPR) + 0.5 FPR",
-                "ci95": format!("percentile bootstrap, {} resamples of both sets, seed {}", o.bootstrap, o.seed),
-            },
-            "sets": results.iter().map(|(name, per_column)| {
-                let scores: serde_json::Map<String, serde_json::Value> = per_column
-                    .iter()
-                    .map(|(c, est)| (c.clone(), estimates_json(est)))
-                    .collect();
-                let rows = ood.iter().find(|(n, _)| n == name).map(|(_, t)| t.values[0].len()).unwrap_or(0);
-                (name.clone(), serde_json::json!({ "rows": rows, "scores": scores }))
-            }).collect::<serde_json::Map<_, _>>(),
-            "in_distribution_rows": id.values[0].len(),
-        });
         crate::output::write_atomic(path, |w| {
             writeln!(w, "{doc:#}").map_err(|source| Error::Io { path: path.to_path_buf(), source })
         })?;
@@ -287,15 +297,15 @@ pub fn run(o: &EvaluateOptions) -> Result<Results> {
     if let Some(path) = o.report {
         let input = crate::report::ReportInput {
             columns: &columns,
-            id: &id,
-            ood: &ood,
+            id,
+            ood,
             metrics: &results,
             calibration: o.calibration,
             log: o.log,
         };
         crate::report::write_report(path, &input)?;
     }
-    Ok(results)
+    Ok((results, doc))
 }
 
 fn estimates_json(est: &[(String, Estimate)]) -> serde_json::Value {

@@ -275,13 +275,57 @@ pub fn select_columns(model: &Model, requested: &[String], calibrated: bool) -> 
     Ok(requested.to_vec())
 }
 
+/// Score every row of `x` chunk by chunk: `each` gets the chunk's
+/// evaluation and its values of `columns`, row-major. Memory is bounded by
+/// the chunk, not by the rows.
+pub fn score_chunks(
+    model: &Model,
+    x: &Dataset,
+    columns: &[String],
+    calibration: Option<&Calibration>,
+    threads: usize,
+    mut each: impl FnMut(&Evaluation, &[f64]) -> Result<()>,
+) -> Result<()> {
+    let scorer = Scorer::new(model, calibration);
+    let mut evaluator = model.evaluator(threads, SCORE_CHUNK.min(x.rows));
+    let mut values = vec![0.0f64; SCORE_CHUNK.min(x.rows) * columns.len()];
+    for start in (0..x.rows).step_by(SCORE_CHUNK) {
+        let chunk: Vec<usize> = (start..(start + SCORE_CHUNK).min(x.rows)).collect();
+        let e = evaluator.evaluate_rows(x, &chunk);
+        let values = &mut values[..chunk.len() * columns.len()];
+        // On the flow's worker threads (the multi-statistic KDE is the
+        // costly column).
+        scorer.fill(&e, columns, values, evaluator.pool());
+        each(&e, values)?;
+    }
+    Ok(())
+}
+
+/// Every row's values of `columns`, one vector per column (for callers that
+/// keep the scores in memory).
+pub fn score_columns(
+    model: &Model,
+    x: &Dataset,
+    columns: &[String],
+    calibration: Option<&Calibration>,
+    threads: usize,
+) -> Result<Vec<Vec<f64>>> {
+    let mut out: Vec<Vec<f64>> = columns.iter().map(|_| Vec::with_capacity(x.rows)).collect();
+    score_chunks(model, x, columns, calibration, threads, |_, values| {
+        for row in values.chunks(columns.len()) {
+            for (column, v) in out.iter_mut().zip(row) {
+                column.push(*v);
+            }
+        }
+        Ok(())
+    })?;
+    Ok(out)
+}
+
 /// Score every row of `x` and write the scores to `output`, chunk by chunk.
 pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOptions) -> Result<()> {
     let columns = select_columns(model, &opts.columns, opts.calibration.is_some())?;
     let format = Format::of(output)?;
-    let scorer = Scorer::new(model, opts.calibration.as_ref());
-    let mut evaluator = model.evaluator(opts.threads, SCORE_CHUNK.min(x.rows));
-    let mut values = vec![0.0f64; SCORE_CHUNK.min(x.rows) * columns.len()];
     // Per batch of the batch test: (sum of NLLs, rows), kept as the rows
     // stream past so memory grows with batches, not rows.
     let mut batches: Vec<(f64, usize)> = Vec::new();
@@ -292,9 +336,7 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
             Format::Npy => crate::data::write_npy_header(w, x.rows, columns.len()).map_err(io)?,
             Format::JsonLines => {}
         }
-        for start in (0..x.rows).step_by(SCORE_CHUNK) {
-            let chunk: Vec<usize> = (start..(start + SCORE_CHUNK).min(x.rows)).collect();
-            let e = evaluator.evaluate_rows(x, &chunk);
+        score_chunks(model, x, &columns, opts.calibration.as_ref(), opts.threads, |e, values| {
             if let Some(b) = &opts.batch {
                 for ll in &e.log_likelihood {
                     match batches.last_mut() {
@@ -306,15 +348,11 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
                     }
                 }
             }
-            let values = &mut values[..chunk.len() * columns.len()];
-            // On the flow's worker threads (the multi-statistic KDE is the
-            // costly column); written in row order by this thread.
-            scorer.fill(&e, &columns, values, evaluator.pool());
             for row in values.chunks(columns.len()) {
                 write_row(w, format, &columns, row).map_err(io)?;
             }
-        }
-        Ok(())
+            Ok(())
+        })
     })?;
     if format == Format::Npy && !crate::output::is_stdout(output) {
         let sidecar = output.with_extension("json");

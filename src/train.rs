@@ -65,7 +65,13 @@ impl FitOptions {
     pub fn from_json_file(path: &std::path::Path) -> Result<FitOptions> {
         let text = std::fs::read_to_string(path)
             .map_err(|e| Error::Invalid(format!("{}: cannot read config: {e}", path.display())))?;
-        serde_json::from_str(&text).map_err(|e| Error::Invalid(format!("{}: {e}", path.display())))
+        FitOptions::from_json(&text, &path.display().to_string())
+    }
+
+    /// Options from a JSON object (a config file's text, or keyword options
+    /// from the Python bindings); `origin` names it in messages.
+    pub fn from_json(text: &str, origin: &str) -> Result<FitOptions> {
+        serde_json::from_str(text).map_err(|e| Error::Invalid(format!("{origin}: {e}")))
     }
 
     /// Each option set here, else the one in `fallback`.
@@ -973,16 +979,19 @@ fn stop_early(run: &Run, l: &mut Learned, why: Halt) -> Result<()> {
     }
     let wrote = run.output.map(|p| format!("; best model so far written to {}", p.display())).unwrap_or_default();
     match why {
-        Halt::Interrupted => Err(Error::Interrupted(match &run.checkpoint {
-            Some(ck) => format!(
+        Halt::Interrupted => Err(Error::Interrupted(match (&run.checkpoint, run.output) {
+            // Without a model file there is no command to print: the caller
+            // (the Python bindings) says how to continue.
+            (Some(ck), None) => format!("interrupted at epoch {}; checkpoint {}", l.state.epoch, ck.display()),
+            (Some(ck), Some(out)) => format!(
                 "interrupted at epoch {}; checkpoint {}{wrote}; continue with: tidemark fit {} --resume {} -o {}",
                 l.state.epoch,
                 ck.display(),
                 run.data.path.display(),
                 ck.display(),
-                run.output.map(|p| p.display().to_string()).unwrap_or_default()
+                out.display()
             ),
-            None => format!("interrupted at epoch {}{wrote}", l.state.epoch),
+            (None, _) => format!("interrupted at epoch {}{wrote}", l.state.epoch),
         })),
         Halt::Diverged(epoch) => Err(Error::Invalid(format!(
             "training diverged at epoch {epoch} after {} rollbacks (non-finite loss or gradient){wrote}; try a smaller --lr or --clamp",
