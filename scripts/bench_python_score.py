@@ -1,0 +1,80 @@
+"""Scoring time from Python against the CLI, on the same model, file and threads.
+
+Usage (after `cargo build --release` and `pip install ./python`):
+
+    python scripts/bench_python_score.py [--rows 200000] [--dim 256] [--threads 2] [--repeats 3]
+
+Writes a seeded rows x dim float32 .npy (correlated Gaussian rows) and a model
+fitted by the CLI (8 coupling layers, hidden 512, one epoch on 20,000 rows: the
+scoring cost depends on the shape, not on how well it is trained) under
+--workdir, then alternates `tidemark score MODEL DATA -o OUT.npy --threads T`
+(wall time of the process, all columns) with `Model.score(np.load(DATA,
+mmap_mode="r"), threads=T)` (wall time of the call, the model already loaded),
+and prints every time. The machine may be shared: the load average is
+printed with each run, and alternating keeps both sides under the same load.
+"""
+
+import argparse
+import os
+import subprocess
+import time
+from pathlib import Path
+
+import numpy as np
+import tidemark
+
+REPO = Path(__file__).resolve().parents[1]
+
+
+def make_data(path: Path, rows: int, dim: int) -> None:
+    rng = np.random.default_rng(0)
+    mix = rng.normal(size=(dim, dim)).astype(np.float32) / np.sqrt(dim)
+    out = np.lib.format.open_memmap(path, mode="w+", dtype=np.float32, shape=(rows, dim))
+    for start in range(0, rows, 20_000):
+        n = min(20_000, rows - start)
+        out[start : start + n] = rng.normal(size=(n, dim)).astype(np.float32) @ mix
+    out.flush()
+    del out
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--rows", type=int, default=200_000)
+    ap.add_argument("--dim", type=int, default=256)
+    ap.add_argument("--threads", type=int, default=2)
+    ap.add_argument("--repeats", type=int, default=3)
+    ap.add_argument("--workdir", type=Path, default=Path("/tmp/tidemark-bench-python"))
+    ap.add_argument("--bin", type=Path, default=REPO / "target" / "release" / "tidemark")
+    a = ap.parse_args()
+    a.workdir.mkdir(parents=True, exist_ok=True)
+    data, train, model_path = a.workdir / "data.npy", a.workdir / "train.npy", a.workdir / "model.safetensors"
+    if not data.exists():
+        make_data(data, a.rows, a.dim)
+    if not model_path.exists():
+        np.save(train, np.load(data, mmap_mode="r")[:20_000])
+        subprocess.run(
+            [str(a.bin), "fit", str(train), "-o", str(model_path), "--layers", "8", "--hidden", "512",
+             "--epochs", "1", "--flow-dims", str(a.dim), "--threads", str(a.threads), "-q"],
+            check=True,
+        )
+    model = tidemark.load(model_path)
+    x = np.load(data, mmap_mode="r")
+    print(f"{a.rows} x {a.dim}, {len(model.columns())} columns, {a.threads} threads")
+    for i in range(a.repeats):
+        t0 = time.perf_counter()
+        subprocess.run(
+            [str(a.bin), "score", str(model_path), str(data), "-o", str(a.workdir / "scores.npy"),
+             "--threads", str(a.threads)],
+            check=True,
+        )
+        cli_s = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        scores = model.score(x, threads=a.threads)
+        py_s = time.perf_counter() - t0
+        assert len(scores["log_likelihood"]) == a.rows
+        load = os.getloadavg()[0]
+        print(f"run {i + 1}: CLI {cli_s:.2f} s, Python {py_s:.2f} s (Python/CLI {py_s / cli_s:.3f}; load average {load:.1f})")
+
+
+if __name__ == "__main__":
+    main()
