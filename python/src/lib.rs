@@ -277,19 +277,11 @@ fn fit(
     let rows = Rows::pin("x", x)?;
     let val_rows = val.map(|v| Rows::pin("val", v)).transpose()?;
     let stop = AtomicBool::new(false);
-    let (result, interrupt) = py.allow_threads(|| {
-        let x = match rows.dataset() {
-            Ok(x) => x,
-            Err(e) => return (Err(e), None),
-        };
-        let val = match val_rows.map(Rows::dataset).transpose() {
-            Ok(v) => v,
-            Err(e) => return (Err(e), None),
-        };
+    let result = py.allow_threads(|| {
+        let x = rows.dataset()?;
+        let val = val_rows.map(Rows::dataset).transpose()?;
         if let Some(l) = &labels {
-            if let Err(e) = data::check_label_count(Path::new("labels"), l.len(), x.rows) {
-                return (Err(e.into()), None);
-            }
+            data::check_label_count(Path::new("labels"), l.len(), x.rows)?;
         }
         let run = Run {
             data: &x,
@@ -309,25 +301,19 @@ fn fit(
             let _ = std::fs::remove_file(&checkpoint);
             Ok(Model { inner: Arc::new(model) })
         }
-        Err(Error::Interrupted(msg)) => {
-            // The pending KeyboardInterrupt became the stop request.
-            drop(interrupt);
-            Err(Interrupted::new_err(msg))
-        }
+        // A pending KeyboardInterrupt became the stop request, which
+        // `Error::Interrupted` reports.
         Err(e) => Err(py_err(e)),
     }
 }
 
 /// Train on a worker thread; this thread looks for Ctrl-C every 50 ms and
-/// raises the stop flag on one. Returns the result and the interrupt seen.
-fn fit_watching_signals(
-    run: &Run,
-    opts: &FitOptions,
-    stop: &AtomicBool,
-) -> (tidemark::Result<CoreModel>, Option<PyErr>) {
-    let mut interrupt = None;
+/// raises the stop flag on one (the KeyboardInterrupt itself is consumed:
+/// the run reports the stop as `Error::Interrupted`, or completes when it
+/// was already past its last check).
+fn fit_watching_signals(run: &Run, opts: &FitOptions, stop: &AtomicBool) -> tidemark::Result<CoreModel> {
     let watcher = std::thread::current();
-    let result = std::thread::scope(|s| {
+    std::thread::scope(|s| {
         let worker = s.spawn(|| {
             let r = train::fit_run(run, opts);
             watcher.unpark();
@@ -335,19 +321,12 @@ fn fit_watching_signals(
         });
         while !worker.is_finished() {
             std::thread::park_timeout(Duration::from_millis(50));
-            if interrupt.is_none() {
-                if let Err(e) = Python::with_gil(|py| py.check_signals()) {
-                    stop.store(true, Ordering::SeqCst);
-                    interrupt = Some(e);
-                }
+            if !stop.load(Ordering::SeqCst) && Python::with_gil(|py| py.check_signals()).is_err() {
+                stop.store(true, Ordering::SeqCst);
             }
         }
-        worker.join()
-    });
-    match result {
-        Ok(r) => (r, interrupt),
-        Err(_) => (Err(Error::Invalid("training thread panicked".into())), interrupt),
-    }
+        worker.join().unwrap_or_else(|_| Err(Error::Invalid("the training thread panicked".into())))
+    })
 }
 
 /// One score table from {column: float64 array}; `name` stands for its file.
