@@ -7,7 +7,7 @@ Usage (after `cargo build --release` and `pip install ./python`):
 Writes a seeded rows x dim float32 .npy (correlated Gaussian rows) and a model
 fitted by the CLI (8 coupling layers, hidden 512, one epoch on 20,000 rows: the
 scoring cost depends on the shape, not on how well it is trained) under
---workdir, then alternates `tidemark score MODEL DATA -o OUT.npy --threads T`
+--workdir, then alternates (and swaps the order of) `tidemark score MODEL DATA -o OUT.npy --threads T`
 (wall time of the process, all columns) with `Model.score(np.load(DATA,
 mmap_mode="r"), threads=T)` (wall time of the call, the model already loaded),
 and prints every time. The machine may be shared: the load average is
@@ -60,21 +60,30 @@ def main() -> None:
     model = tidemark.load(model_path)
     x = np.load(data, mmap_mode="r")
     print(f"{a.rows} x {a.dim}, {len(model.columns())} columns, {a.threads} threads")
-    for i in range(a.repeats):
+    def run_cli() -> float:
         t0 = time.perf_counter()
         subprocess.run(
             [str(a.bin), "score", str(model_path), str(data), "-o", str(a.workdir / "scores.npy"),
              "--threads", str(a.threads)],
             check=True,
         )
-        cli_s = time.perf_counter() - t0
+        return time.perf_counter() - t0
+
+    def run_python() -> float:
         t0 = time.perf_counter()
         scores = model.score(x, threads=a.threads)
-        py_s = time.perf_counter() - t0
         assert len(scores["log_likelihood"]) == a.rows
-        load = os.getloadavg()[0]
-        print(f"run {i + 1}: CLI {cli_s:.2f} s, Python {py_s:.2f} s (Python/CLI {py_s / cli_s:.3f}; load average {load:.1f})")
+        return time.perf_counter() - t0
 
+    for i in range(a.repeats):
+        # Alternate which goes first, so that neither always follows the other.
+        if i % 2 == 0:
+            cli_s, py_s = run_cli(), run_python()
+        else:
+            py_s, cli_s = run_python(), run_cli()
+        load = os.getloadavg()[0]
+        print(f"run {i + 1}: CLI {cli_s:.2f} s, Python {py_s:.2f} s (Python/CLI {py_s / cli_s:.3f}; load average {load:.1f})",
+              flush=True)
 
 if __name__ == "__main__":
     main()

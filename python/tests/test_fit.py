@@ -1,6 +1,7 @@
 """Fitting from Python: interruption and resumption, labels, samples."""
 
 import _thread
+import json
 import threading
 import time
 
@@ -67,3 +68,13 @@ def test_samples_and_kinds(data):
     # within 5 standard errors of it (standard error sigma / sqrt(n)).
     se = data["train"].std(axis=0) / np.sqrt(len(s))
     assert np.all(np.abs(s.mean(axis=0) - data["train"].mean(axis=0)) < 5 * se)
+
+
+def test_training_log_and_its_curves_in_the_report(data, tmp_path):
+    log = tmp_path / "train.jsonl"
+    model = tidemark.fit(data["train"], epochs=3, layers=2, hidden=16, threads=1, progress=False, log=log)
+    lines = [json.loads(line) for line in log.read_text().splitlines()]
+    assert [entry["epoch"] for entry in lines] == [1, 2, 3]
+    ids, oods = model.score(data["held"]), model.score(data["ood"])
+    tidemark.report(tmp_path / "r.html", ids, {"shifted": oods}, log=log, bootstrap=10)
+    assert "<h2>Training</h2>" in (tmp_path / "r.html").read_text()

@@ -325,7 +325,9 @@ def evaluate(
     bootstrap: int = 1000,
     seed: int = 0,
     output: Optional[PathLike] = None,
+    report: Optional[PathLike] = None,
     calibration: Optional[Calibration] = None,
+    log: Optional[PathLike] = None,
 ) -> Dict[str, Any]:
     """How well each score separates held-out in-distribution scores
     ``id_scores`` from each outlier set in ``ood_scores`` ({name: scores});
@@ -334,39 +336,8 @@ def evaluate(
     Returns the document ``tidemark evaluate -o`` writes (and writes it to
     ``output`` when given): per set and score, AUROC, AUPR-In, AUPR-Out, FPR
     at 95% TPR and detection error, each with a bootstrap 95% interval.
+    With ``report``, also writes the HTML report (see :func:`report`).
     """
-    return _evaluate(id_scores, ood_scores, columns, bootstrap, seed, output, None, calibration, None)
-
-
-def report(
-    path: PathLike,
-    id_scores: Scores,
-    ood_scores: Mapping[str, Scores],
-    *,
-    columns: Optional[Sequence[str]] = None,
-    bootstrap: int = 1000,
-    seed: int = 0,
-    calibration: Optional[Calibration] = None,
-    log: Optional[PathLike] = None,
-) -> Dict[str, Any]:
-    """Write the self-contained HTML report ``tidemark evaluate --report``
-    writes (histograms, ROC curves, metric table; the calibrated threshold
-    when ``calibration`` is given; training curves from a ``log`` file), and
-    return the results as :func:`evaluate` does."""
-    return _evaluate(id_scores, ood_scores, columns, bootstrap, seed, None, path, calibration, log)
-
-
-def _evaluate(
-    id_scores: Scores,
-    ood_scores: Mapping[str, Scores],
-    columns: Optional[Sequence[str]],
-    bootstrap: int,
-    seed: int,
-    output: Optional[PathLike],
-    report_path: Optional[PathLike],
-    calibration: Optional[Calibration],
-    log: Optional[PathLike],
-) -> Dict[str, Any]:
     doc = _core.evaluate(
         _table(id_scores, "id_scores"),
         [(str(n), _table(s, str(n))) for n, s in ood_scores.items()],
@@ -374,8 +345,16 @@ def _evaluate(
         int(bootstrap),
         int(seed),
         _path(output),
-        _path(report_path),
+        _path(report),
         None if calibration is None else calibration._core,
         _path(log),
     )
     return json.loads(doc)
+
+
+def report(path: PathLike, id_scores: Scores, ood_scores: Mapping[str, Scores], **options: Any) -> Dict[str, Any]:
+    """Write the self-contained HTML report ``tidemark evaluate --report``
+    writes (histograms, ROC curves, metric table; the calibrated threshold
+    when ``calibration=`` is given; training curves from a ``log=`` file of
+    ``fit``), and return the results; ``options`` are :func:`evaluate`'s."""
+    return evaluate(id_scores, ood_scores, report=path, **options)
