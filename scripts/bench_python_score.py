@@ -8,14 +8,16 @@ Writes a seeded rows x dim float32 .npy (correlated Gaussian rows) and a model
 fitted by the CLI (8 coupling layers, hidden 512, one epoch on 20,000 rows: the
 scoring cost depends on the shape, not on how well it is trained) under
 --workdir, then alternates (and swaps the order of) `tidemark score MODEL DATA -o OUT.npy --threads T`
-(wall time of the process, all columns) with `Model.score(np.load(DATA,
-mmap_mode="r"), threads=T)` (wall time of the call, the model already loaded),
-and prints every time. The machine may be shared: the load average is
+(the process: wall and CPU time, all columns) with `Model.score(np.load(DATA,
+mmap_mode="r"), threads=T)` (the call, the model already loaded: wall and CPU
+time of this process over the call), and prints every time. CPU time is the
+steadier figure on a shared machine. The machine may be shared: the load average is
 printed with each run, and alternating keeps both sides under the same load.
 """
 
 import argparse
 import os
+import resource
 import subprocess
 import time
 from pathlib import Path
@@ -60,20 +62,24 @@ def main() -> None:
     model = tidemark.load(model_path)
     x = np.load(data, mmap_mode="r")
     print(f"{a.rows} x {a.dim}, {len(model.columns())} columns, {a.threads} threads")
-    def run_cli() -> float:
-        t0 = time.perf_counter()
+    def cpu(who: int) -> float:
+        r = resource.getrusage(who)
+        return r.ru_utime + r.ru_stime
+
+    def run_cli() -> tuple:
+        t0, c0 = time.perf_counter(), cpu(resource.RUSAGE_CHILDREN)
         subprocess.run(
             [str(a.bin), "score", str(model_path), str(data), "-o", str(a.workdir / "scores.npy"),
              "--threads", str(a.threads)],
             check=True,
         )
-        return time.perf_counter() - t0
+        return time.perf_counter() - t0, cpu(resource.RUSAGE_CHILDREN) - c0
 
-    def run_python() -> float:
-        t0 = time.perf_counter()
+    def run_python() -> tuple:
+        t0, c0 = time.perf_counter(), cpu(resource.RUSAGE_SELF)
         scores = model.score(x, threads=a.threads)
         assert len(scores["log_likelihood"]) == a.rows
-        return time.perf_counter() - t0
+        return time.perf_counter() - t0, cpu(resource.RUSAGE_SELF) - c0
 
     for i in range(a.repeats):
         # Alternate which goes first, so that neither always follows the other.
@@ -82,8 +88,12 @@ def main() -> None:
         else:
             py_s, cli_s = run_python(), run_cli()
         load = os.getloadavg()[0]
-        print(f"run {i + 1}: CLI {cli_s:.2f} s, Python {py_s:.2f} s (Python/CLI {py_s / cli_s:.3f}; load average {load:.1f})",
-              flush=True)
+        print(
+            f"run {i + 1}: wall CLI {cli_s[0]:.2f} s, Python {py_s[0]:.2f} s (Python/CLI {py_s[0] / cli_s[0]:.3f}); "
+            f"CPU CLI {cli_s[1]:.2f} s, Python {py_s[1]:.2f} s (Python/CLI {py_s[1] / cli_s[1]:.3f}); "
+            f"load average {load:.1f}",
+            flush=True,
+        )
 
 if __name__ == "__main__":
     main()

@@ -22,7 +22,7 @@ use tidemark::train::{self, FitOptions, Run};
 use tidemark::{score, Error};
 
 create_exception!(
-    _core,
+    tidemark,
     Interrupted,
     PyKeyboardInterrupt,
     "A fit stopped on request (Ctrl-C); a checkpoint was written and the message says how to continue."
