@@ -1,7 +1,8 @@
 """Fitting from Python: interruption and resumption, labels, samples."""
 
-import _thread
 import json
+import os
+import signal
 import threading
 import time
 
@@ -16,13 +17,13 @@ LONG = dict(epochs=400, patience=400, layers=2, hidden=16, threads=1, progress=F
 
 
 def interrupt_when_exists(path, timeout=60.0):
-    """Raise KeyboardInterrupt in the main thread (as Ctrl-C does) once `path` exists."""
+    """Send this process SIGINT (what Ctrl-C sends) once `path` exists."""
 
     def watch():
         deadline = time.time() + timeout
         while time.time() < deadline:
             if path.exists():
-                _thread.interrupt_main()
+                os.kill(os.getpid(), signal.SIGINT)
                 return
             time.sleep(0.005)
 
