@@ -121,10 +121,11 @@ struct Model {
 
 #[pymethods]
 impl Model {
-    /// Write the model as a `.safetensors` file (atomically).
+    /// Write the model as a `.safetensors` file (atomically). A fitted
+    /// model always serialises, so whatever fails here is the file: `OSError`.
     fn save(&self, py: Python<'_>, path: PathBuf) -> PyResult<()> {
         let m = Arc::clone(&self.inner);
-        py.allow_threads(move || m.save(&path)).map_err(py_err)
+        py.allow_threads(move || m.save(&path)).map_err(|e| PyOSError::new_err(e.to_string()))
     }
 
     /// Every score column this model produces, in output order.

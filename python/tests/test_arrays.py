@@ -1,6 +1,8 @@
 """How arrays reach the library: float32 C-order read in place (memory-mapped
-files too), everything else converted once, the values agreeing."""
+files too), everything else converted once, the values agreeing; the GIL
+released while the library works, and one model shared by threads."""
 
+import threading
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
@@ -71,3 +73,23 @@ def test_score_frame_is_a_dataframe_and_needs_pandas(data, cli_model, monkeypatc
     monkeypatch.setitem(__import__("sys").modules, "pandas", None)
     with pytest.raises(ImportError, match="needs pandas"):
         model.score_frame(data["held"])
+
+
+def spins_while(work) -> int:
+    """How many times this thread got to run Python code while `work` ran on another thread."""
+    t = threading.Thread(target=work)
+    spins = 0
+    t.start()
+    while t.is_alive():
+        spins += 1
+    t.join()
+    return spins
+
+
+def test_the_gil_is_released_while_scoring_and_fitting(data, cli_model):
+    # Holding the GIL through the library call would leave this thread a
+    # handful of turns at most (it runs only between the other's bytecodes).
+    model = tidemark.load(cli_model)
+    x = np.tile(data["held"], (300, 1))
+    assert spins_while(lambda: model.score(x, threads=1)) > 1000
+    assert spins_while(lambda: tidemark.fit(data["train"], epochs=5, layers=2, hidden=16, threads=1, progress=False)) > 1000

@@ -120,6 +120,10 @@ def test_file_and_option_errors(data, tmp_path):
     (tmp_path / "junk.safetensors").write_bytes(b"not a model")
     with pytest.raises(ValueError):
         tidemark.load(tmp_path / "junk.safetensors")
+    model = tidemark.fit(data["train"], kind="gaussian", progress=False)
+    with pytest.raises(OSError):
+        model.save(tmp_path / "no_such_dir" / "m.safetensors")
+    assert not (tmp_path / "no_such_dir").exists()
     with pytest.raises(ValueError, match="unknown field `layer`"):
         tidemark.fit(data["train"], layer=2, progress=False)
     with pytest.raises(ValueError, match="x: expected a 2-D array"):
