@@ -330,8 +330,11 @@ fn fit_watching_signals(run: &Run, opts: &FitOptions, stop: &AtomicBool) -> tide
     })
 }
 
-/// One score table from {column: float64 array}; `name` stands for its file.
-fn table(name: &str, columns: Vec<(String, PyReadonlyArray1<'_, f64>)>) -> PyResult<ScoreTable> {
+/// Score columns as the package passes them: (name, float64 array) pairs.
+type Columns<'py> = Vec<(String, PyReadonlyArray1<'py, f64>)>;
+
+/// One score table from its columns; `name` stands for its file.
+fn table(name: &str, columns: Columns<'_>) -> PyResult<ScoreTable> {
     let mut names = Vec::new();
     let mut values: Vec<Vec<f64>> = Vec::new();
     for (c, v) in columns {
@@ -355,8 +358,8 @@ fn table(name: &str, columns: Vec<(String, PyReadonlyArray1<'_, f64>)>) -> PyRes
 #[allow(clippy::too_many_arguments)]
 fn evaluate(
     py: Python<'_>,
-    id: Vec<(String, PyReadonlyArray1<'_, f64>)>,
-    ood: Vec<(String, Vec<(String, PyReadonlyArray1<'_, f64>)>)>,
+    id: Columns<'_>,
+    ood: Vec<(String, Columns<'_>)>,
     columns: Vec<String>,
     bootstrap: usize,
     seed: u64,
