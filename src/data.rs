@@ -109,9 +109,10 @@ impl std::ops::Deref for Bytes {
     }
 }
 
-/// Rows of embeddings for the pipeline: in memory (CSV), or a `.npy` or
+/// Rows of embeddings for the pipeline: in memory (CSV), a `.npy` or
 /// `.safetensors` file memory-mapped so that a dump larger than memory is
-/// never copied whole.
+/// never copied whole, or row-major f32 values owned by a caller (a numpy
+/// array in the Python bindings) and read where they lie.
 pub struct Dataset {
     pub path: PathBuf,
     pub rows: usize,
@@ -119,8 +120,12 @@ pub struct Dataset {
     storage: Storage,
 }
 
+/// Row-major f32 values owned elsewhere, kept alive as long as the dataset.
+pub type SharedRows = Box<dyn AsRef<[f32]> + Send + Sync>;
+
 enum Storage {
     Owned(Vec<f32>),
+    Shared(SharedRows),
     Encoded { bytes: Bytes, offset: usize, elem: Elem, big_endian: bool, fortran: bool },
 }
 
@@ -203,9 +208,32 @@ impl Dataset {
         Dataset { path: path.to_path_buf(), rows: m.rows, cols: m.cols, storage: Storage::Owned(m.data) }
     }
 
+    /// `rows` x `cols` row-major values read in place, without a copy;
+    /// `name` stands for the file in messages. Every value is checked.
+    pub fn shared(name: &Path, rows: usize, cols: usize, values: SharedRows) -> Result<Dataset, DataError> {
+        let len = (*values).as_ref().len();
+        if rows.checked_mul(cols) != Some(len) {
+            return fail(name, format!("{rows} x {cols} values expected, {len} given"));
+        }
+        let ds = Dataset { path: name.to_path_buf(), rows, cols, storage: Storage::Shared(values) };
+        ds.check_values()?;
+        Ok(ds)
+    }
+
+    /// The values as one row-major slice when they are held that way (in
+    /// memory or shared; not for files, which are decoded row by row).
+    pub fn as_slice(&self) -> Option<&[f32]> {
+        match &self.storage {
+            Storage::Owned(v) => Some(v),
+            Storage::Shared(v) => Some((**v).as_ref()),
+            Storage::Encoded { .. } => None,
+        }
+    }
+
     fn value(&self, r: usize, c: usize) -> f32 {
         match &self.storage {
             Storage::Owned(v) => v[r * self.cols + c],
+            Storage::Shared(v) => (**v).as_ref()[r * self.cols + c],
             Storage::Encoded { bytes, offset, elem, big_endian, fortran } => {
                 let i = if *fortran { c * self.rows + r } else { r * self.cols + c };
                 let b = element(&bytes[*offset..], i, elem.width(), *big_endian);
@@ -235,6 +263,7 @@ impl Dataset {
     pub fn row_into(&self, r: usize, out: &mut [f32]) {
         match &self.storage {
             Storage::Owned(v) => out.copy_from_slice(&v[r * self.cols..(r + 1) * self.cols]),
+            Storage::Shared(v) => out.copy_from_slice(&(**v).as_ref()[r * self.cols..(r + 1) * self.cols]),
             Storage::Encoded { bytes, offset, elem: Elem::F32, big_endian: false, fortran: false } => {
                 let bytes = &bytes[offset + r * self.cols * 4..offset + (r + 1) * self.cols * 4];
                 for (o, b) in out.iter_mut().zip(bytes.chunks_exact(4)) {
@@ -517,6 +546,24 @@ fn locate_tensor(path: &Path, bytes: &[u8], tensor: Option<&str>) -> Result<(usi
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Shared rows are read where they lie (the slice the dataset reads is
+    /// the caller's), row by row as given, and checked like a file's.
+    #[test]
+    fn shared_rows_are_read_in_place_and_checked() {
+        let values: Vec<f32> = (0..6).map(|v| v as f32).collect();
+        let ptr = values.as_ptr();
+        let ds = Dataset::shared(Path::new("x"), 2, 3, Box::new(values)).unwrap();
+        assert_eq!(ds.as_slice().unwrap().as_ptr(), ptr);
+        let mut row = [0.0f32; 3];
+        ds.row_into(1, &mut row);
+        assert_eq!(row, [3.0, 4.0, 5.0]);
+        assert_eq!(ds.to_matrix().data, vec![0.0, 1.0, 2.0, 3.0, 4.0, 5.0]);
+        let nan = Dataset::shared(Path::new("x"), 2, 2, Box::new(vec![0.0, 1.0, f32::NAN, 2.0])).err().unwrap();
+        assert_eq!(nan.to_string(), "x: row 1, column 0 (0-based) is NaN");
+        let short = Dataset::shared(Path::new("x"), 2, 2, Box::new(vec![0.0f32; 3])).err().unwrap();
+        assert_eq!(short.to_string(), "x: 2 x 2 values expected, 3 given");
+    }
 
     #[test]
     fn npy_round_trip() {

@@ -388,6 +388,12 @@ pub fn run(o: &EvaluateOptions) -> Result<Evaluated> {
     };
     let id = read(o.id)?;
     let ood: Vec<(String, ScoreTable)> = o.ood.iter().map(|(n, p)| Ok((n.clone(), read(p)?))).collect::<Result<_>>()?;
+    run_tables(o, id, ood)
+}
+
+/// [`run`] on score tables already in memory (`o.id` and `o.ood` are not
+/// read; the tables' own paths name them).
+pub fn run_tables(o: &EvaluateOptions, id: ScoreTable, ood: Vec<(String, ScoreTable)>) -> Result<Evaluated> {
     if ood.is_empty() {
         return Err(Error::Invalid("give at least one --ood NAME=SCORES".into()));
     }
@@ -418,9 +424,9 @@ pub fn run(o: &EvaluateOptions) -> Result<Evaluated> {
     Ok(evaluated)
 }
 
-fn results_json(e: &Evaluated, o: &EvaluateOptions) -> serde_json::Value {
+pub fn results_json(e: &Evaluated, o: &EvaluateOptions) -> serde_json::Value {
     serde_json::json!({
-        "in_distribution": o.id.display().to_string(),
+        "in_distribution": e.id.path.display().to_string(),
         "conventions": {
             "orientation": "every score oriented so that higher = more anomalous; two-sided scores (log_det, latent_norm) as distance from the in-distribution median",
             "auroc": "outliers positive; ties count one half",

@@ -528,6 +528,24 @@ pub fn bad_row_error(path: &Path, row: usize, why: &str) -> Error {
     ))
 }
 
+/// Every row's values of the chosen columns, one vector per column, for
+/// callers that keep the scores in memory (the Python bindings); the rows
+/// must already be checked for NaN and infinity.
+pub fn score_columns(model: &Model, x: &Dataset, opts: &ScoreOptions) -> Result<(Vec<String>, Vec<Vec<f64>>)> {
+    let mut chunks = ChunkScorer::new(model, opts, SCORE_CHUNK.min(x.rows))?;
+    let columns = chunks.columns.clone();
+    let mut out: Vec<Vec<f64>> = columns.iter().map(|_| Vec::with_capacity(x.rows)).collect();
+    for start in (0..x.rows).step_by(SCORE_CHUNK) {
+        let rows: Vec<usize> = (start..(start + SCORE_CHUNK).min(x.rows)).collect();
+        for row in chunks.score(x, &rows).chunks(columns.len()) {
+            for (column, v) in out.iter_mut().zip(row) {
+                column.push(*v);
+            }
+        }
+    }
+    Ok((columns, out))
+}
+
 /// Score every row of `x` and write the scores to `output`, chunk by chunk.
 /// Rows with NaN or infinite values are handled as `opts.bad_rows` says;
 /// with `BadRows::Error` nothing is written when there is one.
