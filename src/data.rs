@@ -311,24 +311,24 @@ impl Dataset {
         let mut row = vec![0.0f32; self.cols];
         for r in 0..self.rows {
             self.row_into(r, &mut row);
-            if let Some(c) = row.iter().position(|v| !v.is_finite()) {
-                let what = match self.wide_value(r, c) {
-                    Some(w) if w.is_finite() => format!("{w:e}, outside the float32 range"),
-                    _ if row[c].is_nan() => "NaN".to_string(),
-                    _ => "infinite".to_string(),
-                };
+            if let Some((c, what)) = self.bad_value(r, &row) {
                 return fail(&self.path, format!("row {r}, column {c} (0-based) is {what}"));
             }
         }
         Ok(())
     }
-}
 
-/// The first NaN or infinite value of a row: its column and "NaN" or
-/// "infinite".
-pub fn first_bad_value(row: &[f32]) -> Option<(usize, &'static str)> {
-    let c = row.iter().position(|v| !v.is_finite())?;
-    Some((c, if row[c].is_nan() { "NaN" } else { "infinite" }))
+    /// The first NaN, infinite or out-of-float32-range value of row `r`
+    /// (read into `row`): its column and what it is.
+    pub fn bad_value(&self, r: usize, row: &[f32]) -> Option<(usize, String)> {
+        let c = row.iter().position(|v| !v.is_finite())?;
+        let what = match self.wide_value(r, c) {
+            Some(w) if w.is_finite() => format!("{w:e}, outside the float32 range"),
+            _ if row[c].is_nan() => "NaN".to_string(),
+            _ => "infinite".to_string(),
+        };
+        Some((c, what))
+    }
 }
 
 /// A cheap, well-mixed 64-bit hash (the splitmix64 finaliser), for

@@ -418,7 +418,7 @@ pub fn find_bad_rows(x: &Dataset) -> Vec<(usize, String)> {
     let mut bad = Vec::new();
     for r in 0..x.rows {
         x.row_into(r, &mut row);
-        if let Some((c, what)) = crate::data::first_bad_value(&row) {
+        if let Some((c, what)) = x.bad_value(r, &row) {
             bad.push((r, format!("{what} in column {c}")));
         }
     }
@@ -520,11 +520,16 @@ pub fn sort_rows<'b>(
     (order, good)
 }
 
-/// The error for the first bad row under `--bad-rows error`.
-pub fn bad_row_error(path: &Path, row: usize, why: &str) -> Error {
+/// The error for bad row `r` of `x` under `--bad-rows error`, in the
+/// readers' words; `first_row` is `x`'s first row in its file.
+pub fn bad_row_error(x: &Dataset, r: usize, first_row: usize) -> Error {
+    let mut row = vec![0.0f32; x.cols];
+    x.row_into(r, &mut row);
+    let (c, what) = x.bad_value(r, &row).unwrap_or((0, "not finite".into()));
     Error::Invalid(format!(
-        "{}: row {row} (0-based) has {why}; --bad-rows flag or skip scores past such rows",
-        path.display()
+        "{}: row {}, column {c} (0-based) is {what}; --bad-rows flag or skip scores past such rows",
+        x.path.display(),
+        first_row + r
     ))
 }
 
@@ -553,8 +558,8 @@ pub fn score_to_file(model: &Model, x: &Dataset, output: &Path, opts: &ScoreOpti
     let format = Format::of(output)?;
     let mut chunks = ChunkScorer::new(model, opts, SCORE_CHUNK.min(x.rows))?;
     let bad = find_bad_rows(x);
-    if let (BadRows::Error, Some((r, why))) = (opts.bad_rows, bad.first()) {
-        return Err(bad_row_error(&x.path, *r, why));
+    if let (BadRows::Error, Some((r, _))) = (opts.bad_rows, bad.first()) {
+        return Err(bad_row_error(x, *r, 0));
     }
     let flag_column = opts.bad_rows == BadRows::Flag;
     let width = chunks.columns.len();

@@ -80,8 +80,8 @@ pub fn score_batches(
         while let Some(Chunk { first_row, x, keep, .. }) = reader.next_chunk()? {
             let x = Dataset::from_matrix(&path, x);
             let local = score::find_bad_rows(&x);
-            if let (BadRows::Error, Some((r, why))) = (opts.bad_rows, local.first()) {
-                return Err(score::bad_row_error(&path, first_row + r, why));
+            if let (BadRows::Error, Some((r, _))) = (opts.bad_rows, local.first()) {
+                return Err(score::bad_row_error(&x, *r, first_row));
             }
             let (order, good) = score::sort_rows(0..x.rows, &mut local.iter().peekable());
             let values = chunks.score(&x, &good);

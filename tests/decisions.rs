@@ -49,7 +49,7 @@ fn bad_rows_are_an_error_a_flag_or_skipped_and_counted() {
     // Default: refused, naming file, row and column, and nothing written.
     let out = tidemark().args(["score", &m, d, "-o", &p("e.csv")]).assert().failure();
     let err = stderr_of(&out);
-    assert!(err.contains("dirty.npy: row 3 (0-based) has NaN in column 2") && err.contains("--bad-rows"), "{err}");
+    assert!(err.contains("dirty.npy: row 3, column 2 (0-based) is NaN") && err.contains("--bad-rows"), "{err}");
     assert!(!Path::new(&p("e.csv")).exists());
 
     tidemark().args(["score", &m, c.to_str().unwrap(), "-o", &p("clean.csv")]).assert().success();
