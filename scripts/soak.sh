@@ -15,7 +15,8 @@ set -u
 SECONDS_TOTAL=${1:?usage: scripts/soak.sh SECONDS}
 ROOT=$(cd "$(dirname "$0")/.." && pwd)
 cargo build --release --quiet --manifest-path "$ROOT/Cargo.toml" || exit 1
-WORK=$(mktemp -d)
+# Under target/ (ignored by git), where no /tmp cleaner reaches.
+WORK=$(mktemp -d "$ROOT/target/soak.XXXXXX")
 trap 'rm -rf "$WORK"' EXIT
 trap 'exit 130' INT TERM
 # A copy, so that a rebuild during the soak does not change the binary under it.
@@ -97,6 +98,7 @@ started=$(date +%s)
 i=0
 while (($(date +%s) - started < SECONDS_TOTAL)); do
     i=$((i + 1))
+    [[ -f $BIN ]] || { echo "soak: the work directory $WORK went away"; exit 1; }
     case $((RANDOM % 3)) in
     0)
         m=m$i.safetensors ck=ck$i.safetensors log=log$i.jsonl

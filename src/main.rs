@@ -496,7 +496,7 @@ fn check_fit_files(a: &FitArgs, resumed: Option<&Checkpoint>, checkpoint: &Path,
         Output {
             flag: "--checkpoint",
             path: checkpoint,
-            // An existing checkpoint gets its own message below.
+            // An existing checkpoint gets its own message.
             replace: true,
             may_be: Some("--resume"),
         },
@@ -505,7 +505,10 @@ fn check_fit_files(a: &FitArgs, resumed: Option<&Checkpoint>, checkpoint: &Path,
         let replace = a.force || own(resumed.and_then(Checkpoint::log_path), log);
         outputs.push(Output { flag: "--log", path: log, replace, may_be: None });
     }
-    check_files(&inputs, &outputs)?;
+    // Inputs first; then a checkpoint left by an interrupted run, which
+    // explains the existing model and log too; then other existing files.
+    let anything: Vec<Output> = outputs.iter().map(|o| Output { replace: true, ..*o }).collect();
+    check_files(&inputs, &anything)?;
     let own_checkpoint = resumed.is_some_and(|c| same(c.path(), checkpoint));
     if !own_checkpoint && !a.force && std::fs::symlink_metadata(checkpoint).is_ok() {
         return Err(Error::Invalid(format!(
@@ -514,7 +517,7 @@ fn check_fit_files(a: &FitArgs, resumed: Option<&Checkpoint>, checkpoint: &Path,
             checkpoint.display()
         )));
     }
-    Ok(())
+    check_files(&inputs, &outputs)
 }
 
 /// The command that continues an interrupted fit: this one as typed, with

@@ -21,6 +21,7 @@ pub struct Input<'a> {
 }
 
 /// A file a command writes.
+#[derive(Clone, Copy)]
 pub struct Output<'a> {
     pub flag: &'a str,
     pub path: &'a Path,

@@ -95,6 +95,30 @@ fn bad_rows_are_an_error_a_flag_or_skipped_and_counted() {
     let got = std::fs::read_to_string(p("s.csv")).unwrap();
     let kept: Vec<&str> = want.iter().enumerate().filter(|(i, _)| *i != 4 && *i != 8).map(|(_, l)| *l).collect();
     assert_eq!(got.lines().collect::<Vec<_>>(), kept);
+
+    // evaluate reads flagged files in every format as the skipped rows alone.
+    let eval = |id: &str| {
+        let out = tidemark()
+            .args(["evaluate", "--id", &p(id), "--ood", &format!("clean={}", p("clean.csv")), "--bootstrap", "10"])
+            .args(["--columns", "log_likelihood", "-o", &p(&format!("{id}.results.json"))])
+            .assert()
+            .success();
+        let doc: serde_json::Value =
+            serde_json::from_str(&std::fs::read_to_string(p(&format!("{id}.results.json"))).unwrap()).unwrap();
+        (
+            doc["in_distribution_rows"].as_u64().unwrap(),
+            doc["sets"]["clean"]["scores"]["log_likelihood"]["auroc"]["value"].clone(),
+            out,
+        )
+    };
+    for ext in ["csv", "npy", "jsonl"] {
+        let skipped = p(&format!("s2.{ext}"));
+        tidemark().args(["score", &m, d, "-o", &skipped, "--bad-rows", "skip"]).assert().success();
+        let (rows, auroc, _) = eval(&format!("s2.{ext}"));
+        assert_eq!(rows, 38);
+        let (r, a, _) = eval(&format!("f.{ext}"));
+        assert_eq!((r, &a), (38, &auroc), "{ext}");
+    }
 }
 
 #[test]

@@ -298,6 +298,12 @@ fn resume_refuses_other_labels_and_options_applies_more_epochs_and_keeps_the_log
     let wanted = format!("--labels {} --log '{l}' -q --threads 1 --epochs 500", s(&labels));
     assert!(stderr.contains(&wanted) && stderr.contains(&format!("--resume {c}")), "{stderr}");
 
+    // The first command again, as if the interruption had been missed.
+    let mut again = strings(&["fit", t, "-o", m, "--labels", s(&labels), "--checkpoint", c, "--log", l, "-q"]);
+    again.extend(strings(&long));
+    let again: Vec<&str> = again.iter().map(String::as_str).collect();
+    fails(&again, 1, &format!("{c}: a checkpoint of an earlier run is here; continue it with --resume {c}"));
+
     let resume = |extra: &[&str]| -> Vec<String> {
         let mut v = strings(&["fit", t, "-o", m, "--resume", c, "-q"]);
         v.extend(strings(extra));

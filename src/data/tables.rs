@@ -2,7 +2,7 @@
 //! `.npy` with a `.json` sidecar, JSON lines). Every cell must be a finite
 //! number; messages name the line and column.
 
-use super::{fail, printable, read_matrix, read_text, DataError, Matrix};
+use super::{fail, printable, read_text, DataError, Matrix};
 use std::path::Path;
 
 /// The non-blank records of CSV text with their line numbers.
@@ -133,18 +133,26 @@ fn csv_scores(path: &Path) -> Result<Rows, DataError> {
         path: path.to_path_buf(),
         msg: "has no header row naming the score columns".into(),
     })?;
+    // Rows that `score --bad-rows flag` wrote without scores are left out.
+    let flag = names.iter().position(|n| n == BAD_ROW);
     let rows = records
         .iter()
+        .filter(|(_, rec)| flag.is_none_or(|f| rec.get(f).is_none_or(str::is_empty)))
         .map(|(line, rec)| {
             check_width(path, *line, rec, names.len())?;
-            rec.iter().enumerate().map(|(c, f)| number(path, *line, || format!("column '{}'", names[c]), f)).collect()
+            rec.iter()
+                .enumerate()
+                .filter(|(c, _)| Some(*c) != flag)
+                .map(|(c, f)| number(path, *line, || format!("column '{}'", names[c]), f))
+                .collect()
         })
         .collect::<Result<_, _>>()?;
+    let names = names.into_iter().filter(|n| n != BAD_ROW).collect();
     Ok((names, rows))
 }
 
 fn npy_scores(path: &Path) -> Result<Rows, DataError> {
-    let m = read_matrix(path, None)?;
+    let m = crate::data::Dataset::open_unchecked(path, None)?.to_matrix();
     let side = path.with_extension("json");
     let text = read_text(&side).map_err(|e| DataError {
         path: side.clone(),
@@ -158,8 +166,25 @@ fn npy_scores(path: &Path) -> Result<Rows, DataError> {
     if names.len() != m.cols {
         return fail(&side, format!("names {} columns but {} has {}", names.len(), path.display(), m.cols));
     }
-    Ok((names, (0..m.rows).map(|r| m.row(r).iter().map(|&v| v as f64).collect()).collect()))
+    // Rows that `score --bad-rows flag` wrote without scores (1 in their
+    // bad_row column) are left out; every other value must be finite.
+    let flag = names.iter().position(|n| n == BAD_ROW);
+    let mut rows = Vec::with_capacity(m.rows);
+    for r in 0..m.rows {
+        let row = m.row(r);
+        if flag.is_some_and(|f| row[f] != 0.0) {
+            continue;
+        }
+        if let Some(c) = row.iter().position(|v| !v.is_finite()) {
+            return fail(path, format!("row {r}, column '{}' is not a finite number", names[c]));
+        }
+        rows.push(row.iter().enumerate().filter(|(c, _)| Some(*c) != flag).map(|(_, &v)| v as f64).collect());
+    }
+    Ok((names.into_iter().filter(|n| n != BAD_ROW).collect(), rows))
 }
+
+/// The column `score --bad-rows flag` adds: why a row was not scored.
+const BAD_ROW: &str = "bad_row";
 
 fn jsonl_scores(path: &Path) -> Result<Rows, DataError> {
     let text = read_text(path)?;
@@ -170,7 +195,11 @@ fn jsonl_scores(path: &Path) -> Result<Rows, DataError> {
         let obj: serde_json::Map<String, serde_json::Value> =
             serde_json::from_str(line).or_else(|e| fail(path, format!("line {n}: {e}")))?;
         if names.is_empty() {
-            names = obj.keys().cloned().collect();
+            names = obj.keys().filter(|k| *k != BAD_ROW).cloned().collect();
+        }
+        // A row `score --bad-rows flag` wrote without scores is left out.
+        if obj.get(BAD_ROW).is_some_and(|v| !v.is_null()) {
+            continue;
         }
         let row = names
             .iter()
