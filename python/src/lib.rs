@@ -386,8 +386,9 @@ fn evaluate(
     let cal = calibration.map(|c| c.inner.clone());
     py.allow_threads(move || {
         let log = log.as_deref().map(train::read_log).transpose()?;
+        let id_path = id.path.clone();
         let o = EvaluateOptions {
-            id: &id.path,
+            id: &id_path,
             ood: &[],
             columns: &columns,
             bootstrap,
