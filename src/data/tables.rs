@@ -152,7 +152,8 @@ fn csv_scores(path: &Path) -> Result<Rows, DataError> {
 }
 
 fn npy_scores(path: &Path) -> Result<Rows, DataError> {
-    let m = crate::data::Dataset::open_unchecked(path, None)?.to_matrix();
+    let ds = crate::data::Dataset::open_unchecked(path, None)?;
+    let m = ds.to_matrix();
     let side = path.with_extension("json");
     let text = read_text(&side).map_err(|e| DataError {
         path: side.clone(),
@@ -175,8 +176,8 @@ fn npy_scores(path: &Path) -> Result<Rows, DataError> {
         if flag.is_some_and(|f| row[f] != 0.0) {
             continue;
         }
-        if let Some(c) = row.iter().position(|v| !v.is_finite()) {
-            return fail(path, format!("row {r}, column '{}' is not a finite number", names[c]));
+        if let Some((c, what)) = ds.bad_value(r, row) {
+            return fail(path, format!("row {r}, column {c} (0-based) is {what}"));
         }
         rows.push(row.iter().enumerate().filter(|(c, _)| Some(*c) != flag).map(|(_, &v)| v as f64).collect());
     }
