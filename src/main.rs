@@ -737,18 +737,7 @@ fn run(cli: Cli) -> Result<()> {
             if json {
                 output::print(format!("{}\n", m.meta.to_json()))
             } else {
-                let centre = score::held_out_nll(&m);
-                let rows = match m.refs.validation_nll.len() {
-                    0 => "the training rows (no validation rows stored)".to_string(),
-                    n => format!("{n} held-out validation rows"),
-                };
-                output::print(format!(
-                    "{}{:<28}NLL mean {:.4}, std {:.4} over {rows}\n",
-                    m.meta.describe(),
-                    "typicality centre",
-                    centre.mean,
-                    centre.std
-                ))
+                output::print(score::describe(&m))
             }
         }
         Command::Sample { model, count, output, seed, force } => {

@@ -207,6 +207,23 @@ pub struct Scorer<'a> {
     decision: Option<&'a dyn Decision>,
 }
 
+/// What `inspect` prints: the model's description, then the centre of the
+/// typicality score and the rows it comes from.
+pub fn describe(model: &Model) -> String {
+    let centre = held_out_nll(model);
+    let rows = match model.refs.validation_nll.len() {
+        0 => "the training rows (no validation rows stored)".to_string(),
+        n => format!("{n} held-out validation rows"),
+    };
+    format!(
+        "{}{:<28}NLL mean {:.4}, std {:.4} over {rows}\n",
+        model.meta.describe(),
+        "typicality centre",
+        centre.mean,
+        centre.std
+    )
+}
+
 /// Mean and standard deviation of the NLL of held-out in-distribution rows:
 /// the validation rows kept at the end of `fit`. A model fits its own
 /// training rows better than new ones, so the training NLL would put every

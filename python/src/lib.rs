@@ -205,7 +205,7 @@ impl Model {
 
     /// How the model was made and how it did (what `tidemark inspect` prints).
     fn describe(&self) -> String {
-        self.inner.meta.describe()
+        score::describe(&self.inner)
     }
 
     /// The checksum that ties calibrations to this model.
