@@ -4,7 +4,7 @@
 //! Pipeline, one module per stage, data flowing one way (each module uses
 //! only those to its left):
 //! [`data`] and [`columnar`] (files in, chosen by [`input`]) -> [`preprocess`] (standardization / PCA whitening)
-//! -> [`flow`] (coupling layers) -> [`train`] (fitting) -> [`model`] (the
+//! -> [`flow`] (coupling layers) and [`mixture`] (Gaussian mixture) -> [`train`] (fitting) -> [`model`] (the
 //! fitted model and its file) -> [`score`] (per-vector scores, the batch
 //! test; knows no calibration files) -> [`calibrate`] (decisions: a
 //! threshold and p-values applied to a score) -> [`evaluate`] (metrics of
@@ -26,6 +26,7 @@ pub mod flow;
 pub mod input;
 pub mod kde;
 pub mod linalg;
+pub mod mixture;
 pub mod model;
 pub mod output;
 pub mod preprocess;

@@ -156,3 +156,12 @@ mod tests {
         }
     }
 }
+
+/// ln(sum exp(v)), computed stably.
+pub fn log_sum_exp(v: &[f64]) -> f64 {
+    let top = v.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
+    if top == f64::NEG_INFINITY {
+        return top;
+    }
+    top + v.iter().map(|x| (x - top).exp()).sum::<f64>().ln()
+}

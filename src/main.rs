@@ -14,7 +14,7 @@ use tidemark::flow::Mixing;
 use tidemark::model::{Kind, Model};
 use tidemark::output::{self, check_files, note, FileKey, Input, Output};
 use tidemark::preprocess::Method;
-use tidemark::train::{default_threads, Checkpoint, FitOptions, Run, Source};
+use tidemark::train::{ShrinkageOption, default_threads, Checkpoint, FitOptions, Run, Source};
 use tidemark::{check, columnar, data, demo, evaluate, input, report, score, stream, Error, Result};
 
 #[derive(Parser)]
@@ -271,7 +271,7 @@ struct FitArgs {
     /// Fit on a seeded uniform sample of at most this many rows, drawn while reading (any input format).
     #[arg(long)]
     max_rows: Option<usize>,
-    /// Density model: flow, gaussian (full covariance) or class-gaussian (class means, shared covariance; needs --labels).
+    /// Density model: flow, gaussian (full covariance), class-gaussian (class means, shared covariance; needs --labels) or mixture (Gaussian mixture, full covariances).
     #[arg(long, value_enum)]
     kind: Option<Kind>,
     /// Also train a background flow on training vectors with Gaussian noise of this scale (whitened units), for the log_likelihood_ratio score.
@@ -328,6 +328,12 @@ struct FitArgs {
     /// Worker threads [default: all cores].
     #[arg(long)]
     threads: Option<usize>,
+    /// Covariance shrinkage of the Gaussian kinds: validated (the intensity with the best held-out log-likelihood, Ledoit-Wolf's among the candidates), ledoit-wolf, or an intensity in [0, 1) [default: validated].
+    #[arg(long)]
+    shrinkage: Option<ShrinkageOption>,
+    /// Components of the mixture kind [default: chosen on the validation rows among 1, 2, 4, ... 64].
+    #[arg(long)]
+    components: Option<usize>,
     /// Held-out in-distribution rows for validation and early stopping (instead of a split).
     #[arg(long)]
     val: Option<PathBuf>,
@@ -398,6 +404,8 @@ impl FitArgs {
             checkpoint_minutes: self.checkpoint_minutes,
             seed: self.seed,
             threads: self.threads,
+            shrinkage: self.shrinkage,
+            components: self.components,
             quiet: self.quiet,
             inject_nan_at_step: self.inject_nan_at_step,
         }

@@ -10,6 +10,7 @@
 use crate::data::{Dataset, Matrix};
 use crate::error::{Error, Result};
 use crate::flow::{self, Flow, FlowSpec, Workers, HALF_LN_2PI};
+use crate::mixture::Mixture;
 use crate::preprocess::{Method, Preprocessor};
 use rand::SeedableRng;
 use rand_distr::{Distribution, StandardNormal};
@@ -18,15 +19,16 @@ use std::path::Path;
 /// Newest version of the model file layout; bumped on any incompatible
 /// change. Version 2 added LU mixing; a model without it is still written as
 /// version 1, so that older builds read it.
-pub const FORMAT_VERSION: u32 = 2;
+pub const FORMAT_VERSION: u32 = 3;
 
-/// The oldest version that can hold a flow with this mixing (builds before
-/// version 2 would read an LU-mixed flow as a permuted one, so they must
-/// refuse it).
-pub fn format_version_for(mixing: crate::flow::Mixing) -> u32 {
-    match mixing {
-        crate::flow::Mixing::Permutation => 1,
-        crate::flow::Mixing::Lu => 2,
+/// The oldest version that can hold a model with this mixing and kind
+/// (builds before version 2 would read an LU-mixed flow as a permuted one,
+/// and builds before version 3 know no mixture, so they must refuse them).
+pub fn format_version_for(mixing: crate::flow::Mixing, kind: Kind) -> u32 {
+    match (kind, mixing) {
+        (Kind::Mixture, _) => 3,
+        (_, crate::flow::Mixing::Permutation) => 1,
+        (_, crate::flow::Mixing::Lu) => 2,
     }
 }
 
@@ -90,6 +92,20 @@ pub struct Meta {
     /// Noise scale the background flow was trained with (whitened units).
     pub background_noise: Option<f64>,
     pub scoring: ScoringMeta,
+    /// The Gaussian mixture over the whitened vectors (mixture kind only).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub mixture: Option<MixtureMeta>,
+}
+
+/// Shape of a fitted Gaussian mixture and how it was fitted.
+#[derive(Clone, Debug, serde::Serialize, serde::Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct MixtureMeta {
+    pub components: usize,
+    /// Added to every covariance's diagonal (whitened units).
+    pub ridge: f64,
+    pub em_iterations: usize,
+    pub converged: bool,
 }
 
 #[derive(Clone, Debug, serde::Serialize, serde::Deserialize)]
@@ -138,6 +154,19 @@ impl Meta {
                 }
             ),
         );
+        if let Some(m) = &self.mixture {
+            line(
+                "mixture",
+                format!(
+                    "{} full-covariance Gaussians over all {} whitened dims, ridge {:e}, {} EM iterations{}",
+                    m.components,
+                    p.whitened_dims,
+                    m.ridge,
+                    m.em_iterations,
+                    if m.converged { "" } else { " (not converged)" }
+                ),
+            );
+        }
         line("seed", self.seed.to_string());
         line("rows", format!("{} train, {} validation", t.train_rows, t.validation_rows));
         line("epochs", format!("{} run, best {} (0 = untrained flow, i.e. Gaussian)", t.epochs_run, t.best_epoch));
@@ -216,6 +245,9 @@ pub struct Model {
     pub flow: Flow,
     /// The background flow of the likelihood-ratio score, if fitted.
     pub background: Option<Flow>,
+    /// The density over the whitened vectors when it is a Gaussian mixture
+    /// (the flow is then the identity).
+    pub mixture: Option<Mixture>,
     pub refs: ScoringRefs,
 }
 
@@ -240,6 +272,8 @@ pub enum Kind {
     Gaussian,
     /// Class means with one shared covariance.
     ClassGaussian,
+    /// Gaussian mixture with full covariances, fitted by EM; components and ridge chosen on validation rows.
+    Mixture,
 }
 
 /// Metadata of the reference values in [`ScoringRefs`].
@@ -277,6 +311,10 @@ pub struct Evaluation {
     /// Index of the most probable class and its posterior probability.
     pub predicted_class: Vec<usize>,
     pub class_probability: Vec<f64>,
+    /// Index of the most responsible mixture component and its posterior
+    /// probability (empty unless the model is a mixture).
+    pub component: Vec<usize>,
+    pub component_probability: Vec<f64>,
     /// log p_background(x) (empty without a background flow).
     pub background_log_likelihood: Vec<f64>,
     /// Largest absolute deviation on dead features from their training value.
@@ -385,6 +423,11 @@ impl Model {
         for v in self.pre.components.iter().flatten() {
             eat(v.to_bits() as u64);
         }
+        if let Some(m) = &self.mixture {
+            for v in m.log_weights.iter().chain(&m.means).chain(&m.precision_cholesky) {
+                eat(v.to_bits());
+            }
+        }
         format!("{h:016x}")
     }
 
@@ -409,6 +452,9 @@ impl Model {
         bg_workers: Option<&mut Workers>,
         out: &mut Evaluation,
     ) {
+        if let Some(mixture) = &self.mixture {
+            return self.evaluate_mixture(mixture, u, rows, out);
+        }
         let (d, k) = (self.dim(), self.meta.flow_dims);
         // No copy when the flow models every dimension.
         let head = if k == d { std::borrow::Cow::Borrowed(u) } else { leading_columns(u, rows, d, k).into() };
@@ -465,10 +511,31 @@ impl Model {
         }
     }
 
+    /// The mixture's statistics of whitened rows: the latent of a row is its
+    /// whitened offset from the most responsible component.
+    fn evaluate_mixture(&self, mixture: &Mixture, u: &[f32], rows: usize, out: &mut Evaluation) {
+        let u64s: Vec<f64> = u[..rows * self.dim()].iter().map(|&v| v as f64).collect();
+        let e = mixture.evaluate(&u64s, rows);
+        let log_det = self.pre.log_det();
+        for r in 0..rows {
+            out.log_likelihood.push(e.log_density[r] + log_det);
+            out.base_log_density.push(e.log_density[r]);
+            out.log_det.push(log_det);
+            out.latent_norm.push(e.mahalanobis_sq[r].sqrt());
+            out.mahalanobis_sq.push(e.mahalanobis_sq[r]);
+        }
+        out.component.extend(e.component);
+        out.component_probability.extend(e.probability);
+    }
+
     /// Draw `n` vectors from the model (input space).
     pub fn sample(&self, n: usize, seed: u64) -> Matrix {
         let (d, k) = (self.dim(), self.meta.flow_dims);
         let mut rng = rand::rngs::StdRng::seed_from_u64(seed);
+        if let Some(mixture) = &self.mixture {
+            let u: Vec<f32> = mixture.sample(n, &mut rng).iter().map(|&v| v as f32).collect();
+            return Matrix::new(n, self.meta.input_dim, self.pre.inverse(&u, n));
+        }
         let z: Vec<f32> = (0..n * d).map(|_| StandardNormal.sample(&mut rng)).collect();
         let mut head_z = leading_columns(&z, n, d, k);
         if self.classes() > 0 {
@@ -491,14 +558,7 @@ impl Model {
     }
 }
 
-/// ln(sum exp(v)), computed stably.
-pub fn log_sum_exp(v: &[f64]) -> f64 {
-    let top = v.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
-    if top == f64::NEG_INFINITY {
-        return top;
-    }
-    top + v.iter().map(|x| (x - top).exp()).sum::<f64>().ln()
-}
+pub use crate::linalg::log_sum_exp;
 
 /// The first `k` of every `d` columns of `u` (the flow's part of whitened
 /// rows), into `out`, which is cleared first.

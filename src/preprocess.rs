@@ -4,7 +4,7 @@
 //! to every log-likelihood so that they stay in the original input space.
 
 use crate::data::Dataset;
-use crate::linalg::{matmul, View};
+use crate::linalg::{log_sum_exp, matmul, View};
 
 /// How live features are mapped to the flow's unit-scale inputs.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, serde::Serialize, serde::Deserialize, clap::ValueEnum)]
@@ -99,7 +99,7 @@ pub struct Preprocessor {
     /// Principal directions left out because the training rows have no
     /// variance along them.
     pub floored: usize,
-    /// Ledoit-Wolf shrinkage intensity applied to the covariance (0: none).
+    /// Shrinkage intensity applied to the covariance (0: none).
     pub shrinkage: f64,
 }
 
@@ -116,13 +116,33 @@ pub struct Covariance<'a> {
     /// Pool within classes: each row is centred on its class mean.
     /// `class_of[row]` indexes `means` (full input width).
     pub classes: Option<(&'a [u32], &'a [Vec<f64>])>,
-    /// Shrink the correlation matrix (the covariance of the standardized
-    /// features) towards a scaled identity with the Ledoit-Wolf intensity
-    /// (Ledoit & Wolf 2004, as scikit-learn's LedoitWolf computes it), then
-    /// scale back: unlike shrinking the raw covariance, the result does not
+    /// How much to shrink the correlation matrix (the covariance of the
+    /// standardized features) towards a scaled identity before scaling
+    /// back: unlike shrinking the raw covariance, the result does not
     /// depend on the features' units.
-    pub ledoit_wolf: bool,
+    pub shrinkage: Shrinkage<'a>,
 }
+
+/// The shrinkage intensity alpha of `(1 - alpha) R + alpha mu I`, where `R`
+/// is the correlation matrix and `mu` its mean eigenvalue.
+#[derive(Clone, Copy, Default)]
+pub enum Shrinkage<'a> {
+    /// The maximum-likelihood covariance.
+    #[default]
+    None,
+    /// The Ledoit-Wolf intensity (Ledoit & Wolf 2004, as scikit-learn's
+    /// LedoitWolf computes it).
+    LedoitWolf,
+    /// A given intensity in [0, 1).
+    Fixed(f64),
+    /// The intensity on [`SHRINKAGE_GRID`] (plus the Ledoit-Wolf estimate)
+    /// with the best log-likelihood of these held-out rows.
+    Validated(&'a Dataset, &'a [usize]),
+}
+
+/// Intensities tried when the shrinkage is chosen on validation rows
+/// (0 only when the training covariance has full rank).
+pub const SHRINKAGE_GRID: [f64; 12] = [0.0, 1e-6, 1e-5, 1e-4, 3e-4, 1e-3, 3e-3, 1e-2, 3e-2, 0.1, 0.3, 0.6];
 
 impl Preprocessor {
     /// Fit on the rows `idx` of `x`, streaming over them in blocks. Fails
@@ -213,7 +233,7 @@ impl Preprocessor {
     fn fit_pca(&mut self, x: &Dataset, idx: &[usize], how: &Covariance, std: &[f64]) {
         let d = self.live.len();
         let (mut cov, sum_norm4) = self.covariance(x, idx, how, std);
-        if how.ledoit_wolf {
+        if !matches!(how.shrinkage, Shrinkage::None) {
             // Shrink the correlation matrix, so that the result does not
             // depend on the features' units, then scale back.
             for i in 0..d {
@@ -221,7 +241,17 @@ impl Preprocessor {
                     cov[i * d + j] /= std[i] * std[j];
                 }
             }
-            self.shrinkage = ledoit_wolf_shrink(&mut cov, d, idx.len(), sum_norm4);
+            let lw = ledoit_wolf_intensity(&cov, d, idx.len(), sum_norm4);
+            self.shrinkage = match how.shrinkage {
+                Shrinkage::None => 0.0,
+                Shrinkage::LedoitWolf => lw,
+                Shrinkage::Fixed(alpha) => alpha,
+                Shrinkage::Validated(val, rows) => {
+                    let centres = self.centres(how, idx);
+                    validated_intensity(&cov, d, lw, &ValidationRows { data: val, rows, live: &self.live, std }, &centres)
+                }
+            };
+            shrink(&mut cov, d, self.shrinkage);
             for i in 0..d {
                 for j in 0..d {
                     cov[i * d + j] *= std[i] * std[j];
@@ -249,6 +279,21 @@ impl Preprocessor {
         }
         self.components = Some(components);
         self.scale = scale;
+    }
+
+    /// Where the Gaussian (or each class's Gaussian) sits: its log prior and
+    /// its mean over the live features.
+    fn centres(&self, how: &Covariance, idx: &[usize]) -> Vec<(f64, Vec<f64>)> {
+        let Some((class_of, means)) = how.classes else {
+            return vec![(0.0, self.mean.clone())];
+        };
+        let mut counts = vec![0usize; means.len()];
+        for &r in idx {
+            counts[class_of[r] as usize] += 1;
+        }
+        let live = |m: &Vec<f64>| self.live.iter().map(|&j| m[j]).collect();
+        let n = idx.len() as f64;
+        means.iter().zip(&counts).filter(|(_, &c)| c > 0).map(|(m, &c)| ((c as f64 / n).ln(), live(m))).collect()
     }
 
     /// `ln |det|` of the map from live input features to whitened vectors.
@@ -346,24 +391,97 @@ impl Preprocessor {
     }
 }
 
-/// Shrink the empirical covariance `s` (`d x d`, from `n` centred rows
-/// with sum of ||x||^4 `sum_norm4`) towards mu I, mu = trace / d, with the
-/// Ledoit-Wolf intensity; returns the intensity. Follows scikit-learn's
-/// `ledoit_wolf_shrinkage`: beta = (sum ||x||^4 / n - ||S||_F^2) / (d n),
-/// delta = ||S - mu I||_F^2 / d, intensity = min(beta, delta) / delta.
-fn ledoit_wolf_shrink(s: &mut [f64], d: usize, n: usize, sum_norm4: f64) -> f64 {
-    let mu = (0..d).map(|i| s[i * d + i]).sum::<f64>() / d as f64;
+/// The Ledoit-Wolf intensity for shrinking the empirical covariance `s`
+/// (`d x d`, from `n` centred rows with sum of ||x||^4 `sum_norm4`) towards
+/// mu I, mu = trace / d. Follows scikit-learn's `ledoit_wolf_shrinkage`:
+/// beta = (sum ||x||^4 / n - ||S||_F^2) / (d n), delta = ||S - mu I||_F^2 / d,
+/// intensity = min(beta, delta) / delta.
+fn ledoit_wolf_intensity(s: &[f64], d: usize, n: usize, sum_norm4: f64) -> f64 {
+    let mu = trace(s, d) / d as f64;
     let frob: f64 = s.iter().map(|v| v * v).sum();
     let beta = (sum_norm4 / n as f64 - frob) / (d as f64 * n as f64);
     let delta = (frob - 2.0 * mu * mu * d as f64 + d as f64 * mu * mu) / d as f64;
-    let shrinkage = if beta <= 0.0 || delta <= 0.0 { 0.0 } else { beta.min(delta) / delta };
+    if beta <= 0.0 || delta <= 0.0 {
+        0.0
+    } else {
+        beta.min(delta) / delta
+    }
+}
+
+fn trace(s: &[f64], d: usize) -> f64 {
+    (0..d).map(|i| s[i * d + i]).sum()
+}
+
+/// `s <- (1 - alpha) s + alpha mu I`, mu = trace / d.
+fn shrink(s: &mut [f64], d: usize, alpha: f64) {
+    let mu = trace(s, d) / d as f64;
     for i in 0..d {
         for j in 0..d {
-            s[i * d + j] *= 1.0 - shrinkage;
+            s[i * d + j] *= 1.0 - alpha;
         }
-        s[i * d + i] += shrinkage * mu;
+        s[i * d + i] += alpha * mu;
     }
-    shrinkage
+}
+
+/// Held-out rows, and how to standardize their live features.
+struct ValidationRows<'a> {
+    data: &'a Dataset,
+    rows: &'a [usize],
+    live: &'a [usize],
+    std: &'a [f64],
+}
+
+/// The intensity among [`SHRINKAGE_GRID`] and the Ledoit-Wolf estimate `lw`
+/// under which the held-out rows are most likely. The density is the
+/// mixture over `centres` (log prior, mean of the live features) of
+/// Gaussians with the shrunk correlation `r`; every intensity shares `r`'s
+/// eigenvectors, so one eigendecomposition and one projection of the rows
+/// serve the whole grid. Intensities that leave a null direction are
+/// skipped: their likelihood is over fewer dimensions and not comparable.
+fn validated_intensity(r: &[f64], d: usize, lw: f64, val: &ValidationRows, centres: &[(f64, Vec<f64>)]) -> f64 {
+    let eig = nalgebra::SymmetricEigen::new(nalgebra::DMatrix::from_row_slice(d, d, r));
+    let lambda: Vec<f64> = eig.eigenvalues.iter().map(|&l| l.max(0.0)).collect();
+    let mu = lambda.iter().sum::<f64>() / d as f64;
+    let top = lambda.iter().cloned().fold(0.0, f64::max);
+    let mut grid: Vec<f64> = SHRINKAGE_GRID.iter().copied().chain([lw]).collect();
+    grid.retain(|&a| lambda.iter().all(|&l| (1.0 - a) * l + a * mu > NULL_VARIANCE * top));
+    // vectors: column i of `basis` (d x d, row-major) is eigenvector i.
+    let basis: Vec<f64> = (0..d).flat_map(|row| (0..d).map(move |i| (row, i))).map(|(row, i)| eig.eigenvectors[(row, i)]).collect();
+    let mut raw = Vec::new();
+    let mut centred = vec![0.0f64; BLOCK * d];
+    let mut proj = vec![0.0f64; BLOCK * d];
+    let log_dets: Vec<f64> = grid.iter().map(|&a| lambda.iter().map(|&l| ((1.0 - a) * l + a * mu).ln()).sum()).collect();
+    let mut total = vec![0.0f64; grid.len()];
+    let mut per_centre = vec![0.0f64; centres.len()];
+    for chunk in val.rows.chunks(BLOCK) {
+        let n = chunk.len();
+        val.data.gather(chunk, &mut raw);
+        // One projection per centre: rows x d, times the eigenvectors.
+        let mut projections = Vec::with_capacity(centres.len());
+        for (_, mean) in centres {
+            for (r, row) in raw.chunks(val.data.cols).enumerate() {
+                for (i, &j) in val.live.iter().enumerate() {
+                    centred[r * d + i] = (row[j] as f64 - mean[i]) / val.std[i];
+                }
+            }
+            proj[..n * d].fill(0.0);
+            matmul(&mut proj[..n * d], d, false, View::rows(&centred[..n * d], n, d, d), View::rows(&basis, d, d, d));
+            projections.push(proj[..n * d].to_vec());
+        }
+        for (g, &a) in grid.iter().enumerate() {
+            let inv: Vec<f64> = lambda.iter().map(|&l| 1.0 / ((1.0 - a) * l + a * mu)).collect();
+            for r in 0..n {
+                for (c, (log_prior, _)) in centres.iter().enumerate() {
+                    let p = &projections[c][r * d..(r + 1) * d];
+                    let q: f64 = p.iter().zip(&inv).map(|(v, w)| v * v * w).sum();
+                    per_centre[c] = log_prior - 0.5 * (q + log_dets[g]);
+                }
+                total[g] += log_sum_exp(&per_centre);
+            }
+        }
+    }
+    let best = (0..grid.len()).max_by(|&a, &b| total[a].total_cmp(&total[b]));
+    best.map_or(lw, |g| grid[g])
 }
 
 #[cfg(test)]

@@ -33,7 +33,7 @@ pub fn statistic(e: &Evaluation, name: &str, r: usize) -> f64 {
 
 /// Every column `score` can write, as `score --help` lists them (a model
 /// has those its kind and options give it).
-pub const ALL_COLUMNS: [&str; 17] = [
+pub const ALL_COLUMNS: [&str; 19] = [
     "log_likelihood",
     "bits_per_dim",
     "base_log_density",
@@ -46,6 +46,8 @@ pub const ALL_COLUMNS: [&str; 17] = [
     "predicted_class",
     "class_probability",
     "class_log_likelihood_<label>",
+    "component",
+    "component_probability",
     "dead_feature_deviation",
     "subspace_residual",
     "p_value",
@@ -65,7 +67,9 @@ pub fn column_help(name: &str) -> &'static str {
         "latent_norm" => {
             "||z||; near sqrt(D) is typical for a D-dim standard normal; two-sided: far from it either way is anomalous"
         }
-        "mahalanobis_sq" => "squared distance of z to the nearest class mean; higher = more anomalous",
+        "mahalanobis_sq" => {
+            "squared Mahalanobis distance to the nearest class mean (or most responsible mixture component); higher = more anomalous"
+        }
         "typicality" => {
             "|NLL - mean NLL of held-out rows| / their NLL std (the fit's validation rows); higher = more anomalous"
         }
@@ -75,6 +79,8 @@ pub fn column_help(name: &str) -> &'static str {
         "log_likelihood_ratio" => "log p(x) - log p_background(x); higher = more typical",
         "predicted_class" => "most probable class label (not a score)",
         "class_probability" => "posterior probability of the predicted class",
+        "component" => "index of the most responsible mixture component (not a score)",
+        "component_probability" => "posterior probability of the most responsible mixture component (not a score)",
         "dead_feature_deviation" => "largest |x_j - training value| on dead features; higher = more anomalous",
         "subspace_residual" => {
             "distance from the span of the training rows' principal directions (input units); higher = more anomalous"
@@ -189,6 +195,10 @@ pub fn available_columns(model: &Model) -> Vec<String> {
         cols.push("predicted_class".into());
         cols.push("class_probability".into());
         cols.extend(model.meta.classes.iter().map(|c| format!("class_log_likelihood_{}", c.label)));
+    }
+    if model.mixture.is_some() {
+        cols.push("component".into());
+        cols.push("component_probability".into());
     }
     cols.push("dead_feature_deviation".into());
     if model.pre.floored > 0 {
@@ -311,6 +321,8 @@ impl<'a> Scorer<'a> {
             "log_likelihood_ratio" => e.log_likelihood[r] - e.background_log_likelihood[r],
             "predicted_class" => m.meta.classes[e.predicted_class[r]].label as f64,
             "class_probability" => e.class_probability[r],
+            "component" => e.component[r] as f64,
+            "component_probability" => e.component_probability[r],
             "dead_feature_deviation" => e.dead_deviation[r],
             "subspace_residual" => e.subspace_residual[r],
             other => {

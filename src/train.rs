@@ -13,7 +13,9 @@ use crate::model::{
     ScoringRefs, Spread, TrainingSummary,
 };
 use crate::output::note;
-use crate::preprocess::{ColumnStats, Covariance, Method, Preprocessor, TransformScratch, DEFAULT_DEAD_THRESHOLD};
+use crate::preprocess::{
+    ColumnStats, Covariance, Method, Preprocessor, Shrinkage, TransformScratch, DEFAULT_DEAD_THRESHOLD,
+};
 use crate::simd::elementwise;
 pub use checkpoint::Checkpoint;
 use checkpoint::{absolute, resume, save_checkpoint};
@@ -55,6 +57,9 @@ pub struct FitOptions {
     pub checkpoint_minutes: Option<f64>,
     pub seed: Option<u64>,
     pub threads: Option<usize>,
+    pub shrinkage: Option<ShrinkageOption>,
+    /// Mixture components (chosen on validation when unset).
+    pub components: Option<usize>,
     #[serde(skip)]
     pub quiet: bool,
     /// Test hook: make the gradient of this step non-finite once.
@@ -107,6 +112,10 @@ impl FitOptions {
         opt(self.max_retries, "max_retries", 0, 1000)?;
         opt(self.checkpoint_every, "checkpoint_every", 1, 1_000_000)?;
         opt(self.threads, "threads", 1, check::MAX_THREADS)?;
+        opt(self.components, "components", 1, 1 << 16)?;
+        if self.components.is_some() && self.kind.is_some_and(|k| k != Kind::Mixture) {
+            return Err(Error::Invalid(format!("{} sizes a mixture; it needs the mixture kind", n("components"))));
+        }
         let real = |v: Option<f64>, field: &str, test: fn(&str, f64) -> Result<f64>| -> Result<()> {
             v.map_or(Ok(()), |v| test(&n(field), v).map(drop))
         };
@@ -120,6 +129,12 @@ impl FitOptions {
         real(self.val_fraction, "val_fraction", |name, v| check::fraction_below(name, v, MAX_VAL_FRACTION))?;
         real(self.dropout, "dropout", |name, v| check::fraction_below(name, v, 1.0))?;
         real(self.dead_threshold, "dead_threshold", |name, v| check::fraction_below(name, v, 1.0))?;
+        if let Some(ShrinkageOption::Fixed(v)) = self.shrinkage {
+            check::fraction_below(&n("shrinkage"), v, 1.0)?;
+        }
+        if self.shrinkage.is_some() && matches!(self.kind, Some(Kind::Flow | Kind::Mixture)) {
+            return Err(Error::Invalid(format!("{} applies to the Gaussian kinds; drop it or the flow kind", n("shrinkage"))));
+        }
         Ok(())
     }
 
@@ -150,6 +165,8 @@ impl FitOptions {
             checkpoint_minutes: self.checkpoint_minutes.or(fallback.checkpoint_minutes),
             seed: self.seed.or(fallback.seed),
             threads: self.threads.or(fallback.threads),
+            shrinkage: self.shrinkage.or(fallback.shrinkage),
+            components: self.components.or(fallback.components),
             quiet: self.quiet || fallback.quiet,
             inject_nan_at_step: self.inject_nan_at_step.or(fallback.inject_nan_at_step),
         }
@@ -157,7 +174,54 @@ impl FitOptions {
 }
 
 mod checkpoint;
+mod fit_mixture;
 mod progress;
+
+/// How the Gaussian kinds shrink their covariance, as the user asks:
+/// `validated` (the default), `ledoit-wolf`, or an intensity in [0, 1).
+#[derive(Clone, Copy, Debug, PartialEq, serde::Deserialize, serde::Serialize)]
+#[serde(try_from = "serde_json::Value", into = "String")]
+pub enum ShrinkageOption {
+    /// The intensity with the best held-out log-likelihood (Ledoit-Wolf
+    /// among the candidates).
+    Validated,
+    LedoitWolf,
+    Fixed(f64),
+}
+
+impl std::str::FromStr for ShrinkageOption {
+    type Err = String;
+    fn from_str(s: &str) -> std::result::Result<Self, String> {
+        match s {
+            "validated" => Ok(ShrinkageOption::Validated),
+            "ledoit-wolf" => Ok(ShrinkageOption::LedoitWolf),
+            _ => s.parse::<f64>().map(ShrinkageOption::Fixed).map_err(|_| {
+                format!("'{}' is not validated, ledoit-wolf or a number in [0, 1)", crate::data::printable(s, 40))
+            }),
+        }
+    }
+}
+
+impl TryFrom<serde_json::Value> for ShrinkageOption {
+    type Error = String;
+    fn try_from(v: serde_json::Value) -> std::result::Result<Self, String> {
+        match v {
+            serde_json::Value::String(s) => s.parse(),
+            serde_json::Value::Number(n) => n.as_f64().map(ShrinkageOption::Fixed).ok_or_else(|| "not a number".into()),
+            _ => Err("expected \"validated\", \"ledoit-wolf\" or a number in [0, 1)".into()),
+        }
+    }
+}
+
+impl From<ShrinkageOption> for String {
+    fn from(s: ShrinkageOption) -> String {
+        match s {
+            ShrinkageOption::Validated => "validated".into(),
+            ShrinkageOption::LedoitWolf => "ledoit-wolf".into(),
+            ShrinkageOption::Fixed(v) => v.to_string(),
+        }
+    }
+}
 
 /// Where options came from, for naming them in messages.
 pub enum Source<'a> {
@@ -283,7 +347,7 @@ impl Settings {
         let method = o.method.unwrap_or(Method::Pca);
         let kind = o.kind.unwrap_or_default();
         if kind != Kind::Flow && method != Method::Pca {
-            return Err(Error::Invalid("--kind gaussian and class-gaussian whiten with PCA; drop --method".into()));
+            return Err(Error::Invalid("--kind gaussian, class-gaussian and mixture whiten with PCA; drop --method".into()));
         }
         if kind != Kind::Flow && o.background_noise.is_some() {
             return Err(Error::Invalid("--background-noise trains a background flow; it needs --kind flow".into()));
@@ -571,6 +635,10 @@ pub fn fit_run(run: &Run, opts: &FitOptions) -> Result<Model> {
     }
     train(run, opts, &mut learned, started)?;
     learned.model.flow.params = learned.best_params.clone();
+    if learned.settings.kind == Kind::Mixture {
+        let rows = Rows::new(run, &learned.settings, &learned.model);
+        fit_mixture::fit_mixture(&rows, &mut learned, opts.components, opts.quiet)?;
+    }
     if let Some(sigma) = learned.settings.background_noise {
         let bg = train_background(run, opts, &learned, sigma, started)?;
         learned.model.meta.background = Some(bg.spec.clone());
@@ -602,12 +670,12 @@ fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
     }
     let seed = opts.seed.unwrap_or(0);
     let val_fraction = if run.val.is_some() { 0.0 } else { opts.val_fraction.unwrap_or(0.1) };
-    let (train_idx, _) = split_rows(x.rows, val_fraction, seed);
+    let (train_idx, val_idx) = split_rows(x.rows, val_fraction, seed);
     let method = opts.method.unwrap_or(Method::Pca);
     let (kind, by_size) = opts.kind_for(train_idx.len(), x.cols, run.labels.is_some());
     if by_size && !opts.quiet {
         note(format!(
-            "{} training rows for {} features ({:.1} per feature): fitting {} with Ledoit-Wolf shrinkage, \
+            "{} training rows for {} features ({:.1} per feature): fitting {} with shrinkage, \
              which beats a flow at this size; --kind flow fits a flow anyway",
             train_idx.len(),
             x.cols,
@@ -622,6 +690,11 @@ fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
     if kind == Kind::ClassGaussian && class_of.is_none() {
         return Err(Error::Invalid("--kind class-gaussian needs --labels".into()));
     }
+    if kind == Kind::Mixture && class_of.is_some() {
+        return Err(Error::Invalid(
+            "--kind mixture fits no per-class densities yet; drop --labels, or use --kind class-gaussian or flow".into(),
+        ));
+    }
     // Class means (input space) over the training rows, for pooling.
     let class_means: Vec<Vec<f64>> = match (&class_of, kind) {
         (Some(of), Kind::ClassGaussian) => (0..classes.len())
@@ -632,10 +705,10 @@ fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
             .collect(),
         _ => Vec::new(),
     };
-    let few_rows = (train_idx.len() as f64) < FEW_ROWS_PER_DIM * x.cols as f64;
+    let all_val_rows: Vec<usize> = run.val.map(|v| (0..v.rows).collect()).unwrap_or_default();
     let how = Covariance {
         classes: class_of.as_deref().filter(|_| kind == Kind::ClassGaussian).map(|of| (of, &class_means[..])),
-        ledoit_wolf: kind != Kind::Flow && few_rows,
+        shrinkage: shrinkage_for(kind, opts.shrinkage, (x, &train_idx, &val_idx), run.val.map(|v| (v, &all_val_rows[..]))),
     };
     let pre = Preprocessor::fit_with(x, &train_idx, method, dead_threshold, &how).map_err(Error::Invalid)?;
     let settings = Settings::resolve(opts, train_idx.len(), pre.dim(), run.val.is_some(), run.labels.is_some())?;
@@ -646,7 +719,7 @@ fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
         depth: settings.depth,
         clamp: settings.clamp,
         mixing: settings.mixing,
-        classes: if kind == Kind::Gaussian { 0 } else { classes.len() },
+        classes: if matches!(kind, Kind::Gaussian | Kind::Mixture) { 0 } else { classes.len() },
     };
     let mut flow = Flow::new(spec, settings.seed);
     for (c, mean) in class_means.iter().enumerate() {
@@ -658,8 +731,34 @@ fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
         flow.params[at..at + flow.spec.dim].copy_from_slice(&u);
     }
     let meta = skeleton_meta(x.cols, &pre, &flow, &settings, classes)?;
-    let model = Model { meta, pre, flow, background: None, refs: ScoringRefs::default() };
+    let model = Model { meta, pre, flow, background: None, mixture: None, refs: ScoringRefs::default() };
     new_learned(run, model, settings, kind != Kind::Flow)
+}
+
+/// The covariance shrinkage of a Gaussian kind: as asked; by default the
+/// intensity with the best log-likelihood on the held-out rows (a separate
+/// file, or the split's); without held-out rows, Ledoit-Wolf when rows are
+/// few per feature (below [`FEW_ROWS_PER_DIM`]), else none. Flows whiten
+/// and mixtures whiten with the maximum-likelihood covariance.
+fn shrinkage_for<'a>(
+    kind: Kind,
+    asked: Option<ShrinkageOption>,
+    (x, train, split_val): (&'a Dataset, &[usize], &'a [usize]),
+    val_file: Option<(&'a Dataset, &'a [usize])>,
+) -> Shrinkage<'a> {
+    if matches!(kind, Kind::Flow | Kind::Mixture) {
+        return Shrinkage::None;
+    }
+    match asked {
+        Some(ShrinkageOption::LedoitWolf) => Shrinkage::LedoitWolf,
+        Some(ShrinkageOption::Fixed(v)) => Shrinkage::Fixed(v),
+        Some(ShrinkageOption::Validated) | None => match val_file {
+            Some((v, rows)) => Shrinkage::Validated(v, rows),
+            None if !split_val.is_empty() => Shrinkage::Validated(x, split_val),
+            None if (train.len() as f64) < FEW_ROWS_PER_DIM * x.cols as f64 => Shrinkage::LedoitWolf,
+            None => Shrinkage::None,
+        },
+    }
 }
 
 /// Training state for an untrained `model`: the untrained flow (identity,
@@ -775,7 +874,7 @@ fn labels_checksum(labels: &[i64]) -> u64 {
 fn skeleton_meta(cols: usize, pre: &Preprocessor, flow: &Flow, s: &Settings, classes: Vec<ClassCount>) -> Result<Meta> {
     Ok(Meta {
         format: "tidemark-model".into(),
-        format_version: format_version_for(flow.spec.mixing),
+        format_version: format_version_for(flow.spec.mixing, s.kind),
         created_by: format!("tidemark {}", env!("CARGO_PKG_VERSION")),
         input_dim: cols,
         preprocessing: PreprocessingMeta {
@@ -801,6 +900,7 @@ fn skeleton_meta(cols: usize, pre: &Preprocessor, flow: &Flow, s: &Settings, cla
         background: None,
         background_noise: s.background_noise,
         scoring: ScoringMeta::default(),
+        mixture: None,
     })
 }
 

@@ -5,6 +5,7 @@
 use super::{format_version_for, Meta, Model, ScoringRefs, FORMAT_VERSION, META_KEY};
 use crate::error::{Error, Result};
 use crate::flow::{Flow, FlowSpec};
+use crate::mixture::Mixture;
 use crate::preprocess::{Method, Preprocessor};
 use safetensors::{Dtype, SafeTensors};
 use std::collections::HashMap;
@@ -45,6 +46,12 @@ impl Model {
         flow_tensors(&self.flow, "flow", &mut put);
         if let Some(bg) = &self.background {
             flow_tensors(bg, "background", &mut put);
+        }
+        if let Some(m) = &self.mixture {
+            let (c, d) = (m.components(), m.dim);
+            put("mixture.log_weights", Dtype::F64, vec![c], le_bytes_f64(&m.log_weights));
+            put("mixture.means", Dtype::F64, vec![c, d], le_bytes_f64(&m.means));
+            put("mixture.precision_cholesky", Dtype::F64, vec![c, d, d], le_bytes_f64(&m.precision_cholesky));
         }
         let r = &self.refs;
         let kde_cols = self.meta.scoring.kde_columns.len().max(1);
@@ -168,6 +175,10 @@ impl Model {
             Some(spec) => Some(read_flow(&tensors, "background", spec, meta.format_version)?),
             None => None,
         };
+        let mixture = match &meta.mixture {
+            Some(mm) => Some(read_mixture(&tensors, mm.components, k)?),
+            None => None,
+        };
         let s = &meta.scoring;
         let refs = ScoringRefs {
             kde_points: if s.kde_rows == 0 {
@@ -181,7 +192,7 @@ impl Model {
                 tensors.f64s("scores.validation_nll", &[s.validation_rows])?
             },
         };
-        Ok(Model { meta, pre, flow, background, refs })
+        Ok(Model { meta, pre, flow, background, mixture, refs })
     }
 }
 
@@ -191,6 +202,9 @@ const MAX_FEATURES: usize = 1 << 24;
 const MAX_LAYERS: usize = 1 << 12;
 const MAX_DEPTH: usize = 1 << 8;
 const MAX_HIDDEN: usize = 1 << 20;
+const MAX_COMPONENTS: usize = 1 << 16;
+/// Most numbers a mixture's precision factors may hold (8 GiB of f64).
+const MAX_MIXTURE_VALUES: usize = 1 << 30;
 
 /// Metadata fields checked against each other and sane bounds, before any
 /// of them sizes an allocation.
@@ -252,6 +266,25 @@ fn check_meta(path: &Path, meta: &Meta) -> Result<()> {
     ];
     if let Some((field, v)) = finite.iter().find(|(_, v)| !v.is_finite()) {
         return bad(field, format!("is {v}"));
+    }
+    match (&meta.mixture, meta.kind) {
+        (Some(m), crate::model::Kind::Mixture) => {
+            if m.components == 0 || m.components > MAX_COMPONENTS {
+                return bad("mixture.components", format!("is {}, outside 1..={MAX_COMPONENTS}", m.components));
+            }
+            if k.checked_mul(k).and_then(|kk| kk.checked_mul(m.components)).is_none_or(|n| n > MAX_MIXTURE_VALUES) {
+                return bad("mixture.components", format!("{} components of {k} dims are too large", m.components));
+            }
+            if meta.flow.layers != 0 || meta.flow_dims != k || meta.background.is_some() || !meta.classes.is_empty() {
+                return bad("mixture", "comes with a flow, a background flow or classes".into());
+            }
+            if !(m.ridge.is_finite() && m.ridge >= 0.0) {
+                return bad("mixture.ridge", format!("is {}", m.ridge));
+            }
+        }
+        (None, crate::model::Kind::Mixture) => return bad("kind", "is mixture but no mixture is described".into()),
+        (Some(_), _) => return bad("mixture", "is set for a model that is not a mixture".into()),
+        (None, _) => {}
     }
     let s = &meta.scoring;
     let kde_cols = s.kde_columns.len();
@@ -458,7 +491,7 @@ fn flow_tensors(flow: &Flow, prefix: &str, put: &mut dyn FnMut(&str, Dtype, Vec<
 /// checked before the flow is built, so the metadata cannot size the
 /// flow's parameters beyond what the file holds.
 fn read_flow(t: &Tensors, prefix: &str, spec: &FlowSpec, version: u32) -> Result<Flow> {
-    if version < format_version_for(spec.mixing) {
+    if version < format_version_for(spec.mixing, crate::model::Kind::Flow) {
         return Err(Error::model(t.path, format!("{prefix}: LU mixing in a version {version} model file")));
     }
     let (dim, h) = (spec.dim, spec.hidden);
@@ -505,6 +538,29 @@ fn read_flow(t: &Tensors, prefix: &str, spec: &FlowSpec, version: u32) -> Result
     }
     flow.perms = perms;
     Ok(flow)
+}
+
+/// A mixture of `c` components over `d` dims: weights that are
+/// log-probabilities summing to 1, finite means, and precision factors
+/// that are upper triangular with a positive diagonal.
+fn read_mixture(t: &Tensors, c: usize, d: usize) -> Result<Mixture> {
+    let log_weights = t.f64s("mixture.log_weights", &[c])?;
+    let means = t.f64s("mixture.means", &[c, d])?;
+    let precision_cholesky = t.f64s("mixture.precision_cholesky", &[c, d, d])?;
+    let total = crate::linalg::log_sum_exp(&log_weights);
+    if log_weights.iter().any(|w| !(w.is_finite() && *w <= 0.0)) || (total.abs() > 1e-6) {
+        return Err(Error::model(t.path, "tensor 'mixture.log_weights' does not hold log-probabilities summing to 1"));
+    }
+    for w in precision_cholesky.chunks(d * d) {
+        let upper = (0..d).all(|i| w[i * d + i] > 0.0 && (0..i).all(|j| w[i * d + j] == 0.0));
+        if !upper {
+            return Err(Error::model(
+                t.path,
+                "tensor 'mixture.precision_cholesky' holds a factor that is not upper triangular with a positive diagonal",
+            ));
+        }
+    }
+    Ok(Mixture { dim: d, log_weights, means, precision_cholesky })
 }
 
 fn le_bytes_f32(v: &[f32]) -> Vec<u8> {

@@ -1,0 +1,432 @@
+//! A Gaussian mixture with full covariances over whitened vectors, fitted by
+//! expectation-maximisation (Dempster, Laird & Rubin 1977) from a seeded
+//! k-means++ start (Arthur & Vassilvitskii 2007).
+//!
+//! Each component keeps the Cholesky factor of its precision, W with
+//! W W^T = inverse covariance (upper triangular), so that the squared
+//! Mahalanobis distance of a row u is ||u W - mu W||^2: one matrix product
+//! per component for a whole block of rows. The covariance update and the
+//! log-likelihood follow the usual full-covariance EM; a ridge is added to
+//! every covariance's diagonal.
+
+use crate::linalg::{log_sum_exp, matmul, View};
+use rand::rngs::StdRng;
+use rand::{Rng, SeedableRng};
+use rand_distr::{Distribution, StandardNormal};
+
+const HALF_LN_2PI: f64 = 0.918_938_533_204_672_8;
+
+/// Rows per block when evaluating, to bound scratch memory.
+const BLOCK: usize = 1024;
+
+/// A fitted mixture over `dim`-dimensional vectors.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Mixture {
+    pub dim: usize,
+    /// ln of each component's weight (they sum to 1).
+    pub log_weights: Vec<f64>,
+    /// `components x dim`.
+    pub means: Vec<f64>,
+    /// `components x dim x dim`, row-major: each component's W.
+    pub precision_cholesky: Vec<f64>,
+}
+
+/// Per-row results of [`Mixture::evaluate`].
+#[derive(Clone, Debug, Default)]
+pub struct MixtureEvaluation {
+    /// ln p(u).
+    pub log_density: Vec<f64>,
+    /// The most responsible component and its posterior probability.
+    pub component: Vec<usize>,
+    pub probability: Vec<f64>,
+    /// Squared Mahalanobis distance to the most responsible component.
+    pub mahalanobis_sq: Vec<f64>,
+}
+
+/// How EM ran.
+#[derive(Clone, Copy, Debug)]
+pub struct EmReport {
+    pub iterations: usize,
+    /// Mean log-likelihood of the training rows at the last E-step.
+    pub mean_log_likelihood: f64,
+    pub converged: bool,
+}
+
+impl Mixture {
+    pub fn components(&self) -> usize {
+        self.log_weights.len()
+    }
+
+    fn mean(&self, k: usize) -> &[f64] {
+        &self.means[k * self.dim..(k + 1) * self.dim]
+    }
+
+    fn w(&self, k: usize) -> &[f64] {
+        &self.precision_cholesky[k * self.dim * self.dim..(k + 1) * self.dim * self.dim]
+    }
+
+    /// ln N(u; mu_k, Sigma_k) for every row and component (`rows x K`),
+    /// and the squared Mahalanobis distances (same layout).
+    fn log_gaussians(&self, u: &[f64], rows: usize) -> (Vec<f64>, Vec<f64>) {
+        let (d, kk) = (self.dim, self.components());
+        let mut out = vec![0.0f64; rows * kk];
+        let mut maha = vec![0.0f64; rows * kk];
+        let mut y = vec![0.0f64; rows * d];
+        for k in 0..kk {
+            let w = self.w(k);
+            matmul(&mut y, d, false, View::rows(u, rows, d, d), View::rows(w, d, d, d));
+            // mu W, subtracted from every row of u W.
+            let mut mw = vec![0.0f64; d];
+            matmul(&mut mw, d, false, View::rows(self.mean(k), 1, d, d), View::rows(w, d, d, d));
+            let log_det_w: f64 = (0..d).map(|i| w[i * d + i].ln()).sum();
+            for r in 0..rows {
+                let q: f64 = y[r * d..(r + 1) * d].iter().zip(&mw).map(|(a, b)| (a - b) * (a - b)).sum();
+                maha[r * kk + k] = q;
+                out[r * kk + k] = -0.5 * q - d as f64 * HALF_LN_2PI + log_det_w;
+            }
+        }
+        (out, maha)
+    }
+
+    /// ln p(u) and the nearest-component statistics for `rows` rows of `u`.
+    pub fn evaluate(&self, u: &[f64], rows: usize) -> MixtureEvaluation {
+        let (d, kk) = (self.dim, self.components());
+        let mut e = MixtureEvaluation::default();
+        for start in (0..rows).step_by(BLOCK) {
+            let n = BLOCK.min(rows - start);
+            let (mut lp, maha) = self.log_gaussians(&u[start * d..(start + n) * d], n);
+            for r in 0..n {
+                let row = &mut lp[r * kk..(r + 1) * kk];
+                for (v, w) in row.iter_mut().zip(&self.log_weights) {
+                    *v += w;
+                }
+                let total = log_sum_exp(row);
+                let (best, top) =
+                    row.iter().enumerate().fold((0, f64::NEG_INFINITY), |b, (k, &v)| if v > b.1 { (k, v) } else { b });
+                e.log_density.push(total);
+                e.component.push(best);
+                e.probability.push((top - total).exp());
+                e.mahalanobis_sq.push(maha[r * kk + best]);
+            }
+        }
+        e
+    }
+
+    /// Mean ln p(u) over `rows` rows.
+    pub fn mean_log_density(&self, u: &[f64], rows: usize) -> f64 {
+        self.evaluate(u, rows).log_density.iter().sum::<f64>() / rows as f64
+    }
+
+    /// Draw `n` vectors: a component by weight, then its Gaussian
+    /// (u = mu + W^{-T} eps, since W^{-T} W^{-1} is the covariance).
+    pub fn sample(&self, n: usize, rng: &mut StdRng) -> Vec<f64> {
+        let d = self.dim;
+        let weights: Vec<f64> = self.log_weights.iter().map(|w| w.exp()).collect();
+        let pick = rand_distr::weighted::WeightedIndex::new(&weights).expect("mixture weights are positive");
+        let mut out = Vec::with_capacity(n * d);
+        for _ in 0..n {
+            let k = pick.sample(rng);
+            let w = self.w(k);
+            let eps: Vec<f64> = (0..d).map(|_| StandardNormal.sample(rng)).collect();
+            // Solve W^T v = eps; W^T is lower triangular: forward substitution.
+            let mut v = vec![0.0f64; d];
+            for i in 0..d {
+                let s: f64 = (0..i).map(|j| w[j * d + i] * v[j]).sum();
+                v[i] = (eps[i] - s) / w[i * d + i];
+            }
+            out.extend(v.iter().zip(self.mean(k)).map(|(a, m)| a + m));
+        }
+        out
+    }
+}
+
+/// W from a covariance: its lower Cholesky factor L, then W = L^{-T}.
+/// `None` when the covariance is not positive definite.
+fn precision_cholesky_of(cov: &[f64], d: usize) -> Option<Vec<f64>> {
+    let chol = nalgebra::Cholesky::new(nalgebra::DMatrix::from_row_slice(d, d, cov))?;
+    let l = chol.l();
+    let inv = l.solve_lower_triangular(&nalgebra::DMatrix::identity(d, d))?;
+    // W = (L^{-1})^T, written row-major: W[i][j] = inv[j][i].
+    let mut w = vec![0.0f64; d * d];
+    for i in 0..d {
+        for j in 0..d {
+            w[i * d + j] = inv[(j, i)];
+        }
+    }
+    w.iter().all(|v| v.is_finite()).then_some(w)
+}
+
+/// The covariance (W W^T)^{-1} = W^{-T} W^{-1}.
+#[cfg(test)]
+fn covariance_of(w: &[f64], d: usize) -> Option<Vec<f64>> {
+    let wm = nalgebra::DMatrix::from_row_slice(d, d, w);
+    let prec = &wm * wm.transpose();
+    let cov = prec.try_inverse()?;
+    Some((0..d).flat_map(|i| (0..d).map(move |j| (i, j))).map(|(i, j)| 0.5 * (cov[(i, j)] + cov[(j, i)])).collect())
+}
+
+/// A mixture and its covariances (`components x dim x dim`, ridge included).
+#[derive(Clone, Debug)]
+pub struct Fitted {
+    pub mixture: Mixture,
+    pub covariances: Vec<f64>,
+}
+
+impl Fitted {
+    /// The same mixture with `extra` added to every covariance's diagonal.
+    pub fn with_ridge(&self, extra: f64) -> Option<Mixture> {
+        let d = self.mixture.dim;
+        let mut precision_cholesky = Vec::with_capacity(self.covariances.len());
+        for cov in self.covariances.chunks(d * d) {
+            let mut cov = cov.to_vec();
+            for i in 0..d {
+                cov[i * d + i] += extra;
+            }
+            precision_cholesky.extend(precision_cholesky_of(&cov, d)?);
+        }
+        Some(Mixture { precision_cholesky, ..self.mixture.clone() })
+    }
+}
+
+/// Weights, means and covariances from responsibilities (`rows x K`), the
+/// M-step; then the mixture that they define.
+pub fn maximise(u: &[f64], rows: usize, d: usize, resp: &[f64], ridge: f64) -> Option<Fitted> {
+    let kk = resp.len() / rows;
+    let mut log_weights = Vec::with_capacity(kk);
+    let mut means = vec![0.0f64; kk * d];
+    let mut precision_cholesky = Vec::with_capacity(kk * d * d);
+    let mut covariances = Vec::with_capacity(kk * d * d);
+    let mut scaled = vec![0.0f64; rows * d];
+    // Tiny floor on component mass, as is common practice, so that an empty
+    // component does not divide by zero.
+    let floor = 10.0 * f64::EPSILON;
+    for k in 0..kk {
+        let nk: f64 = (0..rows).map(|r| resp[r * kk + k]).sum::<f64>() + floor;
+        let mean = &mut means[k * d..(k + 1) * d];
+        for r in 0..rows {
+            let p = resp[r * kk + k];
+            for (m, &v) in mean.iter_mut().zip(&u[r * d..(r + 1) * d]) {
+                *m += p * v;
+            }
+        }
+        mean.iter_mut().for_each(|m| *m /= nk);
+        for r in 0..rows {
+            let s = resp[r * kk + k].sqrt();
+            for j in 0..d {
+                scaled[r * d + j] = s * (u[r * d + j] - mean[j]);
+            }
+        }
+        let mut cov = vec![0.0f64; d * d];
+        matmul(&mut cov, d, false, View::transposed(&scaled, rows, d), View::rows(&scaled, rows, d, d));
+        for i in 0..d {
+            for j in 0..d {
+                cov[i * d + j] /= nk;
+            }
+            cov[i * d + i] += ridge;
+        }
+        precision_cholesky.extend(precision_cholesky_of(&cov, d)?);
+        covariances.extend(cov);
+        log_weights.push((nk / rows as f64).ln());
+    }
+    // Renormalise: the floor may have added a hair of mass.
+    let total = log_sum_exp(&log_weights);
+    log_weights.iter_mut().for_each(|w| *w -= total);
+    Some(Fitted { mixture: Mixture { dim: d, log_weights, means, precision_cholesky }, covariances })
+}
+
+/// Responsibilities (`rows x K`) and the mean log-likelihood: the E-step.
+fn expect(m: &Mixture, u: &[f64], rows: usize) -> (Vec<f64>, f64) {
+    let kk = m.components();
+    let (mut lp, _) = m.log_gaussians(u, rows);
+    let mut total = 0.0;
+    for row in lp.chunks_mut(kk) {
+        for (v, w) in row.iter_mut().zip(&m.log_weights) {
+            *v += w;
+        }
+        let norm = log_sum_exp(row);
+        total += norm;
+        row.iter_mut().for_each(|v| *v = (*v - norm).exp());
+    }
+    (lp, total / rows as f64)
+}
+
+/// EM from initial responsibilities: the M-step on them, then up to
+/// `max_iter` rounds of E-step and M-step, stopping when the mean
+/// log-likelihood gains less than `tol`. `None` when a covariance stops
+/// being positive definite.
+pub fn em(u: &[f64], rows: usize, d: usize, init: &[f64], ridge: f64, max_iter: usize, tol: f64) -> Option<(Fitted, EmReport)> {
+    let mut m = maximise(u, rows, d, init, ridge)?;
+    let mut report = EmReport { iterations: 0, mean_log_likelihood: f64::NEG_INFINITY, converged: false };
+    for it in 1..=max_iter {
+        let (resp, ll) = expect(&m.mixture, u, rows);
+        m = maximise(u, rows, d, &resp, ridge)?;
+        let gain = ll - report.mean_log_likelihood;
+        report.iterations = it;
+        report.mean_log_likelihood = ll;
+        if gain.abs() < tol {
+            report.converged = true;
+            break;
+        }
+    }
+    Some((m, report))
+}
+
+/// Hard responsibilities from seeded k-means++ seeding followed by a few
+/// rounds of Lloyd's algorithm: each row belongs wholly to its nearest centre.
+pub fn kmeans_start(u: &[f64], rows: usize, d: usize, k: usize, seed: u64) -> Vec<f64> {
+    let mut rng = StdRng::seed_from_u64(seed);
+    let mut centres: Vec<f64> = Vec::with_capacity(k * d);
+    let first = rng.random_range(0..rows);
+    centres.extend_from_slice(&u[first * d..(first + 1) * d]);
+    let sq = |r: usize, c: &[f64]| -> f64 { u[r * d..(r + 1) * d].iter().zip(c).map(|(a, b)| (a - b) * (a - b)).sum() };
+    let mut nearest: Vec<f64> = (0..rows).map(|r| sq(r, &centres[..d])).collect();
+    while centres.len() < k * d {
+        let total: f64 = nearest.iter().sum();
+        let pick = if total > 0.0 {
+            let mut target = rng.random::<f64>() * total;
+            nearest.iter().position(|&v| {
+                target -= v;
+                target <= 0.0
+            })
+            .unwrap_or(rows - 1)
+        } else {
+            rng.random_range(0..rows)
+        };
+        let c = u[pick * d..(pick + 1) * d].to_vec();
+        for (r, best) in nearest.iter_mut().enumerate() {
+            *best = best.min(sq(r, &c));
+        }
+        centres.extend(c);
+    }
+    let mut assign = vec![0usize; rows];
+    for _ in 0..LLOYD_ROUNDS {
+        assign = nearest_centres(u, rows, d, &centres);
+        let mut sums = vec![0.0f64; k * d];
+        let mut counts = vec![0usize; k];
+        for (r, &c) in assign.iter().enumerate() {
+            counts[c] += 1;
+            for j in 0..d {
+                sums[c * d + j] += u[r * d + j];
+            }
+        }
+        for c in 0..k {
+            if counts[c] > 0 {
+                for j in 0..d {
+                    centres[c * d + j] = sums[c * d + j] / counts[c] as f64;
+                }
+            }
+        }
+    }
+    let mut resp = vec![0.0f64; rows * k];
+    for (r, &c) in assign.iter().enumerate() {
+        resp[r * k + c] = 1.0;
+    }
+    resp
+}
+
+/// Lloyd rounds after seeding: enough to settle the start; EM does the rest.
+const LLOYD_ROUNDS: usize = 10;
+
+/// Index of the nearest centre of every row (||u||^2 - 2 u.c + ||c||^2).
+fn nearest_centres(u: &[f64], rows: usize, d: usize, centres: &[f64]) -> Vec<usize> {
+    let k = centres.len() / d;
+    let norms: Vec<f64> = centres.chunks(d).map(|c| c.iter().map(|v| v * v).sum()).collect();
+    let mut dots = vec![0.0f64; rows * k];
+    matmul(&mut dots, k, false, View::rows(u, rows, d, d), View::transposed(centres, k, d));
+    (0..rows)
+        .map(|r| {
+            (0..k)
+                .map(|c| norms[c] - 2.0 * dots[r * k + c])
+                .enumerate()
+                .fold((0, f64::INFINITY), |b, (c, v)| if v < b.1 { (c, v) } else { b })
+                .0
+        })
+        .collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A 2-D mixture's density integrates to 1: a Riemann sum over a grid
+    /// wide enough to hold all but a negligible tail.
+    #[test]
+    fn density_integrates_to_one_on_a_grid() {
+        let cov_a = [1.0, 0.6, 0.6, 0.8];
+        let cov_b = [0.3, -0.1, -0.1, 0.5];
+        let mut precision_cholesky = precision_cholesky_of(&cov_a, 2).unwrap();
+        precision_cholesky.extend(precision_cholesky_of(&cov_b, 2).unwrap());
+        let m = Mixture {
+            dim: 2,
+            log_weights: vec![0.3f64.ln(), 0.7f64.ln()],
+            means: vec![-1.0, 0.5, 2.0, -1.0],
+            precision_cholesky,
+        };
+        let (lo, hi, steps) = (-9.0, 9.0, 600);
+        let h = (hi - lo) / steps as f64;
+        let grid: Vec<f64> = (0..steps * steps)
+            .flat_map(|i| [lo + (i / steps) as f64 * h + h / 2.0, lo + (i % steps) as f64 * h + h / 2.0])
+            .collect();
+        let total: f64 = m.evaluate(&grid, steps * steps).log_density.iter().map(|v| v.exp() * h * h).sum();
+        assert!((total - 1.0).abs() < 1e-6, "integral {total}");
+    }
+
+    /// Closed form: one component is the Gaussian log-density
+    /// -(d/2) ln 2 pi - ln|Sigma|/2 - q/2, with q and |Sigma| by hand.
+    #[test]
+    fn one_component_is_the_gaussian_log_density() {
+        let cov = [2.0, 0.5, 0.5, 1.0];
+        let m =
+            Mixture { dim: 2, log_weights: vec![0.0], means: vec![1.0, -1.0], precision_cholesky: precision_cholesky_of(&cov, 2).unwrap() };
+        let x = [2.0, 0.5];
+        let (dx, dy) = (1.0, 1.5);
+        let det: f64 = 2.0 * 1.0 - 0.25;
+        let q = (1.0 * dx * dx - 2.0 * 0.5 * dx * dy + 2.0 * dy * dy) / det;
+        let want = -std::f64::consts::LN_2 - std::f64::consts::PI.ln() - 0.5 * det.ln() - 0.5 * q;
+        let got = m.evaluate(&x, 1);
+        assert!((got.log_density[0] - want).abs() < 1e-12, "{} vs {want}", got.log_density[0]);
+        assert!((got.mahalanobis_sq[0] - q).abs() < 1e-12);
+        let back = covariance_of(&m.precision_cholesky, 2).unwrap();
+        for (a, b) in back.iter().zip(cov) {
+            assert!((a - b).abs() < 1e-12);
+        }
+    }
+
+    /// Samples from a mixture have its weights, means and covariances
+    /// (law of large numbers; 200,000 draws, tolerances ~5 standard errors).
+    #[test]
+    fn samples_follow_the_mixture() {
+        let cov = [1.0, 0.6, 0.6, 0.8];
+        let w = precision_cholesky_of(&cov, 2).unwrap();
+        let m = Mixture { dim: 2, log_weights: vec![0.0], means: vec![3.0, -2.0], precision_cholesky: w };
+        let n = 200_000;
+        let s = m.sample(n, &mut StdRng::seed_from_u64(1));
+        let mean = |j: usize| s.iter().skip(j).step_by(2).sum::<f64>() / n as f64;
+        let (m0, m1) = (mean(0), mean(1));
+        assert!((m0 - 3.0).abs() < 0.012 && (m1 + 2.0).abs() < 0.012, "{m0} {m1}");
+        let c01 = s.chunks(2).map(|p| (p[0] - m0) * (p[1] - m1)).sum::<f64>() / n as f64;
+        assert!((c01 - 0.6).abs() < 0.015, "{c01}");
+    }
+
+    /// EM on two well-separated clusters finds them from a k-means++ start.
+    #[test]
+    fn em_recovers_two_separated_clusters() {
+        let mut rng = StdRng::seed_from_u64(3);
+        let rows = 2000;
+        let u: Vec<f64> = (0..rows)
+            .flat_map(|r| {
+                let c = if r % 4 == 0 { 6.0 } else { -2.0 };
+                let a: f64 = StandardNormal.sample(&mut rng);
+                let b: f64 = StandardNormal.sample(&mut rng);
+                [c + a, 0.5 * b]
+            })
+            .collect();
+        let init = kmeans_start(&u, rows, 2, 2, 0);
+        let (fitted, report) = em(&u, rows, 2, &init, 1e-6, 100, 1e-6).unwrap();
+        assert!(report.converged);
+        let m = fitted.mixture;
+        let mut weights: Vec<f64> = m.log_weights.iter().map(|w| w.exp()).collect();
+        weights.sort_by(f64::total_cmp);
+        assert!((weights[0] - 0.25).abs() < 0.01, "{weights:?}");
+    }
+}
