@@ -1,0 +1,102 @@
+//! The mixture kind and validated shrinkage against scikit-learn and scipy
+//! (values from scripts/make_density_fixtures.py, tests/fixtures/density.json).
+
+mod common;
+
+use tidemark::data::Dataset;
+use tidemark::mixture::em;
+use tidemark::model::Kind;
+use tidemark::train::{fit, FitOptions, Run};
+
+fn density() -> serde_json::Value {
+    serde_json::from_str(&std::fs::read_to_string(common::fixture("density.json")).unwrap()).unwrap()
+}
+
+fn close(a: f64, b: f64, rel: f64) -> bool {
+    (a - b).abs() <= rel * b.abs().max(1.0)
+}
+
+/// EM from the same initial responsibilities gives scikit-learn's
+/// GaussianMixture weights, means, covariances and mean log-likelihood
+/// after the same number of rounds, to 1e-6 relative.
+#[test]
+fn em_matches_scikit_learn_gaussian_mixture() {
+    let want = &density()["mixture_em"];
+    let x = common::floats(&want["x"]);
+    let d = 4;
+    let rows = x.len() / d;
+    let resp = common::floats(&want["initial_responsibilities"]);
+    let rounds = want["rounds"].as_u64().unwrap() as usize;
+    let (fitted, report) = em(&x, rows, d, &resp, want["ridge"].as_f64().unwrap(), rounds, 0.0).unwrap();
+    assert_eq!(report.iterations, rounds);
+    let m = &fitted.mixture;
+    for (a, b) in m.log_weights.iter().map(|w| w.exp()).zip(common::floats(&want["weights"])) {
+        assert!(close(a, b, 1e-6), "weight {a} vs {b}");
+    }
+    for (a, b) in m.means.iter().zip(common::floats(&want["means"])) {
+        assert!(close(*a, b, 1e-6), "mean {a} vs {b}");
+    }
+    for (a, b) in fitted.covariances.iter().zip(common::floats(&want["covariances"])) {
+        assert!(close(*a, b, 1e-6), "covariance {a} vs {b}");
+    }
+    let ll = m.mean_log_density(&x, rows);
+    let want_ll = want["mean_log_likelihood"].as_f64().unwrap();
+    assert!(close(ll, want_ll, 1e-6), "mean log-likelihood {ll} vs {want_ll}");
+    // The last E-step's value is scikit-learn's lower bound.
+    let lb = want["lower_bound"].as_f64().unwrap();
+    assert!(close(report.mean_log_likelihood, lb, 1e-6), "{} vs {lb}", report.mean_log_likelihood);
+}
+
+/// `--kind gaussian` with held-out rows picks the shrinkage intensity whose
+/// held-out log-likelihood scipy ranks best (here neither 0 nor the
+/// Ledoit-Wolf estimate), and scores the held-out rows with scipy's
+/// log-density under that covariance.
+#[test]
+fn gaussian_shrinkage_is_chosen_on_held_out_rows() {
+    let want = &density()["shrinkage_validation"];
+    let train = Dataset::open(&common::fixture("wine_train40.npy"), None).unwrap();
+    let held = Dataset::open(&common::fixture("wine_heldout.npy"), None).unwrap();
+    let opts = FitOptions { kind: Some(Kind::Gaussian), quiet: true, threads: Some(1), ..FitOptions::default() };
+    let model = tidemark::train::fit_run(&Run { val: Some(&held), ..Run::new(&train) }, &opts).unwrap();
+    let best = want["best"].as_f64().unwrap();
+    assert!(close(model.pre.shrinkage, best, 1e-9), "chose {} instead of {best}", model.pre.shrinkage);
+    let ll = model.evaluate(&held, 1).log_likelihood;
+    let mean = ll.iter().sum::<f64>() / ll.len() as f64;
+    let want_ll = want["best_mean_log_likelihood"].as_f64().unwrap();
+    assert!(close(mean, want_ll, 1e-5), "{mean} vs scipy {want_ll}");
+    // Asking for Ledoit-Wolf gives scikit-learn's estimate.
+    let lw = FitOptions { shrinkage: Some("ledoit-wolf".parse().unwrap()), ..opts };
+    let model = tidemark::train::fit_run(&Run { val: Some(&held), ..Run::new(&train) }, &lw).unwrap();
+    let want_lw = want["ledoit_wolf"].as_f64().unwrap();
+    assert!(close(model.pre.shrinkage, want_lw, 1e-6), "{} vs {want_lw}", model.pre.shrinkage);
+}
+
+/// On rows drawn from a two-cluster mixture, `--kind mixture` keeps more
+/// than one component and beats the single Gaussian on held-out rows; the
+/// model file round-trips to the same log-likelihoods.
+#[test]
+fn mixture_kind_beats_one_gaussian_on_clustered_rows_and_round_trips() {
+    use rand::{rngs::StdRng, SeedableRng};
+    use rand_distr::{Distribution, StandardNormal};
+    let mut rng = StdRng::seed_from_u64(5);
+    let d = 6;
+    let data: Vec<f32> = (0..3000)
+        .flat_map(|r| {
+            let shift = if r % 3 == 0 { 5.0 } else { -2.5 };
+            let v: Vec<f32> = (0..d).map(|j| <StandardNormal as Distribution<f32>>::sample(&StandardNormal, &mut rng) + if j < 2 { shift } else { 0.0 }).collect();
+            v
+        })
+        .collect();
+    let x = Dataset::in_memory(tidemark::data::Matrix::new(3000, d, data));
+    let opts = FitOptions { quiet: true, threads: Some(1), ..FitOptions::default() };
+    let mixture = fit(&x, None, &FitOptions { kind: Some(Kind::Mixture), ..opts.clone() }).unwrap();
+    let gaussian = fit(&x, None, &FitOptions { kind: Some(Kind::Gaussian), ..opts }).unwrap();
+    let (tm, tg) = (&mixture.meta.training, &gaussian.meta.training);
+    assert!(mixture.meta.mixture.as_ref().unwrap().components >= 2);
+    assert!(tm.best_validation_nll < tg.best_validation_nll - 0.5, "{} vs {}", tm.best_validation_nll, tg.best_validation_nll);
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("m.safetensors");
+    mixture.save(&path).unwrap();
+    let back = tidemark::model::Model::load(&path).unwrap();
+    assert_eq!(back.evaluate(&x, 1).log_likelihood, mixture.evaluate(&x, 1).log_likelihood);
+}
