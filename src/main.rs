@@ -14,7 +14,7 @@ use tidemark::flow::Mixing;
 use tidemark::model::{Kind, Model};
 use tidemark::output::{self, check_files, note, FileKey, Input, Output};
 use tidemark::preprocess::Method;
-use tidemark::train::{ShrinkageOption, default_threads, Checkpoint, FitOptions, Run, Source};
+use tidemark::train::{default_threads, Checkpoint, FitOptions, Run, ShrinkageOption, Source};
 use tidemark::{check, columnar, data, demo, evaluate, input, report, score, stream, Error, Result};
 
 #[derive(Parser)]
@@ -331,6 +331,9 @@ struct FitArgs {
     /// Covariance shrinkage of the Gaussian kinds: validated (the intensity with the best held-out log-likelihood, Ledoit-Wolf's among the candidates), ledoit-wolf, or an intensity in [0, 1) [default: validated].
     #[arg(long)]
     shrinkage: Option<ShrinkageOption>,
+    /// Fit exactly the configuration the options give (a flow unless rows per feature are few) instead of comparing density kinds on the validation rows.
+    #[arg(long)]
+    no_search: bool,
     /// Components of the mixture kind [default: chosen on the validation rows among 1, 2, 4, ... 64].
     #[arg(long)]
     components: Option<usize>,
@@ -406,6 +409,7 @@ impl FitArgs {
             threads: self.threads,
             shrinkage: self.shrinkage,
             components: self.components,
+            no_search: self.no_search,
             quiet: self.quiet,
             inject_nan_at_step: self.inject_nan_at_step,
         }

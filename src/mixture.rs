@@ -254,7 +254,15 @@ fn expect(m: &Mixture, u: &[f64], rows: usize) -> (Vec<f64>, f64) {
 /// `max_iter` rounds of E-step and M-step, stopping when the mean
 /// log-likelihood gains less than `tol`. `None` when a covariance stops
 /// being positive definite.
-pub fn em(u: &[f64], rows: usize, d: usize, init: &[f64], ridge: f64, max_iter: usize, tol: f64) -> Option<(Fitted, EmReport)> {
+pub fn em(
+    u: &[f64],
+    rows: usize,
+    d: usize,
+    init: &[f64],
+    ridge: f64,
+    max_iter: usize,
+    tol: f64,
+) -> Option<(Fitted, EmReport)> {
     let mut m = maximise(u, rows, d, init, ridge)?;
     let mut report = EmReport { iterations: 0, mean_log_likelihood: f64::NEG_INFINITY, converged: false };
     for it in 1..=max_iter {
@@ -284,11 +292,13 @@ pub fn kmeans_start(u: &[f64], rows: usize, d: usize, k: usize, seed: u64) -> Ve
         let total: f64 = nearest.iter().sum();
         let pick = if total > 0.0 {
             let mut target = rng.random::<f64>() * total;
-            nearest.iter().position(|&v| {
-                target -= v;
-                target <= 0.0
-            })
-            .unwrap_or(rows - 1)
+            nearest
+                .iter()
+                .position(|&v| {
+                    target -= v;
+                    target <= 0.0
+                })
+                .unwrap_or(rows - 1)
         } else {
             rng.random_range(0..rows)
         };
@@ -376,8 +386,12 @@ mod tests {
     #[test]
     fn one_component_is_the_gaussian_log_density() {
         let cov = [2.0, 0.5, 0.5, 1.0];
-        let m =
-            Mixture { dim: 2, log_weights: vec![0.0], means: vec![1.0, -1.0], precision_cholesky: precision_cholesky_of(&cov, 2).unwrap() };
+        let m = Mixture {
+            dim: 2,
+            log_weights: vec![0.0],
+            means: vec![1.0, -1.0],
+            precision_cholesky: precision_cholesky_of(&cov, 2).unwrap(),
+        };
         let x = [2.0, 0.5];
         let (dx, dy) = (1.0, 1.5);
         let det: f64 = 2.0 * 1.0 - 0.25;

@@ -56,6 +56,22 @@ pub struct TrainingSummary {
     /// are used for calibration.
     #[serde(default)]
     pub data_checksum: String,
+    /// Every density `fit` compared on the validation rows when it chose
+    /// one (empty when the kind was given).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub candidates: Vec<Candidate>,
+}
+
+/// One density compared on the validation rows.
+#[derive(Clone, Debug, serde::Serialize, serde::Deserialize)]
+pub struct Candidate {
+    pub kind: Kind,
+    /// What distinguishes it (components, shrinkage, flow shape).
+    pub detail: String,
+    /// Mean negative log-likelihood of the validation rows, nats per vector.
+    pub validation_nll: f64,
+    pub seconds: f64,
+    pub chosen: bool,
 }
 
 /// Mean and standard deviation of a statistic over the training rows.
@@ -185,6 +201,18 @@ impl Meta {
             let c: Vec<String> = self.classes.iter().map(|c| format!("{}: {}", c.label, c.rows)).collect();
             line("classes (rows)", c.join(", "));
         }
+        for c in &t.candidates {
+            line(
+                if c.chosen { "candidate (chosen)" } else { "candidate" },
+                format!(
+                    "{:<16}validation NLL {:.4} nats/vector, {:.1} s; {}",
+                    kind_name(c.kind),
+                    c.validation_nll,
+                    c.seconds,
+                    c.detail
+                ),
+            );
+        }
         line("settings", t.settings.to_string());
         s
     }
@@ -207,6 +235,15 @@ impl Meta {
     /// One line for the end of `fit`.
     pub fn fit_summary(&self, path: &Path) -> String {
         let t = &self.training;
+        if !t.candidates.is_empty() {
+            return format!(
+                "wrote {}: {} chosen on validation NLL {:.4} nats/vector ({} candidates compared; `inspect` lists them)",
+                path.display(),
+                kind_name(self.kind),
+                t.best_validation_nll,
+                t.candidates.len()
+            );
+        }
         format!(
             "wrote {}: validation NLL {:.4} nats/vector (Gaussian {:.4}), best epoch {} of {}",
             path.display(),
@@ -274,6 +311,11 @@ pub enum Kind {
     ClassGaussian,
     /// Gaussian mixture with full covariances, fitted by EM; components and ridge chosen on validation rows.
     Mixture,
+}
+
+/// The name of a kind as the command line spells it.
+pub fn kind_name(kind: Kind) -> String {
+    serde_json::to_value(kind).ok().and_then(|v| v.as_str().map(str::to_string)).unwrap_or_default()
 }
 
 /// Metadata of the reference values in [`ScoringRefs`].

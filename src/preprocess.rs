@@ -248,7 +248,13 @@ impl Preprocessor {
                 Shrinkage::Fixed(alpha) => alpha,
                 Shrinkage::Validated(val, rows) => {
                     let centres = self.centres(how, idx);
-                    validated_intensity(&cov, d, lw, &ValidationRows { data: val, rows, live: &self.live, std }, &centres)
+                    validated_intensity(
+                        &cov,
+                        d,
+                        lw,
+                        &ValidationRows { data: val, rows, live: &self.live, std },
+                        &centres,
+                    )
                 }
             };
             shrink(&mut cov, d, self.shrinkage);
@@ -446,11 +452,13 @@ fn validated_intensity(r: &[f64], d: usize, lw: f64, val: &ValidationRows, centr
     let mut grid: Vec<f64> = SHRINKAGE_GRID.iter().copied().chain([lw]).collect();
     grid.retain(|&a| lambda.iter().all(|&l| (1.0 - a) * l + a * mu > NULL_VARIANCE * top));
     // vectors: column i of `basis` (d x d, row-major) is eigenvector i.
-    let basis: Vec<f64> = (0..d).flat_map(|row| (0..d).map(move |i| (row, i))).map(|(row, i)| eig.eigenvectors[(row, i)]).collect();
+    let basis: Vec<f64> =
+        (0..d).flat_map(|row| (0..d).map(move |i| (row, i))).map(|(row, i)| eig.eigenvectors[(row, i)]).collect();
     let mut raw = Vec::new();
     let mut centred = vec![0.0f64; BLOCK * d];
     let mut proj = vec![0.0f64; BLOCK * d];
-    let log_dets: Vec<f64> = grid.iter().map(|&a| lambda.iter().map(|&l| ((1.0 - a) * l + a * mu).ln()).sum()).collect();
+    let log_dets: Vec<f64> =
+        grid.iter().map(|&a| lambda.iter().map(|&l| ((1.0 - a) * l + a * mu).ln()).sum()).collect();
     let mut total = vec![0.0f64; grid.len()];
     let mut per_centre = vec![0.0f64; centres.len()];
     for chunk in val.rows.chunks(BLOCK) {

@@ -60,6 +60,10 @@ pub struct FitOptions {
     pub shrinkage: Option<ShrinkageOption>,
     /// Mixture components (chosen on validation when unset).
     pub components: Option<usize>,
+    /// Fit exactly the configuration given (defaults by data size) instead
+    /// of choosing the kind on the validation rows.
+    #[serde(default)]
+    pub no_search: bool,
     #[serde(skip)]
     pub quiet: bool,
     /// Test hook: make the gradient of this step non-finite once.
@@ -133,7 +137,10 @@ impl FitOptions {
             check::fraction_below(&n("shrinkage"), v, 1.0)?;
         }
         if self.shrinkage.is_some() && matches!(self.kind, Some(Kind::Flow | Kind::Mixture)) {
-            return Err(Error::Invalid(format!("{} applies to the Gaussian kinds; drop it or the flow kind", n("shrinkage"))));
+            return Err(Error::Invalid(format!(
+                "{} applies to the Gaussian kinds; drop it or the flow kind",
+                n("shrinkage")
+            )));
         }
         Ok(())
     }
@@ -167,6 +174,7 @@ impl FitOptions {
             threads: self.threads.or(fallback.threads),
             shrinkage: self.shrinkage.or(fallback.shrinkage),
             components: self.components.or(fallback.components),
+            no_search: self.no_search || fallback.no_search,
             quiet: self.quiet || fallback.quiet,
             inject_nan_at_step: self.inject_nan_at_step.or(fallback.inject_nan_at_step),
         }
@@ -176,6 +184,7 @@ impl FitOptions {
 mod checkpoint;
 mod fit_mixture;
 mod progress;
+mod select;
 
 /// How the Gaussian kinds shrink their covariance, as the user asks:
 /// `validated` (the default), `ledoit-wolf`, or an intensity in [0, 1).
@@ -239,6 +248,9 @@ impl Source<'_> {
         }
     }
 }
+
+/// Share of the rows held out for validation when none is asked for.
+const DEFAULT_VAL_FRACTION: f64 = 0.1;
 
 /// Validation share of the rows stays below this (0 fits on every row and
 /// validates on the training rows).
@@ -311,9 +323,17 @@ const FEW_ROWS_PER_DIM: f64 = 50.0;
 const GAUSSIAN_BELOW_ROWS_PER_FEATURE: f64 = 4.0;
 
 impl FitOptions {
-    /// Whether any option that only shapes a flow was given.
+    /// Whether any option that only shapes a flow or its training was given.
     fn asks_for_a_flow(&self) -> bool {
         self.background_noise.is_some()
+            || self.epochs.is_some()
+            || self.batch_size.is_some()
+            || self.lr.is_some()
+            || self.patience.is_some()
+            || self.weight_decay.is_some()
+            || self.grad_clip.is_some()
+            || self.max_retries.is_some()
+            || self.inject_nan_at_step.is_some()
             || self.method.is_some_and(|m| m != Method::Pca)
             || self.layers.is_some()
             || self.hidden.is_some()
@@ -347,7 +367,9 @@ impl Settings {
         let method = o.method.unwrap_or(Method::Pca);
         let kind = o.kind.unwrap_or_default();
         if kind != Kind::Flow && method != Method::Pca {
-            return Err(Error::Invalid("--kind gaussian, class-gaussian and mixture whiten with PCA; drop --method".into()));
+            return Err(Error::Invalid(
+                "--kind gaussian, class-gaussian and mixture whiten with PCA; drop --method".into(),
+            ));
         }
         if kind != Kind::Flow && o.background_noise.is_some() {
             return Err(Error::Invalid("--background-noise trains a background flow; it needs --kind flow".into()));
@@ -380,7 +402,7 @@ impl Settings {
             warmup_fraction: 0.02,
             grad_clip: o.grad_clip.unwrap_or(5.0),
             weight_decay: o.weight_decay.unwrap_or(0.0),
-            val_fraction: if val_file { 0.0 } else { o.val_fraction.unwrap_or(0.1) },
+            val_fraction: if val_file { 0.0 } else { o.val_fraction.unwrap_or(DEFAULT_VAL_FRACTION) },
             val_file,
             patience: o.patience.unwrap_or(10),
             dropout: o.dropout.unwrap_or_else(|| by_rows_per_dim(per_dim, [0.2, 0.1, 0.1, 0.0])),
@@ -614,10 +636,19 @@ pub fn fit(x: &Dataset, labels: Option<&[i64]>, opts: &FitOptions) -> Result<Mod
 }
 
 /// Fit a model as `run` describes: fresh or resumed, with checkpoints, a
-/// log and a stop flag when given.
+/// log and a stop flag when given. Without a kind or flow option, the kind
+/// is chosen on the validation rows (see [`select`]).
 pub fn fit_run(run: &Run, opts: &FitOptions) -> Result<Model> {
-    let started = Instant::now();
     opts.check(&Source::Flags)?;
+    if select::applies(run, opts) {
+        return select::fit_best(run, opts);
+    }
+    fit_one(run, opts)
+}
+
+/// Fit the one model that `opts` (with its defaults) describe.
+fn fit_one(run: &Run, opts: &FitOptions) -> Result<Model> {
+    let started = Instant::now();
     for path in [run.output, run.checkpoint.as_deref(), run.log].into_iter().flatten() {
         crate::output::check_directory(path)?;
     }
@@ -669,7 +700,7 @@ fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
         }
     }
     let seed = opts.seed.unwrap_or(0);
-    let val_fraction = if run.val.is_some() { 0.0 } else { opts.val_fraction.unwrap_or(0.1) };
+    let val_fraction = if run.val.is_some() { 0.0 } else { opts.val_fraction.unwrap_or(DEFAULT_VAL_FRACTION) };
     let (train_idx, val_idx) = split_rows(x.rows, val_fraction, seed);
     let method = opts.method.unwrap_or(Method::Pca);
     let (kind, by_size) = opts.kind_for(train_idx.len(), x.cols, run.labels.is_some());
@@ -692,7 +723,8 @@ fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
     }
     if kind == Kind::Mixture && class_of.is_some() {
         return Err(Error::Invalid(
-            "--kind mixture fits no per-class densities yet; drop --labels, or use --kind class-gaussian or flow".into(),
+            "--kind mixture fits no per-class densities yet; drop --labels, or use --kind class-gaussian or flow"
+                .into(),
         ));
     }
     // Class means (input space) over the training rows, for pooling.
@@ -708,7 +740,12 @@ fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
     let all_val_rows: Vec<usize> = run.val.map(|v| (0..v.rows).collect()).unwrap_or_default();
     let how = Covariance {
         classes: class_of.as_deref().filter(|_| kind == Kind::ClassGaussian).map(|of| (of, &class_means[..])),
-        shrinkage: shrinkage_for(kind, opts.shrinkage, (x, &train_idx, &val_idx), run.val.map(|v| (v, &all_val_rows[..]))),
+        shrinkage: shrinkage_for(
+            kind,
+            opts.shrinkage,
+            (x, &train_idx, &val_idx),
+            run.val.map(|v| (v, &all_val_rows[..])),
+        ),
     };
     let pre = Preprocessor::fit_with(x, &train_idx, method, dead_threshold, &how).map_err(Error::Invalid)?;
     let settings = Settings::resolve(opts, train_idx.len(), pre.dim(), run.val.is_some(), run.labels.is_some())?;

@@ -83,7 +83,12 @@ fn mixture_kind_beats_one_gaussian_on_clustered_rows_and_round_trips() {
     let data: Vec<f32> = (0..3000)
         .flat_map(|r| {
             let shift = if r % 3 == 0 { 5.0 } else { -2.5 };
-            let v: Vec<f32> = (0..d).map(|j| <StandardNormal as Distribution<f32>>::sample(&StandardNormal, &mut rng) + if j < 2 { shift } else { 0.0 }).collect();
+            let v: Vec<f32> = (0..d)
+                .map(|j| {
+                    <StandardNormal as Distribution<f32>>::sample(&StandardNormal, &mut rng)
+                        + if j < 2 { shift } else { 0.0 }
+                })
+                .collect();
             v
         })
         .collect();
@@ -93,7 +98,12 @@ fn mixture_kind_beats_one_gaussian_on_clustered_rows_and_round_trips() {
     let gaussian = fit(&x, None, &FitOptions { kind: Some(Kind::Gaussian), ..opts }).unwrap();
     let (tm, tg) = (&mixture.meta.training, &gaussian.meta.training);
     assert!(mixture.meta.mixture.as_ref().unwrap().components >= 2);
-    assert!(tm.best_validation_nll < tg.best_validation_nll - 0.5, "{} vs {}", tm.best_validation_nll, tg.best_validation_nll);
+    assert!(
+        tm.best_validation_nll < tg.best_validation_nll - 0.5,
+        "{} vs {}",
+        tm.best_validation_nll,
+        tg.best_validation_nll
+    );
     let dir = tempfile::tempdir().unwrap();
     let path = dir.path().join("m.safetensors");
     mixture.save(&path).unwrap();

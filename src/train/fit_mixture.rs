@@ -48,7 +48,9 @@ pub(super) fn component_counts(rows: usize, dim: usize, asked: Option<usize>) ->
         return vec![k];
     }
     let per = (MIN_ROWS_PER_COMPONENT_DIM * dim).max(MIN_ROWS_PER_COMPONENT);
-    std::iter::successors(Some(1usize), |k| Some(k * 2)).take_while(|&k| k == 1 || (k <= MAX_COMPONENTS && rows / k >= per)).collect()
+    std::iter::successors(Some(1usize), |k| Some(k * 2))
+        .take_while(|&k| k == 1 || (k <= MAX_COMPONENTS && rows / k >= per))
+        .collect()
 }
 
 /// Whitened rows `idx` of `data`, in f64, row-major.
@@ -103,7 +105,8 @@ pub(super) fn fit_mixture(rows: &Rows, l: &mut Learned, asked: Option<usize>, qu
             tried.push(t);
         }
         if !quiet {
-            let b = tried.iter().filter(|t| t.components == k).min_by(|a, b| a.validation_nll.total_cmp(&b.validation_nll));
+            let b =
+                tried.iter().filter(|t| t.components == k).min_by(|a, b| a.validation_nll.total_cmp(&b.validation_nll));
             if let Some(b) = b {
                 note(format!(
                     "mixture of {k}: validation NLL {:.4} nats/vector (ridge {:e}, {} EM rounds)",
