@@ -1,5 +1,5 @@
 //! `tidemark demo`: the whole job on the shipped demo data — fit a
-//! class-conditional flow, calibrate thresholds at a 1% false-alarm rate on
+//! class-conditional density, calibrate thresholds at a 1% false-alarm rate on
 //! held-out normal vectors, score every set, evaluate every score against
 //! every outlier set, write the report, and show which score catches which
 //! kind of outlier.
@@ -51,7 +51,7 @@ pub fn run(data_dir: &Path, out_dir: &Path, threads: usize) -> Result<()> {
     let labels = read_labels(&labels_path)?;
     check_label_count(&labels_path, labels.len(), x.rows)?;
     say!(
-        "1. fitting a class-conditional flow to {} ({} vectors x {} features)",
+        "1. fitting a class-conditional density to {} ({} vectors x {} features): class-Gaussian and flow compared on validation rows",
         file("train").display(),
         x.rows,
         x.cols

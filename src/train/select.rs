@@ -35,7 +35,8 @@ fn kinds(run: &Run, opts: &FitOptions) -> Vec<Kind> {
         kinds.push(Kind::Flow);
     } else if !opts.quiet {
         note(format!(
-            "{:.0} training rows for {} features ({:.1} per feature): too few for a flow, comparing the other kinds",
+            "{:.0} training rows for {} features ({:.1} per feature): too few for a flow, comparing the other kinds; \
+             --kind flow fits one anyway",
             train_rows,
             run.data.cols,
             train_rows / run.data.cols as f64
