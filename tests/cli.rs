@@ -356,7 +356,7 @@ fn few_rows_per_feature_leave_the_flow_out_unless_one_is_asked_for() {
     let model = dir.path().join("model.safetensors");
     let (t, m) = (train.to_str().unwrap(), model.to_str().unwrap());
     let kind_with = |extra: &[&str]| -> (String, String) {
-        let out = tidemark().args(["fit", t, "-o", m, "--epochs", "2", "--force"]).args(extra).assert().success();
+        let out = tidemark().args(["fit", t, "-o", m, "--force"]).args(extra).assert().success();
         let stderr = String::from_utf8(out.get_output().stderr.clone()).unwrap();
         let out = tidemark().args(["inspect", m, "--json"]).assert().success();
         let meta: serde_json::Value = serde_json::from_slice(&out.get_output().stdout).unwrap();

@@ -63,6 +63,25 @@ fn detail(m: &Model) -> String {
     }
 }
 
+/// Whether `new` (a more flexible kind) beats `old` on the validation rows
+/// by more than one standard error of the paired per-row difference in
+/// NLL: within noise the simpler density is kept (the one-standard-error
+/// rule; Breiman et al. 1984, "Classification and Regression Trees").
+/// Both models keep the NLLs of the same validation rows, in the same order.
+fn clearly_better(new: &Model, old: &Model) -> bool {
+    let (a, b) = (&new.refs.validation_nll, &old.refs.validation_nll);
+    let mean_new = new.meta.training.best_validation_nll;
+    let mean_old = old.meta.training.best_validation_nll;
+    if a.len() != b.len() || a.len() < 2 {
+        return mean_new < mean_old;
+    }
+    let n = a.len() as f64;
+    let diff: Vec<f64> = b.iter().zip(a).map(|(o, w)| o - w).collect();
+    let mean = diff.iter().sum::<f64>() / n;
+    let sd = (diff.iter().map(|d| (d - mean).powi(2)).sum::<f64>() / (n - 1.0)).sqrt();
+    mean > sd / n.sqrt()
+}
+
 /// Fit every candidate kind and keep the best on the validation rows. Only
 /// the flow writes the run's log and checkpoints (the others take seconds
 /// to minutes); an interrupted flow stops the whole run.
@@ -107,7 +126,7 @@ pub(super) fn fit_best(run: &Run, opts: &FitOptions) -> Result<Model> {
             ));
         }
         candidates.push(candidate);
-        if best.as_ref().is_none_or(|b| nll < b.meta.training.best_validation_nll) {
+        if best.as_ref().is_none_or(|b| clearly_better(&model, b)) {
             best = Some(model);
         }
     }
