@@ -14,7 +14,7 @@ use tidemark::flow::Mixing;
 use tidemark::model::{Kind, Model};
 use tidemark::output::{self, check_files, note, FileKey, Input, Output};
 use tidemark::preprocess::Method;
-use tidemark::train::{default_threads, Checkpoint, FitOptions, Run, ShrinkageOption, Source};
+use tidemark::train::{default_threads, Budget, Checkpoint, FitOptions, Run, ShrinkageOption, Source};
 use tidemark::{check, columnar, data, demo, evaluate, input, report, score, stream, Error, Result};
 
 #[derive(Parser)]
@@ -334,6 +334,9 @@ struct FitArgs {
     /// Fit exactly the configuration the options give (a flow unless rows per feature are few) instead of comparing density kinds on the validation rows.
     #[arg(long)]
     no_search: bool,
+    /// Wall-clock bound of the search over densities, e.g. 20m or 8h [default: 5 x the projected time of one flow at the settings table, at least 1 minute].
+    #[arg(long)]
+    budget: Option<Budget>,
     /// Components of the mixture kind [default: chosen on the validation rows among 1, 2, 4, ... 64].
     #[arg(long)]
     components: Option<usize>,
@@ -410,6 +413,7 @@ impl FitArgs {
             shrinkage: self.shrinkage,
             components: self.components,
             no_search: self.no_search,
+            budget: self.budget,
             quiet: self.quiet,
             inject_nan_at_step: self.inject_nan_at_step,
         }

@@ -72,6 +72,9 @@ pub struct Candidate {
     pub validation_nll: f64,
     pub seconds: f64,
     pub chosen: bool,
+    /// Validation NLL after each stage of the flows' successive halving.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub stages: Vec<f64>,
 }
 
 /// Mean and standard deviation of a statistic over the training rows.

@@ -60,6 +60,8 @@ pub struct FitOptions {
     pub shrinkage: Option<ShrinkageOption>,
     /// Mixture components (chosen on validation when unset).
     pub components: Option<usize>,
+    /// Wall-clock bound of the search over densities (`20m`, `8h`, ...).
+    pub budget: Option<Budget>,
     /// Fit exactly the configuration given (defaults by data size) instead
     /// of choosing the kind on the validation rows.
     #[serde(default)]
@@ -175,6 +177,7 @@ impl FitOptions {
             shrinkage: self.shrinkage.or(fallback.shrinkage),
             components: self.components.or(fallback.components),
             no_search: self.no_search || fallback.no_search,
+            budget: self.budget.or(fallback.budget),
             quiet: self.quiet || fallback.quiet,
             inject_nan_at_step: self.inject_nan_at_step.or(fallback.inject_nan_at_step),
         }
@@ -185,6 +188,57 @@ mod checkpoint;
 mod fit_mixture;
 mod progress;
 mod select;
+
+/// A duration in seconds, written as a number with a unit (`90s`, `20m`,
+/// `8h`, `1h30m`; a bare number is seconds).
+#[derive(Clone, Copy, Debug, PartialEq, serde::Deserialize, serde::Serialize)]
+#[serde(try_from = "String", into = "String")]
+pub struct Budget(pub f64);
+
+impl std::str::FromStr for Budget {
+    type Err = String;
+    fn from_str(s: &str) -> std::result::Result<Self, String> {
+        let bad = || format!("'{}' is not a duration such as 90s, 20m, 8h or 1h30m", crate::data::printable(s, 40));
+        let mut total = 0.0;
+        let mut number = String::new();
+        for ch in s.trim().chars() {
+            match ch {
+                '0'..='9' | '.' => number.push(ch),
+                's' | 'm' | 'h' | 'd' => {
+                    let v: f64 = number.parse().map_err(|_| bad())?;
+                    total += v * match ch {
+                        's' => 1.0,
+                        'm' => 60.0,
+                        'h' => 3600.0,
+                        _ => 86400.0,
+                    };
+                    number.clear();
+                }
+                _ => return Err(bad()),
+            }
+        }
+        if !number.is_empty() {
+            total += number.parse::<f64>().map_err(|_| bad())?;
+        }
+        if !(total.is_finite() && total > 0.0) {
+            return Err(bad());
+        }
+        Ok(Budget(total))
+    }
+}
+
+impl TryFrom<String> for Budget {
+    type Error = String;
+    fn try_from(s: String) -> std::result::Result<Self, String> {
+        s.parse()
+    }
+}
+
+impl From<Budget> for String {
+    fn from(b: Budget) -> String {
+        format!("{}s", b.0)
+    }
+}
 
 /// How the Gaussian kinds shrink their covariance, as the user asks:
 /// `validated` (the default), `ledoit-wolf`, or an intensity in [0, 1).
@@ -664,7 +718,7 @@ fn fit_one(run: &Run, opts: &FitOptions) -> Result<Model> {
             note(format!("resuming at epoch {} (batch {}, step {})", s.epoch, s.batch, s.step));
         }
     }
-    train(run, opts, &mut learned, started)?;
+    train(run, opts, &mut learned, started, None)?;
     learned.model.flow.params = learned.best_params.clone();
     if learned.settings.kind == Kind::Mixture {
         let rows = Rows::new(run, &learned.settings, &learned.model);
@@ -677,6 +731,55 @@ fn fit_one(run: &Run, opts: &FitOptions) -> Result<Model> {
     }
     finish(run, &mut learned)?;
     Ok(learned.model)
+}
+
+/// A flow trained in stages, so that a search can compare many and carry
+/// on with the best (successive halving). It writes no files.
+pub(crate) struct Staged {
+    learned: Learned,
+}
+
+impl Staged {
+    pub(crate) fn new(run: &Run, opts: &FitOptions) -> Result<Staged> {
+        Ok(Staged { learned: start(run, opts)? })
+    }
+
+    /// Train on until the pause (or until training ends earlier).
+    pub(crate) fn train_to(&mut self, run: &Run, opts: &FitOptions, pause: Pause) -> Result<()> {
+        train(run, opts, &mut self.learned, Instant::now(), Some(pause))
+    }
+
+    /// Seconds spent training so far.
+    pub(crate) fn seconds(&self) -> f64 {
+        self.learned.state.seconds
+    }
+
+    /// Best validation NLL so far, nats per vector.
+    pub(crate) fn best_validation_nll(&self) -> f64 {
+        self.learned.state.best_val
+    }
+
+    /// Epochs done so far.
+    pub(crate) fn epochs(&self) -> usize {
+        self.learned.state.log.len()
+    }
+
+    /// No more epochs to run (the last one, or early stopping).
+    pub(crate) fn finished(&self) -> bool {
+        self.learned.state.finished || self.learned.state.epoch > self.learned.settings.epochs
+    }
+
+    pub(crate) fn settings(&self) -> &Settings {
+        &self.learned.settings
+    }
+
+    /// The model with its best weights; the training log goes to the run's log.
+    pub(crate) fn into_model(mut self, run: &Run) -> Result<Model> {
+        self.learned.model.flow.params = self.learned.best_params.clone();
+        write_log(run, &self.learned.state.log)?;
+        finish(run, &mut self.learned)?;
+        Ok(self.learned.model)
+    }
 }
 
 /// Split, fit the preprocessing and set up an untrained flow.
@@ -893,7 +996,7 @@ fn train_background(run: &Run, opts: &FitOptions, main: &Learned, sigma: f64, st
     if !opts.quiet {
         note(format!("training the background flow (noise {sigma})"));
     }
-    train(&quiet_run, opts, &mut bg, started)?;
+    train(&quiet_run, opts, &mut bg, started, None)?;
     bg.model.flow.params = bg.best_params;
     Ok(bg.model.flow)
 }
@@ -1008,7 +1111,19 @@ enum Halt {
     Diverged(usize),
 }
 
-fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant) -> Result<()> {
+/// Where a stage of a search pauses: after this epoch, or after the first
+/// epoch that ends past the deadline.
+#[derive(Clone, Copy)]
+pub(crate) struct Pause {
+    pub epoch: usize,
+    pub deadline: Option<Instant>,
+}
+
+/// Train until the run finishes (last epoch or early stopping) or, with a
+/// `pause`, until the stage ends.
+fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant, pause: Option<Pause>) -> Result<()> {
+    let until = pause.map_or(usize::MAX, |p| p.epoch);
+    let deadline = pause.and_then(|p| p.deadline);
     let s = l.settings.clone();
     let rows = Rows::new(run, &s, &l.model);
     let (d, k) = (l.model.dim(), s.flow_dims);
@@ -1028,7 +1143,7 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant) -> Res
     let mut snapshot = (l.model.flow.params.clone(), l.adam.clone(), l.state.clone());
     let mut epoch_started = Instant::now();
     let mut epoch_samples = 0usize;
-    'epochs: while !l.state.finished && l.state.epoch <= s.epochs {
+    'epochs: while !l.state.finished && l.state.epoch <= s.epochs.min(until) {
         let mut order = rows.train.clone();
         order.shuffle(&mut StdRng::seed_from_u64(derive(s.seed, 2, l.state.epoch as u64)));
         if l.state.batch == 0 {
@@ -1128,7 +1243,7 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant) -> Res
             save_checkpoint(run, l)?;
             last_checkpoint = Instant::now();
         }
-        if done {
+        if done || epoch >= until || deadline.is_some_and(|d| Instant::now() >= d) {
             break;
         }
     }

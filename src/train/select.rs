@@ -3,7 +3,7 @@
 //! log-likelihood is kept. A fixed table of settings tuned on one dump does
 //! not transfer to the next; the held-out rows can decide.
 
-use super::{fit_one, FitOptions, Run, GAUSSIAN_BELOW_ROWS_PER_FEATURE};
+use super::{fit_one, FitOptions, Pause, Run, Settings, Staged, GAUSSIAN_BELOW_ROWS_PER_FEATURE};
 use crate::error::{Error, Result};
 use crate::model::{kind_name, Candidate, Kind, Model};
 use crate::output::note;
@@ -82,59 +82,250 @@ fn clearly_better(new: &Model, old: &Model) -> bool {
     mean > sd / n.sqrt()
 }
 
-/// Fit every candidate kind and keep the best on the validation rows. Only
-/// the flow writes the run's log and checkpoints (the others take seconds
-/// to minutes); an interrupted flow stops the whole run.
+/// One flow configuration of the search: a name and the options that set it.
+struct FlowConfig {
+    name: &'static str,
+    opts: FitOptions,
+}
+
+/// The flows compared, around the settings table for this data size
+/// (`table`): every modelled-dimension choice, lighter and heavier
+/// regularisation, a wider and a deeper conditioner, and LU mixing.
+/// Configurations that come out the same are tried once.
+fn flow_configs(opts: &FitOptions, table: &Settings, dims: usize) -> Vec<FlowConfig> {
+    let base = FitOptions { kind: Some(Kind::Flow), quiet: true, ..opts.clone() };
+    let set = |f: &dyn Fn(&mut FitOptions)| {
+        let mut o = FitOptions {
+            flow_dims: Some(dims),
+            layers: Some(table.layers),
+            hidden: Some(table.hidden),
+            dropout: Some(table.dropout),
+            noise: Some(table.noise),
+            ..base.clone()
+        };
+        f(&mut o);
+        o
+    };
+    let wide = (2 * table.hidden).min(1024);
+    let mut configs = vec![
+        FlowConfig { name: "settings table", opts: set(&|o| o.flow_dims = Some(table.flow_dims)) },
+        FlowConfig { name: "all dims", opts: set(&|_| ()) },
+        FlowConfig {
+            name: "two thirds of the dims",
+            opts: set(&|o| o.flow_dims = Some((2 * dims).div_ceil(3).max(2.min(dims)))),
+        },
+        FlowConfig {
+            name: "wide, light regularisation",
+            opts: set(&|o| {
+                o.hidden = Some(wide);
+                o.dropout = Some(0.05);
+                o.noise = Some(0.05);
+            }),
+        },
+        FlowConfig { name: "no dropout or noise", opts: set(&|o| (o.dropout, o.noise) = (Some(0.0), Some(0.0))) },
+        FlowConfig {
+            name: "heavier regularisation",
+            opts: set(&|o| {
+                o.dropout = Some((table.dropout + 0.1).min(0.5));
+                o.noise = Some(table.noise + 0.1);
+                o.weight_decay = Some(1e-4);
+            }),
+        },
+        FlowConfig { name: "deeper (10 layers)", opts: set(&|o| o.layers = Some(10)) },
+        FlowConfig { name: "LU mixing", opts: set(&|o| o.mixing = Some(crate::flow::Mixing::Lu)) },
+    ];
+    let key = |o: &FitOptions| {
+        format!("{:?}", (o.flow_dims, o.layers, o.hidden, o.dropout, o.noise, o.weight_decay, o.mixing))
+    };
+    let mut seen = std::collections::HashSet::new();
+    configs.retain(|c| c.opts.flow_dims.is_none_or(|k| k <= dims) && seen.insert(key(&c.opts)));
+    configs
+}
+
+/// The default search budget: five times the projected time of one flow at
+/// the settings table (its first stage's seconds per epoch times its
+/// epochs), at least a minute.
+fn default_budget(first_stage_seconds: f64, first_stage_epochs: usize, epochs: usize) -> f64 {
+    (5.0 * first_stage_seconds / first_stage_epochs.max(1) as f64 * epochs as f64).max(60.0)
+}
+
+/// A flow of the search and how far it got.
+struct Racer {
+    config: FlowConfig,
+    flow: Staged,
+    stages: Vec<f64>,
+}
+
+/// Successive halving over the flow configurations (Jamieson & Talwalkar
+/// 2016; Li et al. 2018): every configuration trains for a quarter of the
+/// epochs, the better half by validation NLL carries on to half, the better
+/// half of those to all of them (each on the learning-rate schedule of the
+/// full run, so a stage continues where the last one paused). A run that
+/// stops early keeps its best. The stages stop when the budget is spent.
+fn race_flows(run: &Run, opts: &FitOptions, dims: usize, train_rows: usize, started: Instant) -> Result<Vec<Racer>> {
+    let labelled = run.labels.is_some();
+    let table_opts = FitOptions { kind: Some(Kind::Flow), ..opts.clone() };
+    let table = Settings::resolve(&table_opts, train_rows, dims, run.val.is_some(), labelled)?;
+    let epochs = table.epochs;
+    let stages = [epochs.div_ceil(4), epochs.div_ceil(2), epochs];
+    let mut budget = opts.budget.map(|b| b.0);
+    let mut racers: Vec<Racer> = Vec::new();
+    for config in flow_configs(opts, &table, dims) {
+        let flow = Staged::new(run, &config.opts)?;
+        racers.push(Racer { config, flow, stages: Vec::new() });
+    }
+    let mut alive: Vec<usize> = (0..racers.len()).collect();
+    for (round, &until) in stages.iter().enumerate() {
+        for &i in &alive {
+            let spent = started.elapsed().as_secs_f64();
+            if budget.is_some_and(|b| spent >= b) && !(round == 0 && i == 0) {
+                break;
+            }
+            let deadline = budget.map(|b| started + std::time::Duration::from_secs_f64(b));
+            let r = &mut racers[i];
+            r.flow.train_to(
+                run,
+                &r.config.opts,
+                Pause { epoch: until, deadline: if i == 0 && round == 0 { None } else { deadline } },
+            )?;
+            r.stages.push(r.flow.best_validation_nll());
+            if budget.is_none() {
+                // The first stage of the table's flow sets the default budget.
+                let b = default_budget(r.flow.seconds(), r.flow.epochs(), epochs);
+                budget = Some(b);
+                if !opts.quiet {
+                    note(format!(
+                        "search budget {} (5 x the projected time of one flow; --budget sets it)",
+                        minutes(b)
+                    ));
+                }
+            }
+            if !opts.quiet {
+                note(format!(
+                    "flow \"{}\": epoch {}, validation NLL {:.4} nats/vector ({} spent)",
+                    r.config.name,
+                    r.flow.epochs(),
+                    r.flow.best_validation_nll(),
+                    minutes(started.elapsed().as_secs_f64())
+                ));
+            }
+        }
+        // The better half carries on; finished runs stand on their best.
+        alive.retain(|&i| !racers[i].flow.finished() && racers[i].stages.len() == round + 1);
+        alive.sort_by(|&a, &b| racers[a].flow.best_validation_nll().total_cmp(&racers[b].flow.best_validation_nll()));
+        alive.truncate(alive.len().div_ceil(2));
+    }
+    Ok(racers)
+}
+
+fn minutes(seconds: f64) -> String {
+    if seconds < 120.0 {
+        format!("{seconds:.0} s")
+    } else {
+        format!("{:.1} min", seconds / 60.0)
+    }
+}
+
+/// Fit every candidate kind and keep the best on the validation rows: the
+/// Gaussian, the mixture, and flows raced by successive halving. An
+/// interrupted search writes the best density so far to the run's output.
 pub(super) fn fit_best(run: &Run, opts: &FitOptions) -> Result<Model> {
+    let started = Instant::now();
     let mut best: Option<Model> = None;
     let mut candidates: Vec<Candidate> = Vec::new();
+    let quiet_run = Run { output: None, checkpoint: None, log: None, ..*run };
     for kind in kinds(run, opts) {
-        let started = Instant::now();
-        let flow = kind == Kind::Flow;
-        let quiet_run = Run { output: None, checkpoint: None, log: None, ..*run };
-        let sub = if flow { run } else { &quiet_run };
-        let sub_opts = FitOptions { kind: Some(kind), quiet: opts.quiet || !flow, ..opts.clone() };
-        if flow && !opts.quiet {
-            note("candidate flow:");
+        let t = Instant::now();
+        if kind != Kind::Flow {
+            let model = fit_one(&quiet_run, &FitOptions { kind: Some(kind), quiet: true, ..opts.clone() })?;
+            let detail = detail(&model);
+            let c = candidate(&model, detail, t.elapsed().as_secs_f64(), Vec::new());
+            keep(opts, &mut candidates, &mut best, model, c);
+            continue;
         }
-        let model = match fit_one(sub, &sub_opts) {
-            Ok(m) => m,
-            // A flow that diverges is left out; the others stand.
-            Err(Error::Invalid(msg)) if flow && best.is_some() => {
-                if !opts.quiet {
-                    note(format!("candidate flow left out: {msg}"));
-                }
-                continue;
-            }
+        let first = best.as_ref().expect("a Gaussian kind comes first");
+        let (dims, train_rows) = (first.dim(), first.meta.training.train_rows);
+        let racers = match race_flows(&quiet_run, opts, dims, train_rows, started) {
+            Ok(r) => r,
+            Err(Error::Interrupted(msg)) => return Err(interrupted(run, best, msg)),
             Err(e) => return Err(e),
         };
-        let nll = model.meta.training.best_validation_nll;
-        let candidate = Candidate {
-            kind,
-            detail: detail(&model),
-            validation_nll: nll,
-            seconds: started.elapsed().as_secs_f64(),
-            chosen: false,
-        };
-        if !opts.quiet {
-            note(format!(
-                "candidate {}: validation NLL {:.4} nats/vector ({:.1} s; {})",
-                kind_name(kind),
-                nll,
-                candidate.seconds,
-                candidate.detail
-            ));
+        let seconds_all: f64 = racers.iter().map(|r| r.flow.seconds()).sum();
+        let winner = (0..racers.len())
+            .min_by(|&a, &b| racers[a].flow.best_validation_nll().total_cmp(&racers[b].flow.best_validation_nll()));
+        for (i, r) in racers.into_iter().enumerate() {
+            let (name, seconds, stages) = (r.config.name, r.flow.seconds(), r.stages);
+            if Some(i) == winner {
+                let model = r.flow.into_model(run)?;
+                let detail = format!("\"{name}\": {}", detail(&model));
+                let c = candidate(&model, detail, seconds, stages);
+                keep(opts, &mut candidates, &mut best, model, c);
+            } else {
+                let s = r.flow.settings();
+                candidates.push(Candidate {
+                    kind,
+                    detail: format!(
+                        "\"{name}\": {} coupling layers over {} of {dims} dims, hidden {}, {} epochs",
+                        s.layers,
+                        s.flow_dims,
+                        s.hidden,
+                        r.flow.epochs()
+                    ),
+                    validation_nll: r.flow.best_validation_nll(),
+                    seconds,
+                    chosen: false,
+                    stages,
+                });
+            }
         }
-        candidates.push(candidate);
-        if best.as_ref().is_none_or(|b| clearly_better(&model, b)) {
-            best = Some(model);
+        if !opts.quiet {
+            note(format!("flows raced for {}", minutes(seconds_all)));
         }
     }
     let mut model = best.ok_or_else(|| Error::Invalid("no density could be fitted".into()))?;
-    let chosen = model.meta.kind;
+    let chosen = model.meta.training.best_validation_nll;
     for c in &mut candidates {
-        c.chosen = c.kind == chosen;
+        c.chosen = c.kind == model.meta.kind && c.validation_nll == chosen;
     }
     model.meta.training.candidates = candidates;
     Ok(model)
+}
+
+fn candidate(model: &Model, detail: String, seconds: f64, stages: Vec<f64>) -> Candidate {
+    let validation_nll = model.meta.training.best_validation_nll;
+    Candidate { kind: model.meta.kind, detail, validation_nll, seconds, chosen: false, stages }
+}
+
+/// List a fitted candidate, and keep it when it is clearly better than the
+/// best so far.
+fn keep(opts: &FitOptions, candidates: &mut Vec<Candidate>, best: &mut Option<Model>, model: Model, c: Candidate) {
+    if !opts.quiet {
+        note(format!(
+            "candidate {}: validation NLL {:.4} nats/vector ({:.1} s; {})",
+            kind_name(c.kind),
+            c.validation_nll,
+            c.seconds,
+            c.detail
+        ));
+    }
+    candidates.push(c);
+    if best.as_ref().is_none_or(|b| clearly_better(&model, b)) {
+        *best = Some(model);
+    }
+}
+
+/// The error of an interrupted search, after writing the best density so
+/// far where the run's model goes.
+fn interrupted(run: &Run, best: Option<Model>, msg: String) -> Error {
+    match (best, run.output) {
+        (Some(model), Some(out)) => match model.save(out) {
+            Ok(()) => Error::Interrupted(format!(
+                "search interrupted ({msg}); the best density so far ({}) written to {}",
+                kind_name(model.meta.kind),
+                out.display()
+            )),
+            Err(e) => e,
+        },
+        _ => Error::Interrupted(format!("search interrupted ({msg})")),
+    }
 }
