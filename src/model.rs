@@ -36,6 +36,7 @@ pub fn format_version_for(mixing: crate::flow::Mixing, kind: Kind) -> u32 {
 const META_KEY: &str = "tidemark";
 
 mod file;
+pub(crate) use file::Extras;
 
 /// How a model was trained and how it did.
 #[derive(Clone, Debug, Default, serde::Serialize, serde::Deserialize)]

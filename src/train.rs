@@ -694,8 +694,11 @@ pub fn fit(x: &Dataset, labels: Option<&[i64]>, opts: &FitOptions) -> Result<Mod
 /// is chosen on the validation rows (see [`select`]).
 pub fn fit_run(run: &Run, opts: &FitOptions) -> Result<Model> {
     opts.check(&Source::Flags)?;
+    if let Some(checkpoint::Saved::Search(saved)) = run.resume.map(Checkpoint::saved) {
+        return select::resume(run, opts, saved);
+    }
     if select::applies(run, opts) {
-        return select::fit_best(run, opts);
+        return select::fit_best(run, opts, None);
     }
     fit_one(run, opts)
 }
@@ -771,6 +774,25 @@ impl Staged {
 
     pub(crate) fn settings(&self) -> &Settings {
         &self.learned.settings
+    }
+
+    fn state(&self) -> &TrainState {
+        &self.learned.state
+    }
+
+    /// The tensors a search checkpoint keeps of this flow.
+    fn tensors(&self) -> [&[f32]; 4] {
+        let l = &self.learned;
+        [&l.model.flow.params, &l.best_params, &l.adam.m, &l.adam.v]
+    }
+
+    /// Put back what [`Staged::tensors`] and the state saved.
+    fn restore(&mut self, state: TrainState, [params, best, m, v]: [Vec<f32>; 4]) {
+        let l = &mut self.learned;
+        l.adam = Adam { m, v, t: state.adam_t };
+        l.model.flow.params = params;
+        l.best_params = best;
+        l.state = state;
     }
 
     /// The model with its best weights; the training log goes to the run's log.

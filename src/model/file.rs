@@ -432,6 +432,10 @@ pub(crate) struct Extras {
 }
 
 impl Extras {
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
     /// A 1-D f32 tensor of `len` values added by [`Model::save_with`].
     pub fn tensor(&self, name: &str, len: usize) -> Result<Vec<f32>> {
         let st = SafeTensors::deserialize(&self.bytes).map_err(|e| Error::model(&self.path, e))?;

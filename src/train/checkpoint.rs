@@ -8,21 +8,33 @@ use crate::output::note;
 use std::path::{Path, PathBuf};
 
 const CHECKPOINT_KEY: &str = "tidemark_checkpoint";
+/// Metadata key of a search checkpoint (see `select`).
+pub(super) const SEARCH_KEY: &str = "tidemark_search";
 
 /// A path made absolute, so that it names the same file from any directory.
 pub(super) fn absolute(path: Option<&Path>) -> Option<PathBuf> {
     path.map(|p| std::path::absolute(p).unwrap_or_else(|_| p.to_path_buf()))
 }
 
-/// A checkpoint read back, to continue the run that wrote it.
+/// A checkpoint read back, to continue the run that wrote it: one
+/// training run, or a search over densities.
 pub struct Checkpoint {
     path: PathBuf,
-    learned: Learned,
+    saved: Saved,
+}
+
+pub(super) enum Saved {
+    Run(Learned),
+    Search(super::select::SavedSearch),
 }
 
 impl Checkpoint {
     pub fn load(path: &Path) -> Result<Checkpoint> {
         let (model, extras) = Model::load_with(path)?;
+        if let Ok(json) = extras.metadata(SEARCH_KEY) {
+            let search = super::select::SavedSearch::read(path, &json, extras)?;
+            return Ok(Checkpoint { path: path.to_path_buf(), saved: Saved::Search(search) });
+        }
         let state: TrainState = serde_json::from_str(&extras.metadata(CHECKPOINT_KEY)?)
             .map_err(|e| Error::model(path, format!("bad checkpoint state: {e}")))?;
         let settings: Settings = serde_json::from_value(model.meta.training.settings.clone())
@@ -34,7 +46,19 @@ impl Checkpoint {
             t: state.adam_t,
         };
         let best_params = extras.tensor("checkpoint.best_params", n)?;
-        Ok(Checkpoint { path: path.to_path_buf(), learned: Learned { model, settings, state, best_params, adam } })
+        let learned = Learned { model, settings, state, best_params, adam };
+        Ok(Checkpoint { path: path.to_path_buf(), saved: Saved::Run(learned) })
+    }
+
+    pub(super) fn saved(&self) -> &Saved {
+        &self.saved
+    }
+
+    fn paths(&self) -> (Option<&Path>, Option<&Path>) {
+        match &self.saved {
+            Saved::Run(l) => (l.state.model_path.as_deref(), l.state.log_path.as_deref()),
+            Saved::Search(s) => s.paths(),
+        }
     }
 
     pub fn path(&self) -> &Path {
@@ -43,12 +67,12 @@ impl Checkpoint {
 
     /// The model file the interrupted run was writing.
     pub fn model_path(&self) -> Option<&Path> {
-        self.learned.state.model_path.as_deref()
+        self.paths().0
     }
 
     /// The training log the interrupted run was writing.
     pub fn log_path(&self) -> Option<&Path> {
-        self.learned.state.log_path.as_deref()
+        self.paths().1
     }
 }
 
@@ -56,8 +80,30 @@ impl Checkpoint {
 /// be the ones the run was started on, and options given again must agree
 /// with its settings (those that only steer the rest of the run apply).
 pub(super) fn resume(checkpoint: &Checkpoint, run: &Run, opts: &FitOptions) -> Result<Learned> {
-    let mut learned = checkpoint.learned.clone();
-    let state = &learned.state;
+    let Saved::Run(learned) = &checkpoint.saved else {
+        return Err(Error::Invalid(format!(
+            "{}: is the checkpoint of a search over densities; resume it without density options",
+            checkpoint.path.display()
+        )));
+    };
+    let mut learned = learned.clone();
+    same_inputs(run, &learned.state)?;
+    // A minibatch larger than the training rows was cut to them.
+    let train_rows = run.data.rows - validation_rows(run.data.rows, learned.settings.val_fraction);
+    let opts = &FitOptions { batch_size: opts.batch_size.map(|b| b.min(train_rows)), ..opts.clone() };
+    for msg in apply_resume_options(&mut learned.settings, &learned.state, opts)? {
+        if !opts.quiet {
+            note(msg);
+        }
+    }
+    learned.state.model_path = absolute(run.output);
+    learned.state.log_path = absolute(run.log);
+    Ok(learned)
+}
+
+/// The data, validation rows and labels of a resumed run must be the ones
+/// the run was started on.
+pub(super) fn same_inputs(run: &Run, state: &TrainState) -> Result<()> {
     let refuse = |what: &Path, fp: &Fingerprint| {
         Error::Invalid(format!(
             "{}: differs from the data this run was started on ({} x {}, checksum {:016x}); resume needs the same file",
@@ -91,17 +137,7 @@ pub(super) fn resume(checkpoint: &Checkpoint, run: &Run, opts: &FitOptions) -> R
         }
         _ => {}
     }
-    // A minibatch larger than the training rows was cut to them.
-    let train_rows = run.data.rows - validation_rows(run.data.rows, learned.settings.val_fraction);
-    let opts = &FitOptions { batch_size: opts.batch_size.map(|b| b.min(train_rows)), ..opts.clone() };
-    for msg in apply_resume_options(&mut learned.settings, &learned.state, opts)? {
-        if !opts.quiet {
-            note(msg);
-        }
-    }
-    learned.state.model_path = absolute(run.output);
-    learned.state.log_path = absolute(run.log);
-    Ok(learned)
+    Ok(())
 }
 
 /// Options given again with `--resume`. Those that only steer the rest of

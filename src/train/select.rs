@@ -3,11 +3,13 @@
 //! log-likelihood is kept. A fixed table of settings tuned on one dump does
 //! not transfer to the next; the held-out rows can decide.
 
-use super::{fit_one, FitOptions, Pause, Run, Settings, Staged, GAUSSIAN_BELOW_ROWS_PER_FEATURE};
+use super::checkpoint::{absolute, same_inputs, SEARCH_KEY};
+use super::{fit_one, FitOptions, Pause, Run, Settings, Staged, TrainState, GAUSSIAN_BELOW_ROWS_PER_FEATURE};
 use crate::error::{Error, Result};
-use crate::model::{kind_name, Candidate, Kind, Model};
+use crate::model::{kind_name, Candidate, Extras, Kind, Model};
 use crate::output::note;
-use std::time::Instant;
+use std::path::Path;
+use std::time::{Duration, Instant};
 
 /// Whether `fit` chooses the density: no kind or flow option given, not
 /// resuming one run, not told to skip the search, and validation rows to
@@ -142,11 +144,14 @@ fn flow_configs(opts: &FitOptions, table: &Settings, dims: usize) -> Vec<FlowCon
     configs
 }
 
-/// The default search budget: five times the projected time of one flow at
-/// the settings table (its first stage's seconds per epoch times its
-/// epochs), at least a minute.
+/// The default search budget, as a multiple of the projected time of one
+/// flow at the settings table (its first stage's seconds per epoch times
+/// its epochs), at least a minute: the race of eight configurations costs
+/// about six such flows when no run stops early.
+const DEFAULT_BUDGET_FACTOR: f64 = 8.0;
+
 fn default_budget(first_stage_seconds: f64, first_stage_epochs: usize, epochs: usize) -> f64 {
-    (5.0 * first_stage_seconds / first_stage_epochs.max(1) as f64 * epochs as f64).max(60.0)
+    (DEFAULT_BUDGET_FACTOR * first_stage_seconds / first_stage_epochs.max(1) as f64 * epochs as f64).max(60.0)
 }
 
 /// A flow of the search and how far it got.
@@ -156,46 +161,177 @@ struct Racer {
     stages: Vec<f64>,
 }
 
+/// Where the race stands: the stage, the flows still racing, and which of
+/// them trains next.
+#[derive(Clone, serde::Serialize, serde::Deserialize)]
+struct Position {
+    round: usize,
+    alive: Vec<usize>,
+    /// Index into `alive` of the flow that trains next.
+    next: usize,
+    budget: Option<f64>,
+    /// Seconds the search had run.
+    elapsed: f64,
+}
+
+/// Everything but tensors that a search checkpoint holds.
+#[derive(serde::Serialize, serde::Deserialize)]
+struct SearchState {
+    position: Position,
+    racers: Vec<RacerState>,
+    model_path: Option<std::path::PathBuf>,
+    log_path: Option<std::path::PathBuf>,
+}
+
+#[derive(serde::Serialize, serde::Deserialize)]
+struct RacerState {
+    name: String,
+    state: TrainState,
+    stages: Vec<f64>,
+}
+
+/// A search checkpoint read back: its state, and the file for its tensors.
+pub(crate) struct SavedSearch {
+    state: SearchState,
+    extras: Extras,
+}
+
+impl SavedSearch {
+    pub(super) fn read(path: &Path, json: &str, extras: Extras) -> Result<SavedSearch> {
+        let state: SearchState = serde_json::from_str(json).map_err(|e| {
+            Error::model(path, format!("bad search checkpoint: {}", crate::data::printable(&e.to_string(), 200)))
+        })?;
+        let p = &state.position;
+        if p.round >= ROUNDS || p.next > p.alive.len() || p.alive.iter().any(|&i| i >= state.racers.len()) {
+            return Err(Error::model(path, "bad search checkpoint: its position is out of range"));
+        }
+        Ok(SavedSearch { state, extras })
+    }
+
+    pub(super) fn paths(&self) -> (Option<&Path>, Option<&Path>) {
+        (self.state.model_path.as_deref(), self.state.log_path.as_deref())
+    }
+}
+
+const ROUNDS: usize = 3;
+const TENSORS: [&str; 4] = ["params", "best_params", "adam_m", "adam_v"];
+
+/// The race: configurations, their flows (restored from a checkpoint when
+/// resuming) and where it stands.
+fn line_up(
+    run: &Run,
+    opts: &FitOptions,
+    table: &Settings,
+    dims: usize,
+    saved: Option<&SavedSearch>,
+) -> Result<(Vec<Racer>, Position)> {
+    let mut racers: Vec<Racer> = Vec::new();
+    for config in flow_configs(opts, table, dims) {
+        let flow = Staged::new(run, &config.opts)?;
+        racers.push(Racer { config, flow, stages: Vec::new() });
+    }
+    let Some(saved) = saved else {
+        let position = Position {
+            round: 0,
+            alive: (0..racers.len()).collect(),
+            next: 0,
+            budget: opts.budget.map(|b| b.0),
+            elapsed: 0.0,
+        };
+        return Ok((racers, position));
+    };
+    let names: Vec<&str> = racers.iter().map(|r| r.config.name).collect();
+    let kept: Vec<&str> = saved.state.racers.iter().map(|r| r.name.as_str()).collect();
+    if names != kept {
+        return Err(Error::Invalid(format!(
+            "{}: this search raced other flows ({}); start a new run",
+            saved.extras.path().display(),
+            kept.join(", ")
+        )));
+    }
+    for (i, (r, s)) in racers.iter_mut().zip(&saved.state.racers).enumerate() {
+        same_inputs(run, &s.state)?;
+        let n = r.flow.tensors()[0].len();
+        let t = |name: &str| saved.extras.tensor(&format!("search.{i}.{name}"), n);
+        r.flow.restore(s.state.clone(), [t(TENSORS[0])?, t(TENSORS[1])?, t(TENSORS[2])?, t(TENSORS[3])?]);
+        r.stages = s.stages.clone();
+    }
+    let mut position = saved.state.position.clone();
+    if let Some(b) = opts.budget {
+        position.budget = Some(b.0);
+    }
+    Ok((racers, position))
+}
+
+/// Write the search checkpoint: the best density so far as the model, each
+/// flow's weights, best weights and optimizer moments, and the position.
+fn save_search(run: &Run, best: &Model, racers: &[Racer], position: Position) -> Result<()> {
+    let Some(path) = &run.checkpoint else { return Ok(()) };
+    let state = SearchState {
+        position,
+        racers: racers
+            .iter()
+            .map(|r| RacerState {
+                name: r.config.name.to_string(),
+                state: r.flow.state().clone(),
+                stages: r.stages.clone(),
+            })
+            .collect(),
+        model_path: absolute(run.output),
+        log_path: absolute(run.log),
+    };
+    let json = serde_json::to_string(&state).map_err(|e| Error::Invalid(e.to_string()))?;
+    let mut extra = Vec::new();
+    for (i, r) in racers.iter().enumerate() {
+        for (name, values) in TENSORS.iter().zip(r.flow.tensors()) {
+            extra.push((format!("search.{i}.{name}"), values));
+        }
+    }
+    best.save_with(path, extra, Some((SEARCH_KEY, json)))
+}
+
 /// Successive halving over the flow configurations (Jamieson & Talwalkar
 /// 2016; Li et al. 2018): every configuration trains for a quarter of the
 /// epochs, the better half by validation NLL carries on to half, the better
 /// half of those to all of them (each on the learning-rate schedule of the
 /// full run, so a stage continues where the last one paused). A run that
 /// stops early keeps its best. The stages stop when the budget is spent.
-fn race_flows(run: &Run, opts: &FitOptions, dims: usize, train_rows: usize, started: Instant) -> Result<Vec<Racer>> {
-    let labelled = run.labels.is_some();
+/// Interrupted, it writes a search checkpoint (see [`save_search`]) that
+/// [`resume`] continues to the same result.
+fn race_flows(run: &Run, opts: &FitOptions, best: &Model, saved: Option<&SavedSearch>) -> Result<Vec<Racer>> {
+    let (dims, train_rows) = (best.dim(), best.meta.training.train_rows);
+    let quiet_run = Run { output: None, checkpoint: None, log: None, ..*run };
     let table_opts = FitOptions { kind: Some(Kind::Flow), ..opts.clone() };
-    let table = Settings::resolve(&table_opts, train_rows, dims, run.val.is_some(), labelled)?;
+    let table = Settings::resolve(&table_opts, train_rows, dims, run.val.is_some(), run.labels.is_some())?;
     let epochs = table.epochs;
     let stages = [epochs.div_ceil(4), epochs.div_ceil(2), epochs];
-    let mut budget = opts.budget.map(|b| b.0);
-    let mut racers: Vec<Racer> = Vec::new();
-    for config in flow_configs(opts, &table, dims) {
-        let flow = Staged::new(run, &config.opts)?;
-        racers.push(Racer { config, flow, stages: Vec::new() });
-    }
-    let mut alive: Vec<usize> = (0..racers.len()).collect();
-    for (round, &until) in stages.iter().enumerate() {
-        for &i in &alive {
-            let spent = started.elapsed().as_secs_f64();
-            if budget.is_some_and(|b| spent >= b) && !(round == 0 && i == 0) {
+    let (mut racers, mut at) = line_up(&quiet_run, opts, &table, dims, saved)?;
+    let started = Instant::now().checked_sub(Duration::from_secs_f64(at.elapsed)).unwrap_or_else(Instant::now);
+    while at.round < ROUNDS {
+        let until = stages[at.round];
+        while at.next < at.alive.len() {
+            let i = at.alive[at.next];
+            let first = at.round == 0 && i == 0;
+            if at.budget.is_some_and(|b| started.elapsed().as_secs_f64() >= b) && !first {
                 break;
             }
-            let deadline = budget.map(|b| started + std::time::Duration::from_secs_f64(b));
+            let deadline = at.budget.filter(|_| !first).map(|b| started + Duration::from_secs_f64(b));
             let r = &mut racers[i];
-            r.flow.train_to(
-                run,
-                &r.config.opts,
-                Pause { epoch: until, deadline: if i == 0 && round == 0 { None } else { deadline } },
-            )?;
+            if let Err(e) = r.flow.train_to(&quiet_run, &r.config.opts, Pause { epoch: until, deadline }) {
+                if let Error::Interrupted(_) = e {
+                    at.elapsed = started.elapsed().as_secs_f64();
+                    save_search(run, best, &racers, at)?;
+                }
+                return Err(e);
+            }
             r.stages.push(r.flow.best_validation_nll());
-            if budget.is_none() {
+            if at.budget.is_none() {
                 // The first stage of the table's flow sets the default budget.
                 let b = default_budget(r.flow.seconds(), r.flow.epochs(), epochs);
-                budget = Some(b);
+                at.budget = Some(b);
                 if !opts.quiet {
                     note(format!(
-                        "search budget {} (5 x the projected time of one flow; --budget sets it)",
+                        "search budget {} ({DEFAULT_BUDGET_FACTOR} x the projected time of one flow; --budget sets it)",
                         minutes(b)
                     ));
                 }
@@ -209,11 +345,16 @@ fn race_flows(run: &Run, opts: &FitOptions, dims: usize, train_rows: usize, star
                     minutes(started.elapsed().as_secs_f64())
                 ));
             }
+            at.next += 1;
         }
         // The better half carries on; finished runs stand on their best.
-        alive.retain(|&i| !racers[i].flow.finished() && racers[i].stages.len() == round + 1);
-        alive.sort_by(|&a, &b| racers[a].flow.best_validation_nll().total_cmp(&racers[b].flow.best_validation_nll()));
-        alive.truncate(alive.len().div_ceil(2));
+        let round = at.round;
+        at.alive.retain(|&i| !racers[i].flow.finished() && racers[i].stages.len() == round + 1);
+        at.alive
+            .sort_by(|&a, &b| racers[a].flow.best_validation_nll().total_cmp(&racers[b].flow.best_validation_nll()));
+        at.alive.truncate(at.alive.len().div_ceil(2));
+        at.round += 1;
+        at.next = 0;
     }
     Ok(racers)
 }
@@ -229,11 +370,10 @@ fn minutes(seconds: f64) -> String {
 /// Fit every candidate kind and keep the best on the validation rows: the
 /// Gaussian, the mixture, and flows raced by successive halving. An
 /// interrupted search writes the best density so far to the run's output.
-pub(super) fn fit_best(run: &Run, opts: &FitOptions) -> Result<Model> {
-    let started = Instant::now();
+pub(super) fn fit_best(run: &Run, opts: &FitOptions, saved: Option<&SavedSearch>) -> Result<Model> {
     let mut best: Option<Model> = None;
     let mut candidates: Vec<Candidate> = Vec::new();
-    let quiet_run = Run { output: None, checkpoint: None, log: None, ..*run };
+    let quiet_run = Run { output: None, checkpoint: None, log: None, resume: None, ..*run };
     for kind in kinds(run, opts) {
         let t = Instant::now();
         if kind != Kind::Flow {
@@ -244,8 +384,8 @@ pub(super) fn fit_best(run: &Run, opts: &FitOptions) -> Result<Model> {
             continue;
         }
         let first = best.as_ref().expect("a Gaussian kind comes first");
-        let (dims, train_rows) = (first.dim(), first.meta.training.train_rows);
-        let racers = match race_flows(&quiet_run, opts, dims, train_rows, started) {
+        let dims = first.dim();
+        let racers = match race_flows(run, opts, first, saved) {
             Ok(r) => r,
             Err(Error::Interrupted(msg)) => return Err(interrupted(run, best, msg)),
             Err(e) => return Err(e),
@@ -312,6 +452,18 @@ fn keep(opts: &FitOptions, candidates: &mut Vec<Candidate>, best: &mut Option<Mo
     if best.as_ref().is_none_or(|b| clearly_better(&model, b)) {
         *best = Some(model);
     }
+}
+
+/// Continue an interrupted search from its checkpoint: the Gaussian kinds
+/// are fitted again (they are quick and deterministic), the flows go on
+/// from where they stopped.
+pub(super) fn resume(run: &Run, opts: &FitOptions, saved: &SavedSearch) -> Result<Model> {
+    if opts.kind.is_some() || opts.asks_for_a_flow() {
+        return Err(Error::Invalid(
+            "this checkpoint is of a search over densities; resume it with the options it was started with".into(),
+        ));
+    }
+    fit_best(run, opts, Some(saved))
 }
 
 /// The error of an interrupted search, after writing the best density so
