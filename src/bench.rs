@@ -22,6 +22,7 @@ pub struct BenchConfig {
     pub layers: usize,
     pub depth: usize,
     pub batch: usize,
+    pub coupling: crate::flow::Coupling,
     pub threads: usize,
     pub seconds: f64,
 }
@@ -83,6 +84,7 @@ pub fn run(cfg: &BenchConfig) -> BenchResult {
         clamp: 3.0,
         classes: 0,
         mixing: Mixing::Permutation,
+        coupling: cfg.coupling,
     };
     let mut flow = Flow::new(spec.clone(), 7);
     let mut rng = StdRng::seed_from_u64(3);
@@ -177,8 +179,16 @@ mod tests {
     /// 32*128 + 128*128 + 128*64 = 28,672 multiply-adds per layer.
     #[test]
     fn forward_macs_by_hand() {
-        let spec =
-            FlowSpec { dim: 64, layers: 8, hidden: 128, depth: 2, clamp: 3.0, classes: 0, mixing: Mixing::Permutation };
+        let spec = FlowSpec {
+            dim: 64,
+            layers: 8,
+            hidden: 128,
+            depth: 2,
+            clamp: 3.0,
+            classes: 0,
+            mixing: Mixing::Permutation,
+            coupling: Default::default(),
+        };
         assert_eq!(forward_macs(&spec), 8.0 * 28_672.0);
     }
 }

@@ -14,7 +14,7 @@ use tidemark::flow::Mixing;
 use tidemark::model::{Kind, Model};
 use tidemark::output::{self, check_files, note, FileKey, Input, Output};
 use tidemark::preprocess::Method;
-use tidemark::train::{default_threads, Budget, Checkpoint, FitOptions, Run, ShrinkageOption, Source};
+use tidemark::train::{default_threads, Budget, Checkpoint, CouplingKind, FitOptions, Run, ShrinkageOption, Source};
 use tidemark::{check, columnar, data, demo, evaluate, input, report, score, stream, Error, Result};
 
 #[derive(Parser)]
@@ -168,6 +168,12 @@ enum Command {
         /// Minibatch size.
         #[arg(long, default_value_t = 256)]
         batch: usize,
+        /// Coupling transform.
+        #[arg(long, value_enum, default_value_t = CouplingKind::Affine)]
+        coupling: CouplingKind,
+        /// Spline bins (with --coupling spline).
+        #[arg(long, default_value_t = 8)]
+        bins: usize,
         /// Worker threads.
         #[arg(long, default_value_t = 1)]
         threads: usize,
@@ -292,6 +298,15 @@ struct FitArgs {
     /// Soft clamp of the coupling log-scale [default: 3].
     #[arg(long)]
     clamp: Option<f32>,
+    /// Coupling transform: affine, or monotone rational-quadratic splines [default: affine].
+    #[arg(long, value_enum)]
+    coupling: Option<CouplingKind>,
+    /// Spline bins (with --coupling spline) [default: 8].
+    #[arg(long)]
+    bins: Option<usize>,
+    /// Splines act on [-B, B] (whitened units after ActNorm), the identity outside (with --coupling spline) [default: 3].
+    #[arg(long)]
+    tail_bound: Option<f32>,
     /// What mixes features between coupling layers [default: permutation].
     #[arg(long, value_enum)]
     mixing: Option<Mixing>,
@@ -394,6 +409,9 @@ impl FitArgs {
             depth: self.depth,
             clamp: self.clamp,
             mixing: self.mixing,
+            coupling: self.coupling,
+            bins: self.bins,
+            tail_bound: self.tail_bound,
             flow_dims: self.flow_dims,
             epochs: self.epochs,
             batch_size: self.batch_size,
@@ -719,8 +737,15 @@ fn run(cli: Cli) -> Result<()> {
             }
             Ok(())
         }
-        Command::Bench { dim, hidden, layers, depth, batch, threads, seconds, json, force } => {
+        Command::Bench { dim, hidden, layers, depth, batch, coupling, bins, threads, seconds, json, force } => {
             let cfg = tidemark::bench::BenchConfig {
+                coupling: match coupling {
+                    CouplingKind::Affine => tidemark::flow::Coupling::Affine,
+                    CouplingKind::Spline => tidemark::flow::Coupling::Spline {
+                        bins: check::count("--bins", bins, 2, tidemark::flow::spline::MAX_BINS)?,
+                        tail_bound: 3.0,
+                    },
+                },
                 dim: check::count("--dim", dim, 2, 1 << 16)?,
                 hidden: check::count("--hidden", hidden, 1, 1 << 16)?,
                 layers: check::count("--layers", layers, 1, 1024)?,

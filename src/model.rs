@@ -161,8 +161,14 @@ impl Meta {
         line(
             "flow",
             format!(
-                "{} coupling layers over the leading {} of {} whitened dims; conditioner {} x {} (soft clamp {}); {}",
+                "{} {} coupling layers over the leading {} of {} whitened dims; conditioner {} x {} (soft clamp {}); {}",
                 self.flow.layers,
+                match self.flow.coupling {
+                    crate::flow::Coupling::Affine => "affine".to_string(),
+                    crate::flow::Coupling::Spline { bins, tail_bound } => {
+                        format!("rational-quadratic spline ({bins} bins on [-{tail_bound}, {tail_bound}])")
+                    }
+                },
                 self.flow_dims,
                 p.whitened_dims,
                 self.flow.depth,
@@ -306,7 +312,7 @@ pub struct ScoringRefs {
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq, serde::Serialize, serde::Deserialize, clap::ValueEnum)]
 #[serde(rename_all = "kebab-case")]
 pub enum Kind {
-    /// Whitening followed by affine coupling layers (optionally class-conditional).
+    /// Whitening followed by coupling layers (optionally class-conditional).
     #[default]
     Flow,
     /// One full-covariance Gaussian (Ledoit-Wolf shrinkage when rows are few).

@@ -7,7 +7,7 @@
 use crate::check;
 use crate::data::{mix64, Dataset};
 use crate::error::{Error, Result};
-use crate::flow::{Flow, FlowSpec, Mixing, Workers, HALF_LN_2PI};
+use crate::flow::{Coupling, Flow, FlowSpec, Mixing, Workers, HALF_LN_2PI};
 use crate::model::{
     format_version_for, leading_columns_into, ClassCount, Kind, Meta, Model, PreprocessingMeta, ScoringMeta,
     ScoringRefs, Spread, TrainingSummary,
@@ -41,6 +41,9 @@ pub struct FitOptions {
     pub depth: Option<usize>,
     pub clamp: Option<f32>,
     pub mixing: Option<Mixing>,
+    pub coupling: Option<CouplingKind>,
+    pub bins: Option<usize>,
+    pub tail_bound: Option<f32>,
     pub flow_dims: Option<usize>,
     pub epochs: Option<usize>,
     pub batch_size: Option<usize>,
@@ -119,6 +122,15 @@ impl FitOptions {
         opt(self.checkpoint_every, "checkpoint_every", 1, 1_000_000)?;
         opt(self.threads, "threads", 1, check::MAX_THREADS)?;
         opt(self.components, "components", 1, 1 << 16)?;
+        opt(self.bins, "bins", 2, crate::flow::spline::MAX_BINS)?;
+        if (self.bins.is_some() || self.tail_bound.is_some()) && self.coupling != Some(CouplingKind::Spline) {
+            return Err(Error::Invalid(format!(
+                "{} and {} shape spline couplings; add {} spline",
+                n("bins"),
+                n("tail_bound"),
+                n("coupling")
+            )));
+        }
         if self.components.is_some() && self.kind.is_some_and(|k| k != Kind::Mixture) {
             return Err(Error::Invalid(format!("{} sizes a mixture; it needs the mixture kind", n("components"))));
         }
@@ -127,6 +139,7 @@ impl FitOptions {
         };
         real(self.background_noise, "background_noise", check::positive)?;
         real(self.clamp.map(f64::from), "clamp", check::positive)?;
+        real(self.tail_bound.map(f64::from), "tail_bound", check::positive)?;
         real(self.lr, "lr", check::positive)?;
         real(self.grad_clip, "grad_clip", check::positive)?;
         real(self.noise, "noise", check::non_negative)?;
@@ -158,6 +171,9 @@ impl FitOptions {
             depth: self.depth.or(fallback.depth),
             clamp: self.clamp.or(fallback.clamp),
             mixing: self.mixing.or(fallback.mixing),
+            coupling: self.coupling.or(fallback.coupling),
+            bins: self.bins.or(fallback.bins),
+            tail_bound: self.tail_bound.or(fallback.tail_bound),
             flow_dims: self.flow_dims.or(fallback.flow_dims),
             epochs: self.epochs.or(fallback.epochs),
             batch_size: self.batch_size.or(fallback.batch_size),
@@ -188,6 +204,23 @@ mod checkpoint;
 mod fit_mixture;
 mod progress;
 mod select;
+
+/// The coupling transform as the user names it (its shape comes from
+/// `bins` and `tail_bound`).
+#[derive(Clone, Copy, Debug, PartialEq, Eq, serde::Serialize, serde::Deserialize, clap::ValueEnum)]
+#[serde(rename_all = "lowercase")]
+pub enum CouplingKind {
+    /// y = x e^s + t with a soft-clamped log-scale s.
+    Affine,
+    /// Monotone rational-quadratic splines with linear tails.
+    Spline,
+}
+
+/// Spline bins and tail bound (whitened units, after ActNorm) when not
+/// given: the published tabular settings were of this size (recalled from
+/// memory, not measured here).
+const DEFAULT_BINS: usize = 8;
+const DEFAULT_TAIL_BOUND: f32 = 3.0;
 
 /// A duration in seconds, written as a number with a unit (`90s`, `20m`,
 /// `8h`, `1h30m`; a bare number is seconds).
@@ -332,6 +365,10 @@ pub struct Settings {
     /// option existed used the permutation).
     #[serde(default)]
     pub mixing: Mixing,
+    /// The coupling transform (models made before the option existed used
+    /// the affine one).
+    #[serde(default)]
+    pub coupling: Coupling,
     pub flow_dims: usize,
     pub epochs: usize,
     pub batch_size: usize,
@@ -394,6 +431,9 @@ impl FitOptions {
             || self.depth.is_some()
             || self.clamp.is_some()
             || self.mixing.is_some()
+            || self.coupling.is_some()
+            || self.bins.is_some()
+            || self.tail_bound.is_some()
             || self.flow_dims.is_some()
             || self.dropout.is_some()
             || self.noise.is_some()
@@ -449,6 +489,13 @@ impl Settings {
             depth: o.depth.unwrap_or(2),
             clamp: o.clamp.unwrap_or(3.0),
             mixing: o.mixing.unwrap_or_default(),
+            coupling: match o.coupling {
+                Some(CouplingKind::Spline) => Coupling::Spline {
+                    bins: o.bins.unwrap_or(DEFAULT_BINS),
+                    tail_bound: o.tail_bound.unwrap_or(DEFAULT_TAIL_BOUND),
+                },
+                _ => Coupling::Affine,
+            },
             flow_dims,
             epochs: o.epochs.unwrap_or((20_000usize.div_ceil(steps_per_epoch)).clamp(20, 200)),
             batch_size,
@@ -882,6 +929,7 @@ fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
         clamp: settings.clamp,
         mixing: settings.mixing,
         classes: if matches!(kind, Kind::Gaussian | Kind::Mixture) { 0 } else { classes.len() },
+        coupling: settings.coupling,
     };
     let mut flow = Flow::new(spec, settings.seed);
     for (c, mean) in class_means.iter().enumerate() {
@@ -1036,7 +1084,11 @@ fn labels_checksum(labels: &[i64]) -> u64 {
 fn skeleton_meta(cols: usize, pre: &Preprocessor, flow: &Flow, s: &Settings, classes: Vec<ClassCount>) -> Result<Meta> {
     Ok(Meta {
         format: "tidemark-model".into(),
-        format_version: format_version_for(flow.spec.mixing, s.kind),
+        format_version: if flow.spec.coupling == Coupling::Affine {
+            format_version_for(flow.spec.mixing, s.kind)
+        } else {
+            3
+        },
         created_by: format!("tidemark {}", env!("CARGO_PKG_VERSION")),
         input_dim: cols,
         preprocessing: PreprocessingMeta {

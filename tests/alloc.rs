@@ -8,7 +8,7 @@
 use std::alloc::{GlobalAlloc, Layout, System};
 use std::sync::atomic::{AtomicUsize, Ordering};
 use tidemark::data::{write_npy, Dataset, Matrix};
-use tidemark::flow::{Flow, FlowSpec, Mixing, Workers};
+use tidemark::flow::{Coupling, Flow, FlowSpec, Mixing, Workers};
 use tidemark::linalg::inside_gemm;
 use tidemark::preprocess::{Method, Preprocessor, TransformScratch, DEFAULT_DEAD_THRESHOLD};
 use tidemark::train::Adam;
@@ -44,8 +44,16 @@ fn a_training_step_allocates_nothing_after_the_first() {
     let all: Vec<usize> = (0..n).collect();
     let pre = Preprocessor::fit(&data, &all, Method::Pca, DEFAULT_DEAD_THRESHOLD).unwrap();
     let k = pre.dim();
-    for (threads, mixing) in [1, 2].into_iter().flat_map(|t| [(t, Mixing::Permutation), (t, Mixing::Lu)]) {
-        let spec = FlowSpec { dim: k, layers: 4, hidden: 64, depth: 2, clamp: 3.0, classes: 3, mixing };
+    let spline = Coupling::Spline { bins: 8, tail_bound: 3.0 };
+    let cases = [1, 2].into_iter().flat_map(|t| {
+        [
+            (t, Mixing::Permutation, Coupling::Affine),
+            (t, Mixing::Lu, Coupling::Affine),
+            (t, Mixing::Permutation, spline),
+        ]
+    });
+    for (threads, mixing, coupling) in cases {
+        let spec = FlowSpec { dim: k, layers: 4, hidden: 64, depth: 2, clamp: 3.0, classes: 3, mixing, coupling };
         let mut flow = Flow::new(spec, 1);
         let classes: Vec<u32> = (0..rows as u32).map(|r| r % 3).collect();
         let mut workers = Workers::new(&flow, threads, rows);

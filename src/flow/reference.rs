@@ -1,7 +1,7 @@
 //! The same flow built from candle tensors with candle's autograd, in f64.
 //! Tests hold the hand-written forward, backward and inverse to it.
 
-use super::{Dropout, Flow, HALF_LN_2PI};
+use super::{Coupling, Dropout, Flow, HALF_LN_2PI};
 use candle_core::{DType, Device, Tensor, Var};
 
 /// What the reference computes for a batch: the mean NLL, its gradient
@@ -82,14 +82,88 @@ fn forward(
             vars.push((lin.weight, w));
             vars.push((lin.bias, bias));
         }
-        let c = spec.clamp as f64;
-        let s = ((net.narrow(1, 0, d2)? / c)?.tanh()? * c)?;
-        let t = net.narrow(1, d2, d2)?;
-        let y2 = ((p2 * s.exp()?)? + t)?;
-        logdet = (logdet + s.sum(1)?)?;
+        let (y2, ld) = match spec.coupling {
+            Coupling::Affine => {
+                let c = spec.clamp as f64;
+                let s = ((net.narrow(1, 0, d2)? / c)?.tanh()? * c)?;
+                let t = net.narrow(1, d2, d2)?;
+                (((p2 * s.exp()?)? + t)?, s.sum(1)?)
+            }
+            Coupling::Spline { bins, tail_bound } => spline(&p2, &net, bins, tail_bound as f64)?,
+        };
+        logdet = (logdet + ld)?;
         h = Tensor::cat(&[&p1, &y2], 1)?;
     }
     Ok((h, logdet, vars))
+}
+
+/// Softmax over the last dimension, written out so that autograd sees it.
+fn softmax_last(t: &Tensor) -> candle_core::Result<Tensor> {
+    let e = t.broadcast_sub(&t.max_keepdim(2)?)?.exp()?;
+    e.broadcast_div(&e.sum_keepdim(2)?)
+}
+
+/// The rational-quadratic spline coupling on `x` (`rows x d2`) with the
+/// conditioner output `net` (`rows x d2 (3K - 1)`), elementwise on a tensor
+/// `rows x d2 x K`: each element's bin is found from the values and enters
+/// as a one-hot mask, so autograd differentiates the spline of that bin.
+/// Returns `(y, per-row log-det)`.
+fn spline(x: &Tensor, net: &Tensor, k: usize, bound: f64) -> candle_core::Result<(Tensor, Tensor)> {
+    let dev = x.device();
+    let (rows, d2) = x.dims2()?;
+    let m = 3 * k - 1;
+    let net = net.reshape((rows, d2, m))?;
+    let (min_bin, min_d) = (1e-3, 1e-3);
+    let spread = 1.0 - min_bin * k as f64;
+    let widths = ((softmax_last(&net.narrow(2, 0, k)?)? * spread)? + min_bin)?.affine(2.0 * bound, 0.0)?;
+    let heights = ((softmax_last(&net.narrow(2, k, k)?)? * spread)? + min_bin)?.affine(2.0 * bound, 0.0)?;
+    // Left knots: -B plus the widths of every bin to the left (a product
+    // with a strictly upper-triangular matrix of ones).
+    let left: Vec<f64> = (0..k * k).map(|e| if e / k < e % k { 1.0 } else { 0.0 }).collect();
+    let left = Tensor::from_vec(left, (k, k), dev)?;
+    let cum = |t: &Tensor| -> candle_core::Result<Tensor> {
+        (t.reshape((rows * d2, k))?.matmul(&left)?.reshape((rows, d2, k))? - bound)
+    };
+    let (xk, yk) = (cum(&widths)?, cum(&heights)?);
+    let inner = net.narrow(2, 2 * k, k - 1)?;
+    let softplus = (inner.exp()? + 1.0)?.log()?;
+    let inner_d = ((softplus * ((1.0 - min_d) / std::f64::consts::LN_2))? + min_d)?;
+    let ones = Tensor::ones((rows, d2, 1), DType::F64, dev)?;
+    let d = Tensor::cat(&[&ones, &inner_d, &ones], 2)?;
+    // One-hot bin masks from the values, and which elements are inside.
+    let xs = x.to_vec2::<f64>()?;
+    let knots = xk.to_vec3::<f64>()?;
+    let mut onehot = vec![0.0f64; rows * d2 * k];
+    let mut inside = vec![0.0f64; rows * d2];
+    for r in 0..rows {
+        for j in 0..d2 {
+            // Outside elements run the spline at 0 (masked out below), which
+            // keeps their arithmetic finite.
+            let v = if xs[r][j] >= -bound && xs[r][j] < bound { xs[r][j] } else { 0.0 };
+            inside[r * d2 + j] = if v == xs[r][j] { 1.0 } else { 0.0 };
+            let b = (1..k).take_while(|&i| v >= knots[r][j][i]).count();
+            onehot[(r * d2 + j) * k + b] = 1.0;
+        }
+    }
+    let onehot = Tensor::from_vec(onehot, (rows, d2, k), dev)?;
+    let inside = Tensor::from_vec(inside, (rows, d2), dev)?;
+    let pick = |t: &Tensor| (t * &onehot)?.sum(2);
+    let (wb, hb, xb, yb) = (pick(&widths)?, pick(&heights)?, pick(&xk)?, pick(&yk)?);
+    let db = pick(&d.narrow(2, 0, k)?)?;
+    let db1 = pick(&d.narrow(2, 1, k)?)?;
+    let xin = (x * &inside)?;
+    let s = (&hb / &wb)?;
+    let xi = ((&xin - &xb)? / &wb)?;
+    let q = (&xi * xi.affine(-1.0, 1.0)?)?;
+    let num = (&hb * ((&s * xi.sqr()?)? + (&db * &q)?)?)?;
+    let den = (&s + ((((&db1 + &db)? - (&s * 2.0)?)?) * &q)?)?;
+    let y = (&yb + (&num / &den)?)?;
+    let t = (((&db1 * xi.sqr()?)? + ((&s * 2.0)? * &q)?)? + (&db * xi.affine(-1.0, 1.0)?.sqr()?)?)?;
+    let ld = (((s.log()? * 2.0)? + t.log()?)? - (den.log()? * 2.0)?)?;
+    let outside = inside.affine(-1.0, 1.0)?;
+    let y = ((&y * &inside)? + (x * &outside)?)?;
+    let ld = (ld * &inside)?.sum(1)?;
+    Ok((y, ld))
 }
 
 /// Mean NLL of `x` (with per-row class labels for a class-conditional

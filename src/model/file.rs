@@ -324,6 +324,11 @@ fn check_spec(path: &Path, prefix: &str, spec: &FlowSpec) -> Result<()> {
     if !(spec.clamp.is_finite() && spec.clamp > 0.0) {
         return bad(format!("has soft clamp {}", spec.clamp));
     }
+    if let crate::flow::Coupling::Spline { bins, tail_bound } = spec.coupling {
+        if !(2..=crate::flow::spline::MAX_BINS).contains(&bins) || !(tail_bound.is_finite() && tail_bound > 0.0) {
+            return bad(format!("has spline couplings of {bins} bins on [-{tail_bound}, {tail_bound}]"));
+        }
+    }
     Ok(())
 }
 
@@ -498,11 +503,14 @@ fn read_flow(t: &Tensors, prefix: &str, spec: &FlowSpec, version: u32) -> Result
     if version < format_version_for(spec.mixing, crate::model::Kind::Flow) {
         return Err(Error::model(t.path, format!("{prefix}: LU mixing in a version {version} model file")));
     }
+    if version < 3 && spec.coupling != crate::flow::Coupling::Affine {
+        return Err(Error::model(t.path, format!("{prefix}: spline couplings in a version {version} model file")));
+    }
     let (dim, h) = (spec.dim, spec.hidden);
-    let (d1, d2) = spec.split();
+    let d1 = spec.split().0;
     let mut shapes = vec![(h, d1)];
     shapes.extend(std::iter::repeat_n((h, h), spec.depth - 1));
-    shapes.push((2 * d2, h));
+    shapes.push((spec.conditioner_out(), h));
     let mut values = Vec::new();
     for k in 0..spec.layers {
         values.push(t.f32s(&format!("{prefix}.{k}.actnorm.log_scale"), &[dim])?);

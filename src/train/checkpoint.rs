@@ -153,6 +153,15 @@ fn apply_resume_options(s: &mut Settings, state: &TrainState, o: &FitOptions) ->
     keep("--depth", o.depth, s.depth)?;
     keep("--clamp", o.clamp, s.clamp)?;
     keep("--mixing", o.mixing, s.mixing)?;
+    let coupling = |c: &crate::flow::Coupling| match c {
+        crate::flow::Coupling::Affine => super::CouplingKind::Affine,
+        crate::flow::Coupling::Spline { .. } => super::CouplingKind::Spline,
+    };
+    keep("--coupling", o.coupling, coupling(&s.coupling))?;
+    if let crate::flow::Coupling::Spline { bins, tail_bound } = s.coupling {
+        keep("--bins", o.bins, bins)?;
+        keep("--tail-bound", o.tail_bound, tail_bound)?;
+    }
     keep("--flow-dims", o.flow_dims, s.flow_dims)?;
     keep("--batch-size", o.batch_size, s.batch_size)?;
     keep("--lr", o.lr, s.lr)?;
