@@ -664,7 +664,7 @@ fn unmix_rows(block: &[f32], dim: usize, q: &mut [f32]) {
 /// |f| <= ln2 / 2, e^f by its degree-6 Taylor polynomial, 2^k from the
 /// exponent bits. Branch-free, so loops over slices vectorise.
 #[inline(always)]
-fn exp_f32(x: f32) -> f32 {
+pub(crate) fn exp_f32(x: f32) -> f32 {
     // 1.5 * 2^23: adding and subtracting it rounds to the nearest integer.
     const ROUND: f32 = 12_582_912.0;
     let x = x.max(-87.0).min(87.0);

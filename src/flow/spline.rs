@@ -14,6 +14,8 @@
 //! Raw outputs per element: `K` width logits, `K` height logits, `K - 1`
 //! derivative pre-activations, in that order.
 
+use super::exp_f32;
+
 /// Smallest share of the interval a bin's width or height takes, and the
 /// smallest knot derivative (the published defaults).
 const MIN_BIN: f32 = 1e-3;
@@ -37,18 +39,27 @@ struct Knots {
     h: [f32; MAX_BINS],
     x: [f32; MAX_BINS + 1],
     y: [f32; MAX_BINS + 1],
-    /// Derivatives at the K + 1 knots (1 at both ends).
-    d: [f32; MAX_BINS + 1],
+}
+
+/// The derivative at knot `i` of `k + 1` (1 at both ends); only the two
+/// knots of an element's bin are ever needed.
+fn derivative(raw: &[f32], k: usize, i: usize) -> f32 {
+    if i == 0 || i == k {
+        1.0
+    } else {
+        MIN_DERIVATIVE + (1.0 - MIN_DERIVATIVE) * softplus(raw[2 * k + i - 1]) / std::f32::consts::LN_2
+    }
 }
 
 fn softmax_into(raw: &[f32], out: &mut [f32]) {
     let top = raw.iter().cloned().fold(f32::NEG_INFINITY, f32::max);
     let mut sum = 0.0;
     for (o, &r) in out.iter_mut().zip(raw) {
-        *o = (r - top).exp();
+        *o = exp_f32(r - top);
         sum += *o;
     }
-    out.iter_mut().for_each(|o| *o /= sum);
+    let inv = 1.0 / sum;
+    out.iter_mut().for_each(|o| *o *= inv);
 }
 
 /// ln(1 + e^r) without overflow.
@@ -56,12 +67,12 @@ fn softplus(r: f32) -> f32 {
     if r > 20.0 {
         r
     } else {
-        r.exp().ln_1p()
+        exp_f32(r).ln_1p()
     }
 }
 
 fn sigmoid(r: f32) -> f32 {
-    1.0 / (1.0 + (-r).exp())
+    1.0 / (1.0 + exp_f32(-r))
 }
 
 impl Knots {
@@ -73,7 +84,6 @@ impl Knots {
             h: [0.0; MAX_BINS],
             x: [0.0; MAX_BINS + 1],
             y: [0.0; MAX_BINS + 1],
-            d: [1.0; MAX_BINS + 1],
         };
         softmax_into(&raw[..k], &mut kn.w_share[..k]);
         softmax_into(&raw[k..2 * k], &mut kn.h_share[..k]);
@@ -85,9 +95,6 @@ impl Knots {
             kn.h[i] = 2.0 * bound * (MIN_BIN + spread * kn.h_share[i]);
             kn.x[i + 1] = kn.x[i] + kn.w[i];
             kn.y[i + 1] = kn.y[i] + kn.h[i];
-        }
-        for i in 1..k {
-            kn.d[i] = MIN_DERIVATIVE + (1.0 - MIN_DERIVATIVE) * softplus(raw[2 * k + i - 1]) / std::f32::consts::LN_2;
         }
         kn
     }
@@ -105,14 +112,16 @@ pub fn forward(x: f32, raw: &[f32], k: usize, bound: f32) -> (f32, f32) {
     }
     let kn = Knots::new(raw, k, bound);
     let b = Knots::bin(&kn.x, k, x);
-    let (wb, hb, db, db1) = (kn.w[b], kn.h[b], kn.d[b], kn.d[b + 1]);
+    let (wb, hb, db, db1) = (kn.w[b], kn.h[b], derivative(raw, k, b), derivative(raw, k, b + 1));
     let s = hb / wb;
     let xi = ((x - kn.x[b]) / wb).clamp(0.0, 1.0);
     let q = xi * (1.0 - xi);
     let num = hb * (s * xi * xi + db * q);
     let den = s + (db1 + db - 2.0 * s) * q;
     let t = db1 * xi * xi + 2.0 * s * q + db * (1.0 - xi) * (1.0 - xi);
-    (kn.y[b] + num / den, 2.0 * s.ln() + t.ln() - 2.0 * den.ln())
+    // ln(s^2 t / den^2) in one logarithm.
+    let r = s / den;
+    (kn.y[b] + num / den, (r * r * t).ln())
 }
 
 /// Reverse mode through [`forward`]: given the gradients `gy` of `y` and
@@ -125,7 +134,7 @@ pub fn backward(x: f32, raw: &[f32], k: usize, bound: f32, gy: f32, gld: f32, gr
     }
     let kn = Knots::new(raw, k, bound);
     let b = Knots::bin(&kn.x, k, x);
-    let (wb, hb, db, db1) = (kn.w[b], kn.h[b], kn.d[b], kn.d[b + 1]);
+    let (wb, hb, db, db1) = (kn.w[b], kn.h[b], derivative(raw, k, b), derivative(raw, k, b + 1));
     let s = hb / wb;
     let xi = ((x - kn.x[b]) / wb).clamp(0.0, 1.0);
     let q = xi * (1.0 - xi);
@@ -198,7 +207,8 @@ pub fn inverse(y: f32, raw: &[f32], k: usize, bound: f32) -> f32 {
     }
     let kn = Knots::new(raw, k, bound);
     let b = Knots::bin(&kn.y, k, y);
-    let (wb, hb, db, db1) = (kn.w[b] as f64, kn.h[b] as f64, kn.d[b] as f64, kn.d[b + 1] as f64);
+    let (wb, hb) = (kn.w[b] as f64, kn.h[b] as f64);
+    let (db, db1) = (derivative(raw, k, b) as f64, derivative(raw, k, b + 1) as f64);
     let s = hb / wb;
     let dy = (y - kn.y[b]) as f64;
     let a = hb * (s - db) + dy * (db1 + db - 2.0 * s);

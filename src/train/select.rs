@@ -92,7 +92,8 @@ struct FlowConfig {
 
 /// The flows compared, around the settings table for this data size
 /// (`table`): every modelled-dimension choice, lighter and heavier
-/// regularisation, a wider and a deeper conditioner, and LU mixing.
+/// regularisation, a wider and a deeper conditioner, LU mixing and spline
+/// couplings.
 /// Configurations that come out the same are tried once.
 fn flow_configs(opts: &FitOptions, table: &Settings, dims: usize) -> Vec<FlowConfig> {
     let base = FitOptions { kind: Some(Kind::Flow), quiet: true, ..opts.clone() };
@@ -135,6 +136,7 @@ fn flow_configs(opts: &FitOptions, table: &Settings, dims: usize) -> Vec<FlowCon
         },
         FlowConfig { name: "deeper (10 layers)", opts: set(&|o| o.layers = Some(10)) },
         FlowConfig { name: "LU mixing", opts: set(&|o| o.mixing = Some(crate::flow::Mixing::Lu)) },
+        FlowConfig { name: "spline couplings", opts: set(&|o| o.coupling = Some(super::CouplingKind::Spline)) },
     ];
     let key = |o: &FitOptions| {
         format!("{:?}", (o.flow_dims, o.layers, o.hidden, o.dropout, o.noise, o.weight_decay, o.mixing))
@@ -146,9 +148,9 @@ fn flow_configs(opts: &FitOptions, table: &Settings, dims: usize) -> Vec<FlowCon
 
 /// The default search budget, as a multiple of the projected time of one
 /// flow at the settings table (its first stage's seconds per epoch times
-/// its epochs), at least a minute: the race of eight configurations costs
-/// about six such flows when no run stops early.
-const DEFAULT_BUDGET_FACTOR: f64 = 8.0;
+/// its epochs), at least a minute: the race of nine configurations costs
+/// about seven such flows when no run stops early.
+const DEFAULT_BUDGET_FACTOR: f64 = 10.0;
 
 fn default_budget(first_stage_seconds: f64, first_stage_epochs: usize, epochs: usize) -> f64 {
     (DEFAULT_BUDGET_FACTOR * first_stage_seconds / first_stage_epochs.max(1) as f64 * epochs as f64).max(60.0)
