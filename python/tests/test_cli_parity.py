@@ -131,3 +131,20 @@ def test_file_and_option_errors(data, tmp_path):
         tidemark.fit(data["train"][0], progress=False)
     with pytest.raises(ValueError, match="labels: has 5 labels but the data has 600 rows"):
         tidemark.fit(data["train"], np.arange(5), progress=False)
+
+
+@pytest.mark.parametrize("flags,options", [
+    (["--kind", "mixture"], {"kind": "mixture"}),
+    (["--coupling", "spline", "--bins", "4", "--epochs", "2", "--layers", "2", "--hidden", "16"],
+     {"coupling": "spline", "bins": 4, "epochs": 2, "layers": 2, "hidden": 16}),
+    (["--budget", "10m"], {"budget": "10m"}),
+])
+def test_other_densities_and_the_search_equal_the_cli(data, tmp_path, flags, options):
+    cli("fit", data["dir"] / "train.npy", "-o", tmp_path / "m.safetensors", "--threads", "1", "-q", "--seed", "2",
+        *flags)
+    model = tidemark.fit(data["train"], seed=2, threads=1, progress=False, **options)
+    cli_model = tidemark.load(tmp_path / "m.safetensors")
+    assert model.fingerprint == cli_model.fingerprint
+    assert model.info["kind"] == cli_model.info["kind"]
+    cli("score", tmp_path / "m.safetensors", data["dir"] / "ood.npy", "-o", tmp_path / "s.csv", "--threads", "1")
+    assert_same_scores(model.score(data["ood"], threads=1), read_scores(tmp_path / "s.csv"))
