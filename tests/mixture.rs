@@ -110,3 +110,55 @@ fn mixture_kind_beats_one_gaussian_on_clustered_rows_and_round_trips() {
     let back = tidemark::model::Model::load(&path).unwrap();
     assert_eq!(back.evaluate(&x, 1).log_likelihood, mixture.evaluate(&x, 1).log_likelihood);
 }
+
+/// A mixture model file whose tensors were altered (and its checksum
+/// dropped, as in files from before checksums) is refused with a message
+/// naming what is wrong, never a panic: weights that are not
+/// log-probabilities, a precision factor that is not upper triangular, a
+/// component count the tensors do not have.
+#[test]
+fn altered_mixture_files_are_refused_by_name() {
+    use safetensors::tensor::TensorView;
+    use safetensors::SafeTensors;
+    let data: Vec<f32> = (0..400 * 3).map(|i| ((i * 7919 % 1000) as f32 / 300.0) + (i % 3) as f32).collect();
+    let x = Dataset::in_memory(tidemark::data::Matrix::new(400, 3, data));
+    let opts = FitOptions { kind: Some(Kind::Mixture), components: Some(2), quiet: true, ..FitOptions::default() };
+    let model = fit(&x, None, &opts).unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    let good = dir.path().join("good.safetensors");
+    model.save(&good).unwrap();
+    let bytes = std::fs::read(&good).unwrap();
+    let st = SafeTensors::deserialize(&bytes).unwrap();
+    let (_, header) = SafeTensors::read_metadata(&bytes).unwrap();
+    let metadata = header.metadata().clone();
+    let rewrite = |name: &str, change: &dyn Fn(&mut Vec<f64>), meta: &dyn Fn(String) -> String| {
+        let mut owned: Vec<(String, safetensors::Dtype, Vec<usize>, Vec<u8>)> = Vec::new();
+        for (n, t) in st.tensors() {
+            if n == "tidemark.checksum" {
+                continue;
+            }
+            let mut data = t.data().to_vec();
+            if n == name {
+                let mut v: Vec<f64> = data.chunks(8).map(|c| f64::from_le_bytes(c.try_into().unwrap())).collect();
+                change(&mut v);
+                data = v.iter().flat_map(|f| f.to_le_bytes()).collect();
+            }
+            owned.push((n, t.dtype(), t.shape().to_vec(), data));
+        }
+        let views: Vec<(String, TensorView)> =
+            owned.iter().map(|(n, d, s, b)| (n.clone(), TensorView::new(*d, s.clone(), b).unwrap())).collect();
+        let mut m = metadata.clone().unwrap();
+        let key = "tidemark".to_string();
+        m.insert(key.clone(), meta(m[&key].clone()));
+        let path = dir.path().join(format!("bad_{}.safetensors", name.replace('.', "_")));
+        std::fs::write(&path, safetensors::serialize(views, Some(m)).unwrap()).unwrap();
+        tidemark::model::Model::load(&path).map(|_| ()).unwrap_err().to_string()
+    };
+    let same = |s: String| s;
+    let err = rewrite("mixture.log_weights", &|v| v[0] += 1.0, &same);
+    assert!(err.contains("log_weights"), "{err}");
+    let err = rewrite("mixture.precision_cholesky", &|v| v[3] = 0.5, &same);
+    assert!(err.contains("not upper triangular"), "{err}");
+    let err = rewrite("mixture.means", &|_| (), &|m| m.replace("\"components\":2", "\"components\":3"));
+    assert!(err.contains("mixture."), "{err}");
+}
