@@ -234,6 +234,11 @@ pub fn maximise(u: &[f64], rows: usize, d: usize, resp: &[f64], ridge: f64) -> O
     Some(Fitted { mixture: Mixture { dim: d, log_weights, means, precision_cholesky }, covariances })
 }
 
+/// Each row's posterior over the components (`rows x K`).
+pub fn responsibilities(m: &Mixture, u: &[f64], rows: usize) -> Vec<f64> {
+    expect(m, u, rows).0
+}
+
 /// Responsibilities (`rows x K`) and the mean log-likelihood: the E-step.
 fn expect(m: &Mixture, u: &[f64], rows: usize) -> (Vec<f64>, f64) {
     let kk = m.components();

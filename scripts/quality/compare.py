@@ -44,13 +44,15 @@ def gaussian(train):
     mu = train.mean(0)
     cov = np.cov(train, rowvar=False, bias=True)
     sign, logdet = np.linalg.slogdet(cov)
+    if sign <= 0:
+        return None
     inv = np.linalg.inv(cov)
     d = train.shape[1]
 
     def ll(x):
         c = x - mu
         return -0.5 * (np.einsum("ij,jk,ik->i", c, inv, c) + logdet + d * np.log(2 * np.pi))
-    return ll if sign > 0 else None
+    return ll
 
 
 def sk_mixture(train, val):
@@ -98,6 +100,12 @@ for name in sets:
     load = lambda f: np.load(os.path.join(d, f)).astype(np.float64)
     train, val, test = load("train.npy"), load("val.npy"), load("test.npy")
     oods = {f[4:-4]: load(f) for f in sorted(os.listdir(d)) if f.startswith("ood_")}
+    # Columns that do not vary in training (dead ReLU units) are left out,
+    # as tidemark leaves them out of its log-likelihood, so that every
+    # density is over the same features.
+    sd = train.std(0)
+    live = sd > 1e-6 * sd.max()
+    cut = lambda x: x[:, live]
     row = {"rows": [len(train), len(val), len(test)], "dim": train.shape[1]}
     if os.path.exists(os.path.join(d, "exact_test_ll.npy")):
         row["exact"] = {"test_ll": float(np.load(os.path.join(d, "exact_test_ll.npy")).mean())}
@@ -106,12 +114,13 @@ for name in sets:
         t = ll_of(test)
         row[key] = {"test_ll": float(np.mean(t)), **{f"auroc_{k}": auroc(t, ll_of(v)) for k, v in oods.items()}, **more}
 
-    g = gaussian(train)
+    row["live_features"] = int(live.sum())
+    g = gaussian(cut(train))
     if g is not None:
-        record("gaussian", g)
+        record("gaussian", lambda x: g(cut(x)))
     t0 = time.time()
-    sk, how = sk_mixture(train, val)
-    record("sk_mixture", sk, how=how, seconds=time.time() - t0)
+    sk, how = sk_mixture(cut(train), cut(val))
+    record("sk_mixture", lambda x: sk(cut(x)), how=how, seconds=time.time() - t0)
     for extra in [[]] + [e.split() for e in args.extra]:
         ll, seconds, meta = tidemark(args.binary, d, extra)
         files = {"test": ll("test"), **{k: ll(f"ood_{k}") for k in oods}}

@@ -4,7 +4,7 @@
 
 use super::{derive, Learned, Rows};
 use crate::error::{Error, Result};
-use crate::mixture::{em, kmeans_start, EmReport, Mixture};
+use crate::mixture::{em, kmeans_start, responsibilities, EmReport, Mixture};
 use crate::model::MixtureMeta;
 use crate::output::note;
 use rand::rngs::StdRng;
@@ -94,15 +94,32 @@ pub(super) fn fit_mixture(rows: &Rows, l: &mut Learned, asked: Option<usize>, qu
             continue;
         };
         let mut improved = false;
-        for extra in RIDGE_GRID {
-            let Some(m) = fitted.with_ridge(extra) else { continue };
+        let mut consider = |m: Mixture, ridge: f64, report: EmReport, tried: &mut Vec<Tried>| {
             let nll = -(m.mean_log_density(&v, nv) + log_det);
-            let t = Tried { components: k, ridge: EM_RIDGE + extra, validation_nll: nll };
-            if best.as_ref().is_none_or(|b| nll < b.1.validation_nll) {
+            let t = Tried { components: k, ridge, validation_nll: nll };
+            let better = best.as_ref().is_none_or(|b| nll < b.1.validation_nll);
+            if better {
                 best = Some((m, t.clone(), report));
                 improved = true;
             }
             tried.push(t);
+            nll
+        };
+        let mut ridge_here = (EM_RIDGE, f64::INFINITY);
+        for extra in RIDGE_GRID {
+            let Some(m) = fitted.with_ridge(extra) else { continue };
+            let nll = consider(m, EM_RIDGE + extra, report, &mut tried);
+            if nll < ridge_here.1 {
+                ridge_here = (EM_RIDGE + extra, nll);
+            }
+        }
+        // A larger ridge added after EM is only an estimate of EM run with
+        // it: EM again at that ridge, from where the first run ended.
+        if ridge_here.0 > EM_RIDGE {
+            let resp = responsibilities(&fitted.mixture, &u, n);
+            if let Some((again, report)) = em(&u, n, d, &resp, ridge_here.0, EM_ROUNDS, EM_TOL) {
+                consider(again.mixture, ridge_here.0, report, &mut tried);
+            }
         }
         if !quiet {
             let b =
