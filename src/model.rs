@@ -184,7 +184,7 @@ impl Meta {
             line(
                 "mixture",
                 format!(
-                    "{} full-covariance Gaussians over all {} whitened dims, ridge {:e}, {} EM iterations{}",
+                    "{} full-covariance Gaussians over all {} whitened dims, ridge {:.3e}, {} EM iterations{}",
                     m.components,
                     p.whitened_dims,
                     m.ridge,

@@ -823,6 +823,11 @@ impl Staged {
         &self.learned.settings
     }
 
+    /// Dimensions of the whitened space the flow sits on.
+    pub(crate) fn dim(&self) -> usize {
+        self.learned.model.dim()
+    }
+
     fn state(&self) -> &TrainState {
         &self.learned.state
     }

@@ -16,7 +16,7 @@ use rand::SeedableRng;
 /// from [`RIDGE_GRID`] if it helps.
 const EM_RIDGE: f64 = 1e-4;
 /// Extra ridge tried on top of [`EM_RIDGE`] for every component count.
-const RIDGE_GRID: [f64; 5] = [0.0, 1e-3, 1e-2, 3e-2, 0.1];
+const RIDGE_GRID: [f64; 7] = [0.0, 1e-3, 1e-2, 3e-2, 0.1, 0.3, 1.0];
 /// EM stops after this many rounds or when the mean training
 /// log-likelihood gains less than [`EM_TOL`] (common practice).
 const EM_ROUNDS: usize = 100;
@@ -126,7 +126,7 @@ pub(super) fn fit_mixture(rows: &Rows, l: &mut Learned, asked: Option<usize>, qu
                 tried.iter().filter(|t| t.components == k).min_by(|a, b| a.validation_nll.total_cmp(&b.validation_nll));
             if let Some(b) = b {
                 note(format!(
-                    "mixture of {k}: validation NLL {:.4} nats/vector (ridge {:e}, {} EM rounds)",
+                    "mixture of {k}: validation NLL {:.4} nats/vector (ridge {:.3e}, {} EM rounds)",
                     b.validation_nll, b.ridge, report.iterations
                 ));
             }

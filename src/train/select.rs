@@ -51,7 +51,7 @@ fn kinds(run: &Run, opts: &FitOptions) -> Vec<Kind> {
 fn detail(m: &Model) -> String {
     let t = &m.meta.training;
     match (m.meta.kind, &m.meta.mixture) {
-        (Kind::Mixture, Some(mm)) => format!("{} components, ridge {:e}", mm.components, mm.ridge),
+        (Kind::Mixture, Some(mm)) => format!("{} components, ridge {:.3e}", mm.components, mm.ridge),
         (Kind::Flow, _) => format!(
             "{} coupling layers over {} of {} dims, hidden {}, {} epochs (best {})",
             m.meta.flow.layers,
@@ -300,11 +300,13 @@ fn save_search(run: &Run, best: &Model, racers: &[Racer], position: Position) ->
 /// stops early keeps its best. The stages stop when the budget is spent.
 /// Interrupted, it writes a search checkpoint (see [`save_search`]) that
 /// [`resume`] continues to the same result.
-fn race_flows(run: &Run, opts: &FitOptions, best: &Model, saved: Option<&SavedSearch>) -> Result<Vec<Racer>> {
-    let (dims, train_rows) = (best.dim(), best.meta.training.train_rows);
+fn race_flows(run: &Run, opts: &FitOptions, best: &Model, saved: Option<&SavedSearch>) -> Result<(Vec<Racer>, usize)> {
     let quiet_run = Run { output: None, checkpoint: None, log: None, ..*run };
-    let table_opts = FitOptions { kind: Some(Kind::Flow), ..opts.clone() };
-    let table = Settings::resolve(&table_opts, train_rows, dims, run.val.is_some(), run.labels.is_some())?;
+    // The settings table and the dimensions come from a flow's own
+    // whitening (the Gaussian's shrinkage may keep a direction it drops).
+    let probe = Staged::new(&quiet_run, &FitOptions { kind: Some(Kind::Flow), quiet: true, ..opts.clone() })?;
+    let (table, dims) = (probe.settings().clone(), probe.dim());
+    drop(probe);
     let epochs = table.epochs;
     let stages = [epochs.div_ceil(4), epochs.div_ceil(2), epochs];
     let (mut racers, mut at) = line_up(&quiet_run, opts, &table, dims, saved)?;
@@ -358,7 +360,7 @@ fn race_flows(run: &Run, opts: &FitOptions, best: &Model, saved: Option<&SavedSe
         at.round += 1;
         at.next = 0;
     }
-    Ok(racers)
+    Ok((racers, dims))
 }
 
 fn minutes(seconds: f64) -> String {
@@ -386,8 +388,7 @@ pub(super) fn fit_best(run: &Run, opts: &FitOptions, saved: Option<&SavedSearch>
             continue;
         }
         let first = best.as_ref().expect("a Gaussian kind comes first");
-        let dims = first.dim();
-        let racers = match race_flows(run, opts, first, saved) {
+        let (racers, dims) = match race_flows(run, opts, first, saved) {
             Ok(r) => r,
             Err(Error::Interrupted(msg)) => return Err(interrupted(run, best, msg)),
             Err(e) => return Err(e),
@@ -451,7 +452,24 @@ fn keep(opts: &FitOptions, candidates: &mut Vec<Candidate>, best: &mut Option<Mo
         ));
     }
     candidates.push(c);
-    if best.as_ref().is_none_or(|b| clearly_better(&model, b)) {
+    // The Gaussian's shrinkage can keep directions along which the training
+    // rows do not vary, which the unshrunk whitening of the mixture and the
+    // flows leaves out; densities over different dimensions do not compare,
+    // so the Gaussian then stands aside (the one-component mixture and each
+    // flow's untrained start take its place).
+    if let Some(b) = best.as_ref().filter(|b| b.dim() != model.dim()) {
+        let why = format!(
+            "not compared: its shrinkage keeps {} directions that have no training variance",
+            b.dim().abs_diff(model.dim())
+        );
+        if !opts.quiet {
+            note(format!("candidate {} {why}", kind_name(b.meta.kind)));
+        }
+        if let Some(first) = candidates.first_mut() {
+            first.detail = format!("{}; {why}", first.detail);
+        }
+        *best = Some(model);
+    } else if best.as_ref().is_none_or(|b| clearly_better(&model, b)) {
         *best = Some(model);
     }
 }
