@@ -581,6 +581,12 @@ fn list_rows(
         _ => col.as_list::<i64>().values(),
     };
     let values = floats(child.as_ref()).ok_or_else(|| type_error(path, name, child.data_type()))?;
+    // float32 without nulls, the common case: rows are copied whole and
+    // checked after; the per-value path only runs to name a bad value.
+    let fast = match &values {
+        Floats::F32(a) if child.null_count() == 0 => Some(a.values()),
+        _ => None,
+    };
     for (r, span) in spans.iter().enumerate() {
         let row = first_row + r;
         let Some((start, len)) = *span else {
@@ -588,6 +594,15 @@ fn list_rows(
         };
         if len != dim {
             return fail(path, format!("row {row}, column '{name}' has {len} values; earlier rows have {dim}"));
+        }
+        if let Some(vals) = fast {
+            let dst = &mut out[r * dim..(r + 1) * dim];
+            dst.copy_from_slice(&vals[start..start + dim]);
+            let bad = if finite { dst.iter().position(|v| !v.is_finite()) } else { None };
+            match bad {
+                Some(j) => return checked(path, row, name, Some(j), dst[j] as f64, finite).map(drop),
+                None => continue,
+            }
         }
         for j in 0..dim {
             if child.is_null(start + j) {
