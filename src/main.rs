@@ -37,9 +37,9 @@ enum Command {
     Score {
         /// Model file from `tidemark fit` (.safetensors).
         model: PathBuf,
-        /// Vectors to score (.npy, .safetensors or .csv), as wide as the training data.
+        /// Vectors to score (.npy, .safetensors, .csv, Parquet or Arrow IPC; - for .npy or an Arrow stream on standard input), as wide as the training data.
         data: PathBuf,
-        /// Output file: .csv, .npy (float32, column names in a sidecar .json) or .jsonl; - for CSV on standard output.
+        /// Output file: .csv, .npy (float32, column names in a sidecar .json), .jsonl, .parquet, .arrow or .arrows; - for CSV on standard output.
         #[arg(short, long)]
         output: PathBuf,
         /// Columns to write, comma-separated [default: all the model has].
@@ -261,7 +261,7 @@ impl InputArgs {
 
 #[derive(Args)]
 struct FitArgs {
-    /// Training vectors (.npy, .safetensors or .csv), one row per vector.
+    /// Training vectors (.npy, .safetensors, .csv, Parquet or Arrow IPC), one row per vector.
     data: PathBuf,
     /// Where to write the model (.safetensors).
     #[arg(short, long)]

@@ -32,7 +32,7 @@ start=$(date +%s%N)
 for f in "$work"/batch/*.parquet; do
     out="$work/cli-$(basename "$f")"
     ./target/release/tidemark score "$work/model.safetensors" "$f" -o "$out" --keep id \
-        --columns log_likelihood,typicality 2>/dev/null
+        --columns log_likelihood,typicality
     cli+=("$out")
 done
 cli_ms=$(( ($(date +%s%N) - start) / 1000000 ))
