@@ -113,7 +113,12 @@ for name in sets:
     cut = lambda x: x[:, live]
     row = {"rows": [len(train), len(val), len(test)], "dim": train.shape[1]}
     if os.path.exists(os.path.join(d, "exact_test_ll.npy")):
-        row["exact"] = {"test_ll": float(np.load(os.path.join(d, "exact_test_ll.npy")).mean())}
+        et = np.load(os.path.join(d, "exact_test_ll.npy"))
+        row["exact"] = {"test_ll": float(et.mean())}
+        for k in oods:
+            f = os.path.join(d, f"exact_ood_{k}_ll.npy")
+            if os.path.exists(f):
+                row["exact"][f"auroc_{k}"] = auroc(et, np.load(f))
 
     def record(key, ll_of, **more):
         t = ll_of(test)
@@ -156,7 +161,10 @@ for name, row in results.items():
         aucs = ", ".join(f"{v:.3f}" for kk, v in r.items() if kk.startswith("auroc_"))
         extra = f"; {r['kind']}, {r['seconds']:.0f} s" if "kind" in r else ""
         cells.append(f"{r['test_ll']:.1f} ({aucs}){extra}")
-    exact = f"{row['exact']['test_ll']:.2f}" if "exact" in row else ""
+    exact = ""
+    if "exact" in row:
+        aucs = ", ".join(f"{v:.3f}" for kk, v in row["exact"].items() if kk.startswith("auroc_"))
+        exact = f"{row['exact']['test_ll']:.2f}" + (f" ({aucs})" if aucs else "")
     lines.append(f"| {name} | {row['rows'][0]} / {row['dim']} | {exact} | " + " | ".join(cells) + " |")
 lines += ["", "Cells: mean held-out log-likelihood in nats per vector (AUROC against each outlier set, in the order "
           + "of the set's ood_*.npy files); tidemark cells add the chosen kind and the fit's wall seconds."]
