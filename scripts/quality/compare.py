@@ -14,8 +14,10 @@ against each outlier set for
               the default search fitted (read from the model's metadata),
               with its held-out figure when it is the chosen one.
 
-Run: python3 scripts/quality/compare.py TIDEMARK_BIN [DIR] [--sets a,b] [--extra "--kind mixture"]
-Writes DIR/results.json and prints a markdown table.
+Run: python3 scripts/quality/compare.py TIDEMARK_BIN [DIR] [--sets a,b] [--extra-fit-args "--kind mixture"]
+           [--json FILE] [--md FILE]
+Writes DIR/results.json (after every set, so an interrupted run keeps what
+it measured) and prints a markdown table (also to --md FILE).
 """
 import argparse
 import json
@@ -31,7 +33,10 @@ p = argparse.ArgumentParser()
 p.add_argument("binary")
 p.add_argument("dir", nargs="?", default="target/quality")
 p.add_argument("--sets", default="")
-p.add_argument("--extra", action="append", default=[], help="another tidemark fit configuration to compare")
+p.add_argument("--extra", "--extra-fit-args", dest="extra", action="append", default=[],
+               help="another tidemark fit configuration to compare, e.g. \"--kind mixture\" (repeatable)")
+p.add_argument("--json", default="", help="where to write the results [default: DIR/results.json]")
+p.add_argument("--md", default="", help="also write the markdown table to this file")
 args = p.parse_args()
 
 
@@ -108,16 +113,22 @@ for name in sets:
     cut = lambda x: x[:, live]
     row = {"rows": [len(train), len(val), len(test)], "dim": train.shape[1]}
     if os.path.exists(os.path.join(d, "exact_test_ll.npy")):
-        row["exact"] = {"test_ll": float(np.load(os.path.join(d, "exact_test_ll.npy")).mean())}
+        et = np.load(os.path.join(d, "exact_test_ll.npy"))
+        row["exact"] = {"test_ll": float(et.mean())}
+        for k in oods:
+            f = os.path.join(d, f"exact_ood_{k}_ll.npy")
+            if os.path.exists(f):
+                row["exact"][f"auroc_{k}"] = auroc(et, np.load(f))
 
     def record(key, ll_of, **more):
         t = ll_of(test)
         row[key] = {"test_ll": float(np.mean(t)), **{f"auroc_{k}": auroc(t, ll_of(v)) for k, v in oods.items()}, **more}
 
     row["live_features"] = int(live.sum())
+    t0 = time.time()
     g = gaussian(cut(train))
     if g is not None:
-        record("gaussian", lambda x: g(cut(x)))
+        record("gaussian", lambda x: g(cut(x)), seconds=time.time() - t0)
     t0 = time.time()
     sk, how = sk_mixture(cut(train), cut(val))
     record("sk_mixture", lambda x: sk(cut(x)), how=how, seconds=time.time() - t0)
@@ -135,13 +146,11 @@ for name in sets:
         }
     results[name] = row
     print(name, json.dumps(row, indent=1)[:2000], flush=True)
-
-with open(os.path.join(args.dir, "results.json"), "w") as f:
-    json.dump(results, f, indent=1)
+    with open(args.json or os.path.join(args.dir, "results.json"), "w") as f:
+        json.dump(results, f, indent=1)
 
 keys = ["gaussian", "sk_mixture"] + ["tidemark" + (" " + e if e else "") for e in [""] + args.extra]
-print("\n| set | N train / D | " + " | ".join(keys) + " |")
-print("|---|---|" + "---|" * len(keys))
+lines = ["| set | N train / D | exact | " + " | ".join(keys) + " |", "|---|---|---|" + "---|" * len(keys)]
 for name, row in results.items():
     cells = []
     for k in keys:
@@ -152,4 +161,14 @@ for name, row in results.items():
         aucs = ", ".join(f"{v:.3f}" for kk, v in r.items() if kk.startswith("auroc_"))
         extra = f"; {r['kind']}, {r['seconds']:.0f} s" if "kind" in r else ""
         cells.append(f"{r['test_ll']:.1f} ({aucs}){extra}")
-    print(f"| {name} | {row['rows'][0]} / {row['dim']} | " + " | ".join(cells) + " |")
+    exact = ""
+    if "exact" in row:
+        aucs = ", ".join(f"{v:.3f}" for kk, v in row["exact"].items() if kk.startswith("auroc_"))
+        exact = f"{row['exact']['test_ll']:.2f}" + (f" ({aucs})" if aucs else "")
+    lines.append(f"| {name} | {row['rows'][0]} / {row['dim']} | {exact} | " + " | ".join(cells) + " |")
+lines += ["", "Cells: mean held-out log-likelihood in nats per vector (AUROC against each outlier set, in the order "
+          + "of the set's ood_*.npy files); tidemark cells add the chosen kind and the fit's wall seconds."]
+print("\n" + "\n".join(lines))
+if args.md:
+    with open(args.md, "w") as f:
+        f.write("\n".join(lines) + "\n")

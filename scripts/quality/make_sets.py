@@ -230,3 +230,9 @@ train, val, test = draw(8000), draw(1000), draw(2000)
 far = draw(1000) * 1.5
 save_set("synthetic", train, val, test, {"widened": far},
          extra={"exact_test_ll": exact_ll(test.astype(np.float32).astype(np.float64))})
+
+# ---------------------------------------------------------------- curved (synthetic, exact density)
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+import make_curved  # noqa: E402
+
+make_curved.make(OUT)
