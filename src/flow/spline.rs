@@ -105,20 +105,45 @@ impl Knots {
     }
 }
 
+/// The quantities of one element's bin that [`forward`] and [`backward`]
+/// share: with `xi` the position within the bin and `s` its slope,
+/// `y = y_b + num / den` and `dy/dx = s^2 t / den^2`.
+struct Bin {
+    kn: Knots,
+    b: usize,
+    wb: f32,
+    hb: f32,
+    db: f32,
+    db1: f32,
+    s: f32,
+    xi: f32,
+    q: f32,
+    num: f32,
+    den: f32,
+    t: f32,
+}
+
+impl Bin {
+    fn of(x: f32, raw: &[f32], k: usize, bound: f32) -> Bin {
+        let kn = Knots::new(raw, k, bound);
+        let b = Knots::bin(&kn.x, k, x);
+        let (wb, hb, db, db1) = (kn.w[b], kn.h[b], derivative(raw, k, b), derivative(raw, k, b + 1));
+        let s = hb / wb;
+        let xi = ((x - kn.x[b]) / wb).clamp(0.0, 1.0);
+        let q = xi * (1.0 - xi);
+        let num = hb * (s * xi * xi + db * q);
+        let den = s + (db1 + db - 2.0 * s) * q;
+        let t = db1 * xi * xi + 2.0 * s * q + db * (1.0 - xi) * (1.0 - xi);
+        Bin { kn, b, wb, hb, db, db1, s, xi, q, num, den, t }
+    }
+}
+
 /// One element through the spline: `(y, ln dy/dx)`.
 pub fn forward(x: f32, raw: &[f32], k: usize, bound: f32) -> (f32, f32) {
     if !(-bound..bound).contains(&x) {
         return (x, 0.0);
     }
-    let kn = Knots::new(raw, k, bound);
-    let b = Knots::bin(&kn.x, k, x);
-    let (wb, hb, db, db1) = (kn.w[b], kn.h[b], derivative(raw, k, b), derivative(raw, k, b + 1));
-    let s = hb / wb;
-    let xi = ((x - kn.x[b]) / wb).clamp(0.0, 1.0);
-    let q = xi * (1.0 - xi);
-    let num = hb * (s * xi * xi + db * q);
-    let den = s + (db1 + db - 2.0 * s) * q;
-    let t = db1 * xi * xi + 2.0 * s * q + db * (1.0 - xi) * (1.0 - xi);
+    let Bin { kn, b, s, num, den, t, .. } = Bin::of(x, raw, k, bound);
     // ln(s^2 t / den^2) in one logarithm.
     let r = s / den;
     (kn.y[b] + num / den, (r * r * t).ln())
@@ -132,15 +157,7 @@ pub fn backward(x: f32, raw: &[f32], k: usize, bound: f32, gy: f32, gld: f32, gr
     if !(-bound..bound).contains(&x) {
         return gy;
     }
-    let kn = Knots::new(raw, k, bound);
-    let b = Knots::bin(&kn.x, k, x);
-    let (wb, hb, db, db1) = (kn.w[b], kn.h[b], derivative(raw, k, b), derivative(raw, k, b + 1));
-    let s = hb / wb;
-    let xi = ((x - kn.x[b]) / wb).clamp(0.0, 1.0);
-    let q = xi * (1.0 - xi);
-    let num = hb * (s * xi * xi + db * q);
-    let den = s + (db1 + db - 2.0 * s) * q;
-    let t = db1 * xi * xi + 2.0 * s * q + db * (1.0 - xi) * (1.0 - xi);
+    let Bin { kn, b, wb, hb, db, db1, s, xi, q, num, den, t } = Bin::of(x, raw, k, bound);
     // Adjoints of the intermediate quantities, in reverse order.
     let g_yb = gy;
     let g_num = gy / den;
