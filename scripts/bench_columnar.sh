@@ -32,16 +32,7 @@ for n in sizes:
 PY
 "$bin" fit "$work/fit.npy" -o "$work/gaussian.safetensors" --kind gaussian -q
 "$bin" fit "$work/fit.npy" -o "$work/flow.safetensors" --kind flow --flow-dims 384 --epochs 1 -q
-measure() { # prints "cpu_seconds peak_kib" of the best run
-    local best=""
-    for _ in $(seq "$repeats"); do
-        /usr/bin/time -f "%U %S %M" -o "$work/t" "$@" >/dev/null 2>&1
-        read -r u s m < "$work/t"
-        local cpu; cpu=$(echo "$u + $s" | bc)
-        if [ -z "$best" ] || [ "$(echo "$cpu < ${best% *}" | bc)" = 1 ]; then best="$cpu $m"; fi
-    done
-    echo "$best"
-}
+source scripts/measure_best.sh
 echo "model     rows    format   cpu_s  peak_MiB"
 for model in gaussian flow; do
     for n in "$small" "$large"; do

@@ -45,16 +45,7 @@ for n in sizes:
         print(f"# {n} {v}: {md.num_row_groups} row groups, embedding encodings {enc}", file=sys.stderr)
 PY
 "$bin" fit "$work/fit.npy" -o "$work/gaussian.safetensors" --kind gaussian -q
-measure() { # prints "cpu_seconds peak_kib" of the best run
-    local best=""
-    for _ in $(seq "$repeats"); do
-        /usr/bin/time -f "%U %S %M" -o "$work/t" "$@" >/dev/null 2>&1
-        read -r u s m < "$work/t"
-        local cpu; cpu=$(echo "$u + $s" | bc)
-        if [ -z "$best" ] || [ "$(echo "$cpu < ${best% *}" | bc)" = 1 ]; then best="$cpu $m"; fi
-    done
-    echo "$best"
-}
+source scripts/measure_best.sh
 m="$work/gaussian.safetensors"
 echo "rows    input                cpu_s  peak_MiB  cpu ratio to npy"
 for n in "${sizes[@]}"; do

@@ -23,11 +23,15 @@ import argparse
 import json
 import os
 import subprocess
+import sys
 import time
 
 import numpy as np
 from sklearn.metrics import roc_auc_score
 from sklearn.mixture import GaussianMixture
+
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+from table import markdown  # noqa: E402
 
 p = argparse.ArgumentParser()
 p.add_argument("binary")
@@ -150,24 +154,8 @@ for name in sets:
         json.dump(results, f, indent=1)
 
 keys = ["gaussian", "sk_mixture"] + ["tidemark" + (" " + e if e else "") for e in [""] + args.extra]
-lines = ["| set | N train / D | exact | " + " | ".join(keys) + " |", "|---|---|---|" + "---|" * len(keys)]
-for name, row in results.items():
-    cells = []
-    for k in keys:
-        r = row.get(k)
-        if r is None:
-            cells.append("n/a")
-            continue
-        aucs = ", ".join(f"{v:.3f}" for kk, v in r.items() if kk.startswith("auroc_"))
-        extra = f"; {r['kind']}, {r['seconds']:.0f} s" if "kind" in r else ""
-        cells.append(f"{r['test_ll']:.1f} ({aucs}){extra}")
-    exact = ""
-    if "exact" in row:
-        aucs = ", ".join(f"{v:.3f}" for kk, v in row["exact"].items() if kk.startswith("auroc_"))
-        exact = f"{row['exact']['test_ll']:.2f}" + (f" ({aucs})" if aucs else "")
-    lines.append(f"| {name} | {row['rows'][0]} / {row['dim']} | {exact} | " + " | ".join(cells) + " |")
-lines += ["", "Cells: mean held-out log-likelihood in nats per vector (AUROC against each outlier set, in the order "
-          + "of the set's ood_*.npy files); tidemark cells add the chosen kind and the fit's wall seconds."]
+lines = [markdown(results, keys), "", "Cells: mean held-out log-likelihood in nats per vector (AUROC against each "
+         + "outlier set); tidemark cells add the chosen kind and the fit's wall seconds."]
 print("\n" + "\n".join(lines))
 if args.md:
     with open(args.md, "w") as f:

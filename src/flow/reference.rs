@@ -122,7 +122,7 @@ fn spline(x: &Tensor, net: &Tensor, k: usize, bound: f64) -> candle_core::Result
     let left: Vec<f64> = (0..k * k).map(|e| if e / k < e % k { 1.0 } else { 0.0 }).collect();
     let left = Tensor::from_vec(left, (k, k), dev)?;
     let cum = |t: &Tensor| -> candle_core::Result<Tensor> {
-        (t.reshape((rows * d2, k))?.matmul(&left)?.reshape((rows, d2, k))? - bound)
+        t.reshape((rows * d2, k))?.matmul(&left)?.reshape((rows, d2, k))? - bound
     };
     let (xk, yk) = (cum(&widths)?, cum(&heights)?);
     let inner = net.narrow(2, 2 * k, k - 1)?;

@@ -325,7 +325,8 @@ fn check_spec(path: &Path, prefix: &str, spec: &FlowSpec) -> Result<()> {
         return bad(format!("has soft clamp {}", spec.clamp));
     }
     if let crate::flow::Coupling::Spline { bins, tail_bound } = spec.coupling {
-        if !(2..=crate::flow::spline::MAX_BINS).contains(&bins) || !(tail_bound.is_finite() && tail_bound > 0.0) {
+        let sane = (2..=crate::flow::spline::MAX_BINS).contains(&bins) && tail_bound.is_finite() && tail_bound > 0.0;
+        if !sane {
             return bad(format!("has spline couplings of {bins} bins on [-{tail_bound}, {tail_bound}]"));
         }
     }
