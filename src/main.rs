@@ -719,11 +719,8 @@ fn run(cli: Cli) -> Result<()> {
                 note(line);
             }
             if let Some(path) = &report {
-                let input = report::ReportInput {
-                    evaluated: &evaluated,
-                    calibration: calibration.as_ref(),
-                    log: log.as_deref(),
-                };
+                let input =
+                    report::ReportInput { evaluated: &evaluated, calibration: calibration.as_ref(), log: log.as_ref() };
                 report::write_report(path, &input)?;
             }
             output::print(evaluate::table(&evaluated))?;

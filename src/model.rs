@@ -67,12 +67,23 @@ pub struct TrainingSummary {
 #[derive(Clone, Debug, serde::Serialize, serde::Deserialize)]
 pub struct Candidate {
     pub kind: Kind,
+    /// Its name in the search: the kind, or the flow configuration (the
+    /// name its epochs carry in the training log).
+    #[serde(default)]
+    pub name: String,
     /// What distinguishes it (components, shrinkage, flow shape).
     pub detail: String,
     /// Mean negative log-likelihood of the validation rows, nats per vector.
     pub validation_nll: f64,
     pub seconds: f64,
     pub chosen: bool,
+    /// Training epochs run (0 for the kinds fitted in closed form or by EM).
+    #[serde(default)]
+    pub epochs: usize,
+    /// Why it stopped: closed form, EM converged, early stopping, all
+    /// epochs, halved out after a stage, or the budget.
+    #[serde(default)]
+    pub stopped: String,
     /// Validation NLL after each stage of the flows' successive halving.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub stages: Vec<f64>,
@@ -211,17 +222,8 @@ impl Meta {
             let c: Vec<String> = self.classes.iter().map(|c| format!("{}: {}", c.label, c.rows)).collect();
             line("classes (rows)", c.join(", "));
         }
-        for c in &t.candidates {
-            line(
-                if c.chosen { "candidate (chosen)" } else { "candidate" },
-                format!(
-                    "{:<16}validation NLL {:.4} nats/vector, {:.1} s; {}",
-                    kind_name(c.kind),
-                    c.validation_nll,
-                    c.seconds,
-                    c.detail
-                ),
-            );
+        for row in leaderboard(&t.candidates) {
+            line("candidate", row);
         }
         line("settings", t.settings.to_string());
         s
@@ -246,13 +248,18 @@ impl Meta {
     pub fn fit_summary(&self, path: &Path) -> String {
         let t = &self.training;
         if !t.candidates.is_empty() {
-            return format!(
+            let mut s = String::from("candidates, best validation NLL first (* chosen):\n");
+            for row in leaderboard(&t.candidates) {
+                s.push_str(&format!("  {row}\n"));
+            }
+            s.push_str(&format!(
                 "wrote {}: {} chosen on validation NLL {:.4} nats/vector ({} candidates compared; `inspect` lists them)",
                 path.display(),
                 kind_name(self.kind),
                 t.best_validation_nll,
                 t.candidates.len()
-            );
+            ));
+            return s;
         }
         format!(
             "wrote {}: validation NLL {:.4} nats/vector (Gaussian {:.4}), best epoch {} of {}",
@@ -263,6 +270,30 @@ impl Meta {
             t.epochs_run
         )
     }
+}
+
+/// The candidates best first, one line each: rank, kind, validation NLL,
+/// epochs, seconds, why it stopped and what distinguishes it.
+pub fn leaderboard(candidates: &[Candidate]) -> Vec<String> {
+    let mut order: Vec<&Candidate> = candidates.iter().collect();
+    order.sort_by(|a, b| a.validation_nll.total_cmp(&b.validation_nll));
+    order
+        .iter()
+        .enumerate()
+        .map(|(i, c)| {
+            format!(
+                "{:>2}{} {:<15} validation NLL {:>12.4} nats/vector, {:>4} epochs, {:>7.1} s, {}; {}",
+                i + 1,
+                if c.chosen { "*" } else { " " },
+                kind_name(c.kind),
+                c.validation_nll,
+                c.epochs,
+                c.seconds,
+                c.stopped,
+                c.detail
+            )
+        })
+        .collect()
 }
 
 #[derive(Clone, Debug, serde::Serialize, serde::Deserialize)]

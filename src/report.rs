@@ -2,13 +2,14 @@
 //! scripts, no fonts or files fetched) that draws an evaluation's results.
 //! It opens with a summary (AUROC per score and outlier set, the best score
 //! per set marked), then the calibrated decision, then the training curves
-//! when a log is given, then per score the metric table, histograms on a
+//! and the candidates the search compared when a log is given, then per score the metric table, histograms on a
 //! robust common range and ROC curves.
 
 use crate::calibrate::Calibration;
 use crate::error::{Error, Result};
 use crate::evaluate::{anomaly, median, roc_curve, Estimate, Evaluated, METRIC_NAMES};
-use crate::train::LogEntry;
+use crate::model::{kind_name, Candidate};
+use crate::train::{LogEntry, TrainingLog};
 use plotters::prelude::*;
 use std::fmt::Write as _;
 use std::path::Path;
@@ -17,7 +18,7 @@ use std::path::Path;
 pub struct ReportInput<'a> {
     pub evaluated: &'a Evaluated,
     pub calibration: Option<&'a Calibration>,
-    pub log: Option<&'a [LogEntry]>,
+    pub log: Option<&'a TrainingLog>,
 }
 
 /// Readable names of the metrics in [`METRIC_NAMES`], in the same order.
@@ -232,6 +233,106 @@ fn training(log: &[LogEntry]) -> Result<String> {
     Ok(format!("<figure>{svg}{}</figure>", legend(&[("train", COLORS[0]), ("validation", COLORS[1])])))
 }
 
+/// The epochs of the density that was kept: a single run's, or those of
+/// the chosen flow of a search (none when the search kept another kind).
+fn chosen_epochs(log: &TrainingLog) -> Vec<LogEntry> {
+    let chosen = log.candidates.iter().find(|c| c.chosen).map(|c| c.name.as_str());
+    log.epochs.iter().filter(|e| e.candidate.as_deref() == chosen).cloned().collect()
+}
+
+/// The candidates a search compared: a table best first, and the flows'
+/// validation NLL after each round of successive halving beside the other
+/// kinds' (flat lines).
+fn leaderboard(candidates: &[Candidate]) -> Result<String> {
+    let mut order: Vec<&Candidate> = candidates.iter().collect();
+    order.sort_by(|a, b| a.validation_nll.total_cmp(&b.validation_nll));
+    let mut html = String::from(
+        "<h2>Densities compared on the validation rows</h2>\n<table><tr><th>rank</th><th>candidate</th><th>kind</th>\
+         <th>validation NLL (nats/vector)</th><th>epochs</th><th>seconds</th><th>stopped</th><th>settings</th></tr>\n",
+    );
+    for (i, c) in order.iter().enumerate() {
+        let mark = if c.chosen { " <b>chosen</b>" } else { "" };
+        let _ = writeln!(
+            html,
+            "<tr><td>{}</td><td class=\"name\">{}{mark}</td><td class=\"name\">{}</td><td>{:.4}</td><td>{}</td>\
+             <td>{:.1}</td><td class=\"name\">{}</td><td class=\"name\">{}</td></tr>",
+            i + 1,
+            escape(&c.name),
+            escape(&kind_name(c.kind)),
+            c.validation_nll,
+            c.epochs,
+            c.seconds,
+            escape(&c.stopped),
+            escape(&c.detail)
+        );
+    }
+    html.push_str("</table>\n");
+    let raced: Vec<&Candidate> = candidates.iter().filter(|c| !c.stages.is_empty()).collect();
+    if !raced.is_empty() {
+        html.push_str(&rounds(candidates, &raced)?);
+    }
+    Ok(html)
+}
+
+/// Validation NLL per round of the successive halving, one line per flow;
+/// the kinds fitted once are drawn flat across the rounds.
+fn rounds(candidates: &[Candidate], raced: &[&Candidate]) -> Result<String> {
+    let last = raced.iter().map(|c| c.stages.len()).max().unwrap_or(1).max(2) as u32;
+    let flat: Vec<&Candidate> =
+        candidates.iter().filter(|c| c.stages.is_empty() && c.validation_nll.is_finite()).collect();
+    let values: Vec<f64> = raced
+        .iter()
+        .flat_map(|c| c.stages.iter().copied())
+        .chain(flat.iter().map(|c| c.validation_nll))
+        .filter(|v| v.is_finite())
+        .collect();
+    let (lo, hi) = values.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), &v| (a.min(v), b.max(v)));
+    if !lo.is_finite() {
+        return Ok(String::new());
+    }
+    let pad = ((hi - lo) * 0.05).max(1e-6);
+    let color = |i: usize| COLORS[i % COLORS.len()];
+    let mut svg = String::new();
+    {
+        let root = SVGBackend::with_string(&mut svg, (620, 340)).into_drawing_area();
+        root.fill(&WHITE).map_err(plot_error)?;
+        let mut chart = ChartBuilder::on(&root)
+            .caption("successive halving", ("sans-serif", 15))
+            .margin(10)
+            .x_label_area_size(38)
+            .y_label_area_size(70)
+            .build_cartesian_2d(1u32..last, (lo - pad)..(hi + pad))
+            .map_err(plot_error)?;
+        chart
+            .configure_mesh()
+            .x_desc("round")
+            .y_desc("validation NLL (nats per vector)")
+            .x_labels(last as usize)
+            .draw()
+            .map_err(plot_error)?;
+        for (i, c) in raced.iter().enumerate() {
+            let pts = c.stages.iter().enumerate().map(|(r, &v)| (r as u32 + 1, v));
+            let width = if c.chosen { 3 } else { 1 };
+            chart.draw_series(LineSeries::new(pts.clone(), color(i).stroke_width(width))).map_err(plot_error)?;
+            // A flow halved out after the first round is a single point.
+            chart.draw_series(pts.map(|p| Circle::new(p, 3, color(i).filled()))).map_err(plot_error)?;
+        }
+        for (j, c) in flat.iter().enumerate() {
+            let v = c.validation_nll;
+            let style = color(raced.len() + j).stroke_width(if c.chosen { 3 } else { 1 });
+            chart.draw_series(LineSeries::new([(1, v), (last, v)], style)).map_err(plot_error)?;
+        }
+        root.present().map_err(plot_error)?;
+    }
+    let names: Vec<String> = raced.iter().chain(&flat).map(|c| c.name.clone()).collect();
+    let items: Vec<(&str, RGBColor)> = names.iter().enumerate().map(|(i, n)| (n.as_str(), color(i))).collect();
+    Ok(format!(
+        "<figure>{svg}{}</figure>\n<p class=\"note\">Each flow's best validation NLL after each round; the better half \
+         of each round trains on. Kinds fitted once are flat lines; the chosen density is drawn thick. Lower is better.</p>\n",
+        legend(&items)
+    ))
+}
+
 /// The AUROC of `column` against outlier set `set`.
 fn auroc_of<'a>(ev: &'a Evaluated, set: &str, column: &str) -> Option<&'a Estimate> {
     let (_, per_column) = ev.results.iter().find(|(s, _)| s == set)?;
@@ -375,8 +476,14 @@ pub fn write_report(path: &Path, input: &ReportInput) -> Result<()> {
     );
     html.push_str(&summary(ev));
     html.push_str(&decision(ev, input.calibration));
-    if let Some(log) = input.log.filter(|l| !l.is_empty()) {
-        let _ = writeln!(html, "<h2>Training</h2>\n{}", training(log)?);
+    if let Some(log) = input.log {
+        let epochs = chosen_epochs(log);
+        if !epochs.is_empty() {
+            let _ = writeln!(html, "<h2>Training</h2>\n{}", training(&epochs)?);
+        }
+        if !log.candidates.is_empty() {
+            html.push_str(&leaderboard(&log.candidates)?);
+        }
     }
     html.push_str(
         "<h2>Details per score</h2>\n<p class=\"note\">AUROC and AUPR-Out take outliers as positive, AUPR-In takes \
@@ -437,6 +544,46 @@ pub fn write_report(path: &Path, input: &ReportInput) -> Result<()> {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::model::Kind;
+
+    fn raced(name: &str, kind: Kind, stages: &[f64], chosen: bool) -> Candidate {
+        Candidate {
+            kind,
+            name: name.into(),
+            detail: format!("{name} <settings>"),
+            validation_nll: stages.last().copied().unwrap_or(f64::NAN),
+            seconds: 1.0,
+            chosen,
+            epochs: 10 * stages.len(),
+            stopped: "all epochs".into(),
+            stages: stages.to_vec(),
+        }
+    }
+
+    /// The leaderboard lists the candidates best first, marks the chosen
+    /// one, escapes their text, and draws one line per raced flow plus one
+    /// per kind fitted once.
+    #[test]
+    fn leaderboard_ranks_candidates_and_draws_the_rounds() {
+        let mut gaussian = raced("gaussian", Kind::Gaussian, &[], false);
+        gaussian.validation_nll = 5.0;
+        let candidates =
+            [gaussian, raced("halved", Kind::Flow, &[4.0], false), raced("kept", Kind::Flow, &[3.0, 2.0, 1.0], true)];
+        let html = leaderboard(&candidates).unwrap();
+        let (kept, halved, gauss) =
+            (html.find(">kept").unwrap(), html.find(">halved").unwrap(), html.find(">gaussian").unwrap());
+        assert!(kept < halved && halved < gauss, "{html}");
+        assert_eq!(html.matches("<b>chosen</b>").count(), 1);
+        assert!(html.contains("kept <b>chosen</b>"));
+        assert!(html.contains("&lt;settings&gt;") && !html.contains("<settings>"));
+        assert_eq!(html.matches("<svg").count(), 1);
+        // Two flows and one flat line in the series colours (the mesh is black),
+        // and a marker at each of the four rounds the flows ran.
+        let coloured =
+            html.matches("<polyline").count() - html.matches("stroke=\"#000000\" stroke-width=\"1\" points").count();
+        assert_eq!(coloured, 3, "{html}");
+        assert_eq!(html.matches("<circle").count(), 4, "{html}");
+    }
 
     /// The range holds the central 99.5% of the in-distribution values and
     /// every outlier set's median, and not a far-off outlier's extreme.

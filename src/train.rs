@@ -9,7 +9,7 @@ use crate::data::{mix64, Dataset};
 use crate::error::{Error, Result};
 use crate::flow::{Coupling, Flow, FlowSpec, Mixing, Workers, HALF_LN_2PI};
 use crate::model::{
-    format_version_for, leading_columns_into, ClassCount, Kind, Meta, Model, PreprocessingMeta, ScoringMeta,
+    format_version_for, leading_columns_into, Candidate, ClassCount, Kind, Meta, Model, PreprocessingMeta, ScoringMeta,
     ScoringRefs, Spread, TrainingSummary,
 };
 use crate::output::note;
@@ -669,6 +669,25 @@ pub struct LogEntry {
     pub val_nll: f64,
     pub grad_norm: f64,
     pub seconds: f64,
+    /// The flow of a search this epoch belongs to (absent for a single run).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub candidate: Option<String>,
+}
+
+/// A training log read back: every epoch line and, after a search, one line
+/// per candidate density (`{"candidate_result": {...}}`).
+#[derive(Clone, Debug, Default)]
+pub struct TrainingLog {
+    pub epochs: Vec<LogEntry>,
+    pub candidates: Vec<Candidate>,
+}
+
+/// A line of the log: an epoch, or a candidate's result.
+#[derive(serde::Serialize, serde::Deserialize)]
+#[serde(untagged)]
+enum LogLine<'a> {
+    Result { candidate_result: std::borrow::Cow<'a, Candidate> },
+    Epoch(std::borrow::Cow<'a, LogEntry>),
 }
 
 /// Shape and checksum of the data a run was started on.
@@ -819,6 +838,22 @@ impl Staged {
         self.learned.state.finished || self.learned.state.epoch > self.learned.settings.epochs
     }
 
+    /// Why a finished flow stopped.
+    pub(crate) fn why_finished(&self) -> String {
+        let (st, s) = (&self.learned.state, &self.learned.settings);
+        if st.since_best >= s.patience {
+            format!("early stopping (no validation gain in {} epochs)", s.patience)
+        } else {
+            format!("all {} epochs", s.epochs)
+        }
+    }
+
+    /// The epochs so far, for the search's log, each marked with `name`.
+    pub(crate) fn log_as(&self, name: &str) -> impl Iterator<Item = LogEntry> + '_ {
+        let name = name.to_string();
+        self.learned.state.log.iter().map(move |e| LogEntry { candidate: Some(name.clone()), ..e.clone() })
+    }
+
     pub(crate) fn settings(&self) -> &Settings {
         &self.learned.settings
     }
@@ -847,10 +882,9 @@ impl Staged {
         l.state = state;
     }
 
-    /// The model with its best weights; the training log goes to the run's log.
+    /// The model with its best weights.
     pub(crate) fn into_model(mut self, run: &Run) -> Result<Model> {
         self.learned.model.flow.params = self.learned.best_params.clone();
-        write_log(run, &self.learned.state.log)?;
         finish(run, &mut self.learned)?;
         Ok(self.learned.model)
     }
@@ -1306,6 +1340,7 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant, pause:
             val_nll: val_nll / d as f64,
             grad_norm: l.state.grad_norm_sum / steps_per_epoch as f64,
             seconds: l.state.seconds,
+            candidate: None,
         });
         progress.epoch(l.state.epoch, s.epochs, train_nll / d as f64, val_nll / d as f64, rate, improved);
         let epoch = l.state.epoch;
@@ -1315,7 +1350,7 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant, pause:
         l.state.grad_norm_sum = 0.0;
         epoch_started = Instant::now();
         epoch_samples = 0;
-        write_log(run, &l.state.log)?;
+        write_log(run, &l.state.log, &[])?;
         let done = l.state.since_best >= s.patience || l.state.epoch > s.epochs;
         l.state.finished = done;
         if improved || epoch.is_multiple_of(s.checkpoint_every) || done {
@@ -1373,26 +1408,32 @@ fn stop_early(run: &Run, l: &mut Learned, why: Halt) -> Result<()> {
 }
 
 /// Read a JSON-lines training log written by `fit --log`.
-pub fn read_log(path: &Path) -> Result<Vec<LogEntry>> {
+pub fn read_log(path: &Path) -> Result<TrainingLog> {
     let text = crate::data::read_text(path)?;
-    text.lines()
-        .enumerate()
-        .filter(|(_, l)| !l.trim().is_empty())
-        .map(|(i, l)| {
-            let entry: LogEntry = serde_json::from_str(l).map_err(|e| {
-                let e = crate::data::printable(&e.to_string(), 300);
-                Error::Invalid(format!("{}: line {}: not a training log entry ({e})", path.display(), i + 1))
-            })?;
-            Ok(entry)
-        })
-        .collect()
+    let mut log = TrainingLog::default();
+    for (i, l) in text.lines().enumerate().filter(|(_, l)| !l.trim().is_empty()) {
+        let line: LogLine = serde_json::from_str(l).map_err(|e| {
+            let e = crate::data::printable(&e.to_string(), 300);
+            Error::Invalid(format!("{}: line {}: not a training log entry ({e})", path.display(), i + 1))
+        })?;
+        match line {
+            LogLine::Epoch(e) => log.epochs.push(e.into_owned()),
+            LogLine::Result { candidate_result } => log.candidates.push(candidate_result.into_owned()),
+        }
+    }
+    Ok(log)
 }
 
-fn write_log(run: &Run, log: &[LogEntry]) -> Result<()> {
+/// Write the run's log (atomically): its epochs, then the candidates' results.
+pub(super) fn write_log(run: &Run, epochs: &[LogEntry], candidates: &[Candidate]) -> Result<()> {
     let Some(path) = run.log else { return Ok(()) };
+    let lines = epochs
+        .iter()
+        .map(|e| LogLine::Epoch(std::borrow::Cow::Borrowed(e)))
+        .chain(candidates.iter().map(|c| LogLine::Result { candidate_result: std::borrow::Cow::Borrowed(c) }));
     crate::output::write_atomic(path, |w| {
-        for entry in log {
-            let line = serde_json::to_string(entry).map_err(|e| Error::Invalid(e.to_string()))?;
+        for line in lines {
+            let line = serde_json::to_string(&line).map_err(|e| Error::Invalid(e.to_string()))?;
             writeln!(w, "{line}").map_err(|source| Error::Io { path: path.to_path_buf(), source })?;
         }
         Ok(())

@@ -78,6 +78,8 @@ fn interrupted_search_resumes_to_the_same_model() {
             s(&train),
             "-o".into(),
             s(out),
+            "--log".into(),
+            s(&out.with_extension("jsonl")),
             "--budget".into(),
             "1h".into(),
             "--threads".into(),
@@ -86,6 +88,7 @@ fn interrupted_search_resumes_to_the_same_model() {
     };
     let reference = dir.path().join("reference.safetensors");
     assert!(Command::new(common::bin()).args(args(&reference)).arg("-q").status().unwrap().success());
+    check_search_log(&reference);
 
     let model = dir.path().join("model.safetensors");
     let mut child = Command::new(common::bin()).args(args(&model)).stderr(Stdio::piped()).spawn().unwrap();
@@ -117,4 +120,42 @@ fn interrupted_search_resumes_to_the_same_model() {
         std::fs::read(out).unwrap()
     };
     assert!(scores(&reference, "a.csv") == scores(&model, "b.csv"), "the resumed search chose or trained differently");
+    let log = |m: &std::path::Path| without_seconds(std::fs::read_to_string(m.with_extension("jsonl")).unwrap());
+    assert!(log(&reference) == log(&model), "the resumed search logged other epochs or candidates");
+}
+
+/// The log of a search: every flow's epochs marked with its configuration,
+/// then one result line per candidate, the same as the model's metadata,
+/// each saying why it stopped, exactly one chosen.
+fn check_search_log(model: &std::path::Path) {
+    let log = tidemark::train::read_log(&model.with_extension("jsonl")).unwrap();
+    let kept = tidemark::model::Model::load(model).unwrap().meta.training.candidates;
+    assert_eq!(log.candidates.len(), kept.len());
+    assert!(log.candidates.iter().zip(&kept).all(|(a, b)| a.name == b.name && a.validation_nll == b.validation_nll));
+    assert_eq!(log.candidates.iter().filter(|c| c.chosen).count(), 1, "{:?}", log.candidates);
+    assert!(log.candidates.iter().all(|c| !c.stopped.is_empty()), "{:?}", log.candidates);
+    for c in log.candidates.iter().filter(|c| c.kind == Kind::Flow) {
+        let epochs = log.epochs.iter().filter(|e| e.candidate.as_deref() == Some(c.name.as_str())).count();
+        assert_eq!(epochs, c.epochs, "{}", c.name);
+        assert!(!c.stages.is_empty() && c.stages.len() <= 3, "{c:?}");
+    }
+    assert!(log.epochs.iter().all(|e| e.candidate.is_some()));
+}
+
+/// A JSON-lines log with every "seconds" field removed (wall time differs
+/// between runs; everything else must not).
+fn without_seconds(text: String) -> Vec<serde_json::Value> {
+    fn strip(v: &mut serde_json::Value) {
+        if let Some(o) = v.as_object_mut() {
+            o.remove("seconds");
+            o.values_mut().for_each(strip);
+        }
+    }
+    text.lines()
+        .map(|l| {
+            let mut v: serde_json::Value = serde_json::from_str(l).unwrap();
+            strip(&mut v);
+            v
+        })
+        .collect()
 }

@@ -398,7 +398,7 @@ fn evaluate(
         };
         let evaluated = run_tables(&o, id, ood)?;
         if let Some(path) = &report {
-            let input = ReportInput { evaluated: &evaluated, calibration: cal.as_ref(), log: log.as_deref() };
+            let input = ReportInput { evaluated: &evaluated, calibration: cal.as_ref(), log: log.as_ref() };
             write_report(path, &input)?;
         }
         Ok(results_json(&evaluated, &o).to_string())

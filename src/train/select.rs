@@ -4,7 +4,9 @@
 //! not transfer to the next; the held-out rows can decide.
 
 use super::checkpoint::{absolute, same_inputs, SEARCH_KEY};
-use super::{fit_one, FitOptions, Pause, Run, Settings, Staged, TrainState, GAUSSIAN_BELOW_ROWS_PER_FEATURE};
+use super::{
+    fit_one, write_log, FitOptions, LogEntry, Pause, Run, Settings, Staged, TrainState, GAUSSIAN_BELOW_ROWS_PER_FEATURE,
+};
 use crate::error::{Error, Result};
 use crate::model::{kind_name, Candidate, Extras, Kind, Model};
 use crate::output::note;
@@ -53,16 +55,20 @@ fn detail(m: &Model) -> String {
     match (m.meta.kind, &m.meta.mixture) {
         (Kind::Mixture, Some(mm)) => format!("{} components, ridge {:.3e}", mm.components, mm.ridge),
         (Kind::Flow, _) => format!(
-            "{} coupling layers over {} of {} dims, hidden {}, {} epochs (best {})",
-            m.meta.flow.layers,
-            m.meta.flow_dims,
-            m.dim(),
-            m.meta.flow.hidden,
-            t.epochs_run,
+            "{}, best epoch {}",
+            flow_shape(m.meta.flow.layers, m.meta.flow.coupling, m.meta.flow_dims, m.dim(), m.meta.flow.hidden),
             t.best_epoch
         ),
         _ => format!("covariance shrinkage {:.3e}", m.pre.shrinkage),
     }
+}
+
+fn flow_shape(layers: usize, coupling: crate::flow::Coupling, flow_dims: usize, dims: usize, hidden: usize) -> String {
+    let coupling = match coupling {
+        crate::flow::Coupling::Affine => "affine",
+        crate::flow::Coupling::Spline { .. } => "spline",
+    };
+    format!("{layers} {coupling} coupling layers over {flow_dims} of {dims} dims, hidden {hidden}")
 }
 
 /// Whether `new` (a more flexible kind) beats `old` on the validation rows
@@ -139,7 +145,7 @@ fn flow_configs(opts: &FitOptions, table: &Settings, dims: usize) -> Vec<FlowCon
         FlowConfig { name: "spline couplings", opts: set(&|o| o.coupling = Some(super::CouplingKind::Spline)) },
     ];
     let key = |o: &FitOptions| {
-        format!("{:?}", (o.flow_dims, o.layers, o.hidden, o.dropout, o.noise, o.weight_decay, o.mixing))
+        format!("{:?}", (o.flow_dims, o.layers, o.hidden, o.dropout, o.noise, o.weight_decay, o.mixing, o.coupling))
     };
     let mut seen = std::collections::HashSet::new();
     configs.retain(|c| c.opts.flow_dims.is_none_or(|k| k <= dims) && seen.insert(key(&c.opts)));
@@ -161,6 +167,8 @@ struct Racer {
     config: FlowConfig,
     flow: Staged,
     stages: Vec<f64>,
+    /// Why it left the race, once it has.
+    stopped: Option<String>,
 }
 
 /// Where the race stands: the stage, the flows still racing, and which of
@@ -190,6 +198,8 @@ struct RacerState {
     name: String,
     state: TrainState,
     stages: Vec<f64>,
+    #[serde(default)]
+    stopped: Option<String>,
 }
 
 /// A search checkpoint read back: its state, and the file for its tensors.
@@ -230,7 +240,7 @@ fn line_up(
     let mut racers: Vec<Racer> = Vec::new();
     for config in flow_configs(opts, table, dims) {
         let flow = Staged::new(run, &config.opts)?;
-        racers.push(Racer { config, flow, stages: Vec::new() });
+        racers.push(Racer { config, flow, stages: Vec::new(), stopped: None });
     }
     let Some(saved) = saved else {
         let position = Position {
@@ -257,6 +267,7 @@ fn line_up(
         let t = |name: &str| saved.extras.tensor(&format!("search.{i}.{name}"), n);
         r.flow.restore(s.state.clone(), [t(TENSORS[0])?, t(TENSORS[1])?, t(TENSORS[2])?, t(TENSORS[3])?]);
         r.stages = s.stages.clone();
+        r.stopped = s.stopped.clone();
     }
     let mut position = saved.state.position.clone();
     if let Some(b) = opts.budget {
@@ -277,6 +288,7 @@ fn save_search(run: &Run, best: &Model, racers: &[Racer], position: Position) ->
                 name: r.config.name.to_string(),
                 state: r.flow.state().clone(),
                 stages: r.stages.clone(),
+                stopped: r.stopped.clone(),
             })
             .collect(),
         model_path: absolute(run.output),
@@ -350,17 +362,46 @@ fn race_flows(run: &Run, opts: &FitOptions, best: &Model, saved: Option<&SavedSe
                 ));
             }
             at.next += 1;
+            write_log(run, &race_log(&racers), &[])?;
         }
-        // The better half carries on; finished runs stand on their best.
-        let round = at.round;
-        at.alive.retain(|&i| !racers[i].flow.finished() && racers[i].stages.len() == round + 1);
-        at.alive
-            .sort_by(|&a, &b| racers[a].flow.best_validation_nll().total_cmp(&racers[b].flow.best_validation_nll()));
-        at.alive.truncate(at.alive.len().div_ceil(2));
-        at.round += 1;
-        at.next = 0;
+        halve(&mut racers, &mut at);
+    }
+    for r in &mut racers {
+        let why = r.flow.why_finished();
+        r.stopped.get_or_insert(why);
     }
     Ok((racers, dims))
+}
+
+/// End a stage: the better half carries on; a finished run stands on its
+/// best, and one the budget left waiting stops where it is.
+fn halve(racers: &mut [Racer], at: &mut Position) {
+    let round = at.round;
+    let stage = format!("stage {} of {ROUNDS}", round + 1);
+    for &i in &at.alive {
+        let r = &mut racers[i];
+        if r.stages.len() != round + 1 {
+            r.stopped = Some(format!("budget spent before {stage}"));
+        } else if r.flow.finished() {
+            r.stopped = Some(r.flow.why_finished());
+        }
+    }
+    at.alive.retain(|&i| racers[i].stopped.is_none());
+    at.alive.sort_by(|&a, &b| racers[a].flow.best_validation_nll().total_cmp(&racers[b].flow.best_validation_nll()));
+    let (n, keep) = (at.alive.len(), at.alive.len().div_ceil(2));
+    if round + 1 < ROUNDS {
+        for (rank, &i) in at.alive.iter().enumerate().skip(keep) {
+            racers[i].stopped = Some(format!("halved out after {stage} (ranked {} of {n})", rank + 1));
+        }
+    }
+    at.alive.truncate(keep);
+    at.round += 1;
+    at.next = 0;
+}
+
+/// Every flow's epochs so far, each marked with its configuration.
+fn race_log(racers: &[Racer]) -> Vec<LogEntry> {
+    racers.iter().flat_map(|r| r.flow.log_as(r.config.name)).collect()
 }
 
 fn minutes(seconds: f64) -> String {
@@ -377,13 +418,19 @@ fn minutes(seconds: f64) -> String {
 pub(super) fn fit_best(run: &Run, opts: &FitOptions, saved: Option<&SavedSearch>) -> Result<Model> {
     let mut best: Option<Model> = None;
     let mut candidates: Vec<Candidate> = Vec::new();
+    let mut flow_epochs: Vec<LogEntry> = Vec::new();
     let quiet_run = Run { output: None, checkpoint: None, log: None, resume: None, ..*run };
     for kind in kinds(run, opts) {
         let t = Instant::now();
         if kind != Kind::Flow {
             let model = fit_one(&quiet_run, &FitOptions { kind: Some(kind), quiet: true, ..opts.clone() })?;
-            let detail = detail(&model);
-            let c = candidate(&model, detail, t.elapsed().as_secs_f64(), Vec::new());
+            let c = Candidate {
+                name: kind_name(kind),
+                detail: detail(&model),
+                seconds: t.elapsed().as_secs_f64(),
+                stopped: closed_form_or_em(&model),
+                ..candidate(&model)
+            };
             keep(opts, &mut candidates, &mut best, model, c);
             continue;
         }
@@ -394,30 +441,36 @@ pub(super) fn fit_best(run: &Run, opts: &FitOptions, saved: Option<&SavedSearch>
             Err(e) => return Err(e),
         };
         let seconds_all: f64 = racers.iter().map(|r| r.flow.seconds()).sum();
+        flow_epochs = race_log(&racers);
         let winner = (0..racers.len())
             .min_by(|&a, &b| racers[a].flow.best_validation_nll().total_cmp(&racers[b].flow.best_validation_nll()));
         for (i, r) in racers.into_iter().enumerate() {
-            let (name, seconds, stages) = (r.config.name, r.flow.seconds(), r.stages);
+            let raced = Candidate {
+                name: r.config.name.to_string(),
+                seconds: r.flow.seconds(),
+                epochs: r.flow.epochs(),
+                stopped: r.stopped.unwrap_or_default(),
+                stages: r.stages,
+                ..candidate_of_kind(kind)
+            };
             if Some(i) == winner {
-                let model = r.flow.into_model(run)?;
-                let detail = format!("\"{name}\": {}", detail(&model));
-                let c = candidate(&model, detail, seconds, stages);
+                let model = r.flow.into_model(&quiet_run)?;
+                let c = Candidate {
+                    detail: format!("\"{}\": {}", raced.name, detail(&model)),
+                    validation_nll: model.meta.training.best_validation_nll,
+                    ..raced
+                };
                 keep(opts, &mut candidates, &mut best, model, c);
             } else {
                 let s = r.flow.settings();
                 candidates.push(Candidate {
-                    kind,
                     detail: format!(
-                        "\"{name}\": {} coupling layers over {} of {dims} dims, hidden {}, {} epochs",
-                        s.layers,
-                        s.flow_dims,
-                        s.hidden,
-                        r.flow.epochs()
+                        "\"{}\": {}",
+                        raced.name,
+                        flow_shape(s.layers, s.coupling, s.flow_dims, dims, s.hidden)
                     ),
                     validation_nll: r.flow.best_validation_nll(),
-                    seconds,
-                    chosen: false,
-                    stages,
+                    ..raced
                 });
             }
         }
@@ -430,13 +483,38 @@ pub(super) fn fit_best(run: &Run, opts: &FitOptions, saved: Option<&SavedSearch>
     for c in &mut candidates {
         c.chosen = c.kind == model.meta.kind && c.validation_nll == chosen;
     }
+    write_log(run, &flow_epochs, &candidates)?;
     model.meta.training.candidates = candidates;
     Ok(model)
 }
 
-fn candidate(model: &Model, detail: String, seconds: f64, stages: Vec<f64>) -> Candidate {
-    let validation_nll = model.meta.training.best_validation_nll;
-    Candidate { kind: model.meta.kind, detail, validation_nll, seconds, chosen: false, stages }
+/// A candidate of `kind` with nothing measured yet.
+fn candidate_of_kind(kind: Kind) -> Candidate {
+    Candidate {
+        kind,
+        name: String::new(),
+        detail: String::new(),
+        validation_nll: f64::INFINITY,
+        seconds: 0.0,
+        chosen: false,
+        epochs: 0,
+        stopped: String::new(),
+        stages: Vec::new(),
+    }
+}
+
+/// A fitted model as a candidate: its kind and validation NLL.
+fn candidate(model: &Model) -> Candidate {
+    Candidate { validation_nll: model.meta.training.best_validation_nll, ..candidate_of_kind(model.meta.kind) }
+}
+
+/// How a candidate fitted without epochs ended.
+fn closed_form_or_em(model: &Model) -> String {
+    match &model.meta.mixture {
+        Some(m) if m.converged => format!("EM converged ({} iterations)", m.em_iterations),
+        Some(m) => format!("EM stopped at {} iterations, not converged", m.em_iterations),
+        None => "closed form".to_string(),
+    }
 }
 
 /// List a fitted candidate, and keep it when it is clearly better than the
@@ -499,5 +577,23 @@ fn interrupted(run: &Run, best: Option<Model>, msg: String) -> Error {
             Err(e) => e,
         },
         _ => Error::Interrupted(format!("search interrupted ({msg})")),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn spline_couplings_race_when_the_table_already_models_every_dim() {
+        // With 125 rows per feature the table models all 32 dims, so the
+        // "all dims" configuration repeats it and is dropped; the spline
+        // one differs only in its couplings and must stay.
+        let opts = FitOptions::default();
+        let table = Settings::resolve(&opts, 4000, 32, true, false).expect("valid settings");
+        assert_eq!(table.flow_dims, 32);
+        let names: Vec<&str> = flow_configs(&opts, &table, 32).iter().map(|c| c.name).collect();
+        assert!(names.contains(&"spline couplings"), "{names:?}");
+        assert!(!names.contains(&"all dims"), "{names:?}");
     }
 }
