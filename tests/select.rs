@@ -61,9 +61,11 @@ fn curved_data_leaves_the_gaussian() {
 
 mod common;
 
-/// A search stopped by SIGTERM while the flows race writes a search
-/// checkpoint and the best density so far; `--resume` ends with the same
-/// model as the uninterrupted search (same scores, bit for bit).
+/// A search killed outright (SIGKILL) while the flows race can be resumed
+/// from the checkpoint it writes after every stage; stopped again by
+/// SIGTERM it writes the checkpoint and the best density so far; resumed
+/// to the end it gives the same model as the uninterrupted search (same
+/// scores, bit for bit) and the same log.
 #[test]
 fn interrupted_search_resumes_to_the_same_model() {
     use std::io::{BufRead, BufReader};
@@ -91,24 +93,37 @@ fn interrupted_search_resumes_to_the_same_model() {
     check_search_log(&reference);
 
     let model = dir.path().join("model.safetensors");
-    let mut child = Command::new(common::bin()).args(args(&model)).stderr(Stdio::piped()).spawn().unwrap();
-    let mut lines = BufReader::new(child.stderr.take().unwrap()).lines();
-    // Stop it once the race has begun.
-    for line in lines.by_ref() {
-        if line.unwrap().starts_with("flow \"") {
-            break;
-        }
-    }
-    common::send(child.id(), "-TERM");
-    let rest: Vec<String> = lines.map(|l| l.unwrap()).collect();
-    assert_eq!(child.wait().unwrap().code(), Some(130), "{rest:?}");
     let checkpoint = dir.path().join("model.checkpoint.safetensors");
+    let mut resume = args(&model);
+    resume.extend(["--resume".to_string(), s(&checkpoint)]);
+    // Run until `stages` flows have finished a stage, then send `signal`.
+    let stop_after = |args: &[String], stages: usize, signal: &str| {
+        let mut child = Command::new(common::bin()).args(args).stderr(Stdio::piped()).spawn().unwrap();
+        let mut lines = BufReader::new(child.stderr.take().unwrap()).lines();
+        let mut seen = 0;
+        for line in lines.by_ref() {
+            if line.unwrap().starts_with("flow \"") {
+                seen += 1;
+                if seen == stages {
+                    break;
+                }
+            }
+        }
+        common::send(child.id(), signal);
+        let rest: Vec<String> = lines.map(|l| l.unwrap()).collect();
+        (child.wait().unwrap(), rest)
+    };
+    let (killed, _) = stop_after(&args(&model), 2, "-KILL");
+    assert_eq!(killed.code(), None, "SIGKILL ends the process without a status");
+    assert!(checkpoint.exists(), "a search checkpoint is written after every stage");
+
+    let (status, rest) = stop_after(&resume, 1, "-TERM");
+    assert_eq!(status.code(), Some(130), "{rest:?}");
     assert!(checkpoint.exists() && model.exists(), "{rest:?}");
     assert!(rest.iter().any(|l| l.contains("--resume")), "{rest:?}");
 
-    let mut resumed = args(&model);
-    resumed.extend(["--resume".to_string(), s(&checkpoint), "-q".into()]);
-    assert!(Command::new(common::bin()).args(resumed).status().unwrap().success());
+    resume.push("-q".into());
+    assert!(Command::new(common::bin()).args(resume).status().unwrap().success());
     assert!(!checkpoint.exists(), "a finished search removes its checkpoint");
     let scores = |m: &std::path::Path, name: &str| {
         let out = dir.path().join(name);

@@ -310,8 +310,9 @@ fn save_search(run: &Run, best: &Model, racers: &[Racer], position: Position) ->
 /// half of those to all of them (each on the learning-rate schedule of the
 /// full run, so a stage continues where the last one paused). A run that
 /// stops early keeps its best. The stages stop when the budget is spent.
-/// Interrupted, it writes a search checkpoint (see [`save_search`]) that
-/// [`resume`] continues to the same result.
+/// A search checkpoint (see [`save_search`]) is written after every stage
+/// of every flow and when interrupted; [`resume`] continues it to the same
+/// result.
 fn race_flows(run: &Run, opts: &FitOptions, best: &Model, saved: Option<&SavedSearch>) -> Result<(Vec<Racer>, usize)> {
     let quiet_run = Run { output: None, checkpoint: None, log: None, ..*run };
     // The settings table and the dimensions come from a flow's own
@@ -363,6 +364,10 @@ fn race_flows(run: &Run, opts: &FitOptions, best: &Model, saved: Option<&SavedSe
             }
             at.next += 1;
             write_log(run, &race_log(&racers), &[])?;
+            // After every stage of every flow, so that a run killed outright
+            // (SIGKILL, power loss) loses at most one stage of one flow.
+            at.elapsed = started.elapsed().as_secs_f64();
+            save_search(run, best, &racers, at.clone())?;
         }
         halve(&mut racers, &mut at);
     }
