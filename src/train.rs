@@ -690,13 +690,6 @@ enum LogLine<'a> {
     Epoch(std::borrow::Cow<'a, LogEntry>),
 }
 
-impl TrainState {
-    /// The epochs so far, for a search's log, each marked with `name`.
-    fn log_as<'a>(&'a self, name: &'a str) -> impl Iterator<Item = LogEntry> + 'a {
-        self.log.iter().map(move |e| LogEntry { candidate: Some(name.to_string()), ..e.clone() })
-    }
-}
-
 /// Shape and checksum of the data a run was started on.
 #[derive(Clone, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Fingerprint {
@@ -855,14 +848,10 @@ impl Staged {
         }
     }
 
-    /// Trainable parameters of the flow.
-    pub(crate) fn parameters(&self) -> usize {
-        self.learned.model.flow.param_count()
-    }
-
-    /// Train the next stages on this many threads.
-    pub(crate) fn set_threads(&mut self, threads: usize) {
-        self.learned.settings.threads = threads.max(1);
+    /// The epochs so far, for the search's log, each marked with `name`.
+    pub(crate) fn log_as(&self, name: &str) -> impl Iterator<Item = LogEntry> + '_ {
+        let name = name.to_string();
+        self.learned.state.log.iter().map(move |e| LogEntry { candidate: Some(name.clone()), ..e.clone() })
     }
 
     pub(crate) fn settings(&self) -> &Settings {

@@ -158,12 +158,8 @@ fn flow_configs(opts: &FitOptions, table: &Settings, dims: usize) -> Vec<FlowCon
 /// about seven such flows when no run stops early.
 const DEFAULT_BUDGET_FACTOR: f64 = 10.0;
 
-/// The budget from the table flow's first stage as it trained in the race:
-/// `lanes` flows train side by side, so ten flows' time is shared among
-/// the lanes.
-fn default_budget(first_stage_seconds: f64, first_stage_epochs: usize, epochs: usize, lanes: usize) -> f64 {
-    let one_flow = first_stage_seconds / first_stage_epochs.max(1) as f64 * epochs as f64;
-    (DEFAULT_BUDGET_FACTOR * one_flow / lanes.max(1) as f64).max(60.0)
+fn default_budget(first_stage_seconds: f64, first_stage_epochs: usize, epochs: usize) -> f64 {
+    (DEFAULT_BUDGET_FACTOR * first_stage_seconds / first_stage_epochs.max(1) as f64 * epochs as f64).max(60.0)
 }
 
 /// A flow of the search and how far it got.
@@ -175,13 +171,14 @@ struct Racer {
     stopped: Option<String>,
 }
 
-/// Where the race stands: the stage and the flows still racing.
-/// The flows of `alive` that have not finished the round's stage are
-/// those with one stage fewer than the round's.
+/// Where the race stands: the stage, the flows still racing, and which of
+/// them trains next.
 #[derive(Clone, serde::Serialize, serde::Deserialize)]
 struct Position {
     round: usize,
     alive: Vec<usize>,
+    /// Index into `alive` of the flow that trains next.
+    next: usize,
     budget: Option<f64>,
     /// Seconds the search had run.
     elapsed: f64,
@@ -217,7 +214,7 @@ impl SavedSearch {
             Error::model(path, format!("bad search checkpoint: {}", crate::data::printable(&e.to_string(), 200)))
         })?;
         let p = &state.position;
-        if p.round >= ROUNDS || p.alive.iter().any(|&i| i >= state.racers.len()) {
+        if p.round >= ROUNDS || p.next > p.alive.len() || p.alive.iter().any(|&i| i >= state.racers.len()) {
             return Err(Error::model(path, "bad search checkpoint: its position is out of range"));
         }
         Ok(SavedSearch { state, extras })
@@ -246,8 +243,13 @@ fn line_up(
         racers.push(Racer { config, flow, stages: Vec::new(), stopped: None });
     }
     let Some(saved) = saved else {
-        let position =
-            Position { round: 0, alive: (0..racers.len()).collect(), budget: opts.budget.map(|b| b.0), elapsed: 0.0 };
+        let position = Position {
+            round: 0,
+            alive: (0..racers.len()).collect(),
+            next: 0,
+            budget: opts.budget.map(|b| b.0),
+            elapsed: 0.0,
+        };
         return Ok((racers, position));
     };
     let names: Vec<&str> = racers.iter().map(|r| r.config.name).collect();
@@ -274,71 +276,18 @@ fn line_up(
     Ok((racers, position))
 }
 
-/// What a search checkpoint keeps of one flow.
-struct RacerView<'a> {
-    name: &'a str,
-    state: &'a TrainState,
-    tensors: [&'a [f32]; 4],
-    stages: &'a [f64],
-    stopped: &'a Option<String>,
-}
-
-impl Racer {
-    fn view(&self) -> RacerView<'_> {
-        RacerView {
-            name: self.config.name,
-            state: self.flow.state(),
-            tensors: self.flow.tensors(),
-            stages: &self.stages,
-            stopped: &self.stopped,
-        }
-    }
-}
-
-/// A flow as it was when it was handed to a lane, kept so that a
-/// checkpoint written while it trains restarts its stage.
-struct Snapshot {
-    name: &'static str,
-    state: TrainState,
-    tensors: [Vec<f32>; 4],
-    stages: Vec<f64>,
-    stopped: Option<String>,
-}
-
-impl Snapshot {
-    fn of(r: &Racer) -> Snapshot {
-        Snapshot {
-            name: r.config.name,
-            state: r.flow.state().clone(),
-            tensors: r.flow.tensors().map(<[f32]>::to_vec),
-            stages: r.stages.clone(),
-            stopped: r.stopped.clone(),
-        }
-    }
-
-    fn view(&self) -> RacerView<'_> {
-        RacerView {
-            name: self.name,
-            state: &self.state,
-            tensors: [&self.tensors[0], &self.tensors[1], &self.tensors[2], &self.tensors[3]],
-            stages: &self.stages,
-            stopped: &self.stopped,
-        }
-    }
-}
-
 /// Write the search checkpoint: the best density so far as the model, each
 /// flow's weights, best weights and optimizer moments, and the position.
-fn save_search(run: &Run, best: &Model, racers: &[RacerView], position: Position) -> Result<()> {
+fn save_search(run: &Run, best: &Model, racers: &[Racer], position: Position) -> Result<()> {
     let Some(path) = &run.checkpoint else { return Ok(()) };
     let state = SearchState {
         position,
         racers: racers
             .iter()
             .map(|r| RacerState {
-                name: r.name.to_string(),
-                state: r.state.clone(),
-                stages: r.stages.to_vec(),
+                name: r.config.name.to_string(),
+                state: r.flow.state().clone(),
+                stages: r.stages.clone(),
                 stopped: r.stopped.clone(),
             })
             .collect(),
@@ -348,7 +297,7 @@ fn save_search(run: &Run, best: &Model, racers: &[RacerView], position: Position
     let json = serde_json::to_string(&state).map_err(|e| Error::Invalid(e.to_string()))?;
     let mut extra = Vec::new();
     for (i, r) in racers.iter().enumerate() {
-        for (name, values) in TENSORS.iter().zip(r.tensors) {
+        for (name, values) in TENSORS.iter().zip(r.flow.tensors()) {
             extra.push((format!("search.{i}.{name}"), values));
         }
     }
@@ -375,14 +324,51 @@ fn race_flows(run: &Run, opts: &FitOptions, best: &Model, saved: Option<&SavedSe
     let stages = [epochs.div_ceil(4), epochs.div_ceil(2), epochs];
     let (mut racers, mut at) = line_up(&quiet_run, opts, &table, dims, saved)?;
     let started = Instant::now().checked_sub(Duration::from_secs_f64(at.elapsed)).unwrap_or_else(Instant::now);
-    let race = Race { run, quiet_run: &quiet_run, opts, best, started, epochs };
     while at.round < ROUNDS {
-        let lanes = table.threads.min(at.alive.len()).max(1);
-        for &i in &at.alive {
-            racers[i].flow.set_threads(table.threads / lanes);
-        }
         let until = stages[at.round];
-        race.stage(&mut racers, &mut at, until, lanes)?;
+        while at.next < at.alive.len() {
+            let i = at.alive[at.next];
+            let first = at.round == 0 && i == 0;
+            if at.budget.is_some_and(|b| started.elapsed().as_secs_f64() >= b) && !first {
+                break;
+            }
+            let deadline = at.budget.filter(|_| !first).map(|b| started + Duration::from_secs_f64(b));
+            let r = &mut racers[i];
+            if let Err(e) = r.flow.train_to(&quiet_run, &r.config.opts, Pause { epoch: until, deadline }) {
+                if let Error::Interrupted(_) = e {
+                    at.elapsed = started.elapsed().as_secs_f64();
+                    save_search(run, best, &racers, at)?;
+                }
+                return Err(e);
+            }
+            r.stages.push(r.flow.best_validation_nll());
+            if at.budget.is_none() {
+                // The first stage of the table's flow sets the default budget.
+                let b = default_budget(r.flow.seconds(), r.flow.epochs(), epochs);
+                at.budget = Some(b);
+                if !opts.quiet {
+                    note(format!(
+                        "search budget {} ({DEFAULT_BUDGET_FACTOR} x the projected time of one flow; --budget sets it)",
+                        minutes(b)
+                    ));
+                }
+            }
+            if !opts.quiet {
+                note(format!(
+                    "flow \"{}\": epoch {}, validation NLL {:.4} nats/vector ({} spent)",
+                    r.config.name,
+                    r.flow.epochs(),
+                    r.flow.best_validation_nll(),
+                    minutes(started.elapsed().as_secs_f64())
+                ));
+            }
+            at.next += 1;
+            write_log(run, &race_log(&racers), &[])?;
+            // After every stage of every flow, so that a run killed outright
+            // (SIGKILL, power loss) loses at most one stage of one flow.
+            at.elapsed = started.elapsed().as_secs_f64();
+            save_search(run, best, &racers, at.clone())?;
+        }
         halve(&mut racers, &mut at);
     }
     for r in &mut racers {
@@ -390,149 +376,6 @@ fn race_flows(run: &Run, opts: &FitOptions, best: &Model, saved: Option<&SavedSe
         r.stopped.get_or_insert(why);
     }
     Ok((racers, dims))
-}
-
-/// What every stage of the race shares.
-struct Race<'r, 'a> {
-    run: &'r Run<'a>,
-    quiet_run: &'r Run<'a>,
-    opts: &'r FitOptions,
-    best: &'r Model,
-    started: Instant,
-    epochs: usize,
-}
-
-impl Race<'_, '_> {
-    /// Train every flow of the round that has not yet run its stage, up to
-    /// `until` epochs, `lanes` flows at a time, each on its share of the
-    /// threads: measured on 2 cores, two one-thread flows side by side
-    /// train 1.2-1.3x more vectors per second than one flow on two threads
-    /// (D = 64 and 384; DEVELOPERS.md). After each flow's stage the log and
-    /// the search checkpoint are written; interrupted, the flows in flight
-    /// stop where they are and the checkpoint holds them there.
-    fn stage(&self, racers: &mut Vec<Racer>, at: &mut Position, until: usize, lanes: usize) -> Result<()> {
-        let round = at.round;
-        let mut pending: Vec<usize> = at.alive.iter().copied().filter(|&i| racers[i].stages.len() == round).collect();
-        // Longest first, so that no lane is left with one long flow at the
-        // end while the others wait; the table's flow still opens the race.
-        pending.sort_by(|&a, &b| {
-            let key = |i: usize| (!(round == 0 && i == 0), -expected_cost(&racers[i], round));
-            key(a).partial_cmp(&key(b)).unwrap_or(std::cmp::Ordering::Equal)
-        });
-        let mut pending: std::collections::VecDeque<usize> = pending.into();
-        let mut slots: Vec<Option<Racer>> = std::mem::take(racers).into_iter().map(Some).collect();
-        let mut in_flight: Vec<(usize, Snapshot)> = Vec::new();
-        let mut failed: Option<Error> = None;
-        let (tx, rx) = std::sync::mpsc::channel();
-        std::thread::scope(|scope| {
-            loop {
-                while in_flight.len() < lanes && failed.is_none() {
-                    let Some(i) = pending.pop_front() else { break };
-                    // The table's first stage always runs: it sets the default budget.
-                    let first = round == 0 && i == 0;
-                    if at.budget.is_some_and(|b| self.started.elapsed().as_secs_f64() >= b) && !first {
-                        pending.clear();
-                        break;
-                    }
-                    let deadline = at.budget.filter(|_| !first).map(|b| self.started + Duration::from_secs_f64(b));
-                    let mut r = slots[i].take().expect("a flow not in flight is in its slot");
-                    in_flight.push((i, Snapshot::of(&r)));
-                    let (tx, quiet_run) = (tx.clone(), self.quiet_run);
-                    scope.spawn(move || {
-                        let result = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
-                            r.flow.train_to(quiet_run, &r.config.opts, Pause { epoch: until, deadline })
-                        }))
-                        .unwrap_or_else(|_| {
-                            Err(Error::Invalid(format!("flow \"{}\" of the search panicked", r.config.name)))
-                        });
-                        // The receiver outlives every lane.
-                        let _ = tx.send((i, r, result));
-                    });
-                }
-                if in_flight.is_empty() {
-                    break;
-                }
-                let (i, mut r, result) = rx.recv().expect("a lane sends its flow back");
-                in_flight.retain(|(j, _)| *j != i);
-                match result {
-                    Ok(()) => self.finished_stage(&mut r, at, lanes),
-                    Err(e) => {
-                        failed.get_or_insert(e);
-                    }
-                }
-                slots[i] = Some(r);
-                if failed.is_none() {
-                    at.elapsed = self.started.elapsed().as_secs_f64();
-                    let views = views(&slots, &in_flight);
-                    let written = write_log(self.run, &race_log(&views), &[])
-                        .and_then(|()| save_search(self.run, self.best, &views, at.clone()));
-                    if let Err(e) = written {
-                        failed = Some(e);
-                    }
-                }
-            }
-        });
-        *racers = slots.into_iter().map(|r| r.expect("every flow is back from its lane")).collect();
-        match failed {
-            None => Ok(()),
-            Some(e @ Error::Interrupted(_)) => {
-                at.elapsed = self.started.elapsed().as_secs_f64();
-                let views: Vec<RacerView> = racers.iter().map(Racer::view).collect();
-                save_search(self.run, self.best, &views, at.clone())?;
-                Err(e)
-            }
-            Some(e) => Err(e),
-        }
-    }
-
-    /// Record a flow's stage; the table's first sets the default budget.
-    fn finished_stage(&self, r: &mut Racer, at: &mut Position, lanes: usize) {
-        r.stages.push(r.flow.best_validation_nll());
-        if at.budget.is_none() {
-            let b = default_budget(r.flow.seconds(), r.flow.epochs(), self.epochs, lanes);
-            at.budget = Some(b);
-            if !self.opts.quiet {
-                note(format!(
-                    "search budget {} (the time racing {DEFAULT_BUDGET_FACTOR} flows of the table's size takes; --budget sets it)",
-                    minutes(b)
-                ));
-            }
-        }
-        if !self.opts.quiet {
-            note(format!(
-                "flow \"{}\": epoch {}, validation NLL {:.4} nats/vector ({} spent)",
-                r.config.name,
-                r.flow.epochs(),
-                r.flow.best_validation_nll(),
-                minutes(self.started.elapsed().as_secs_f64())
-            ));
-        }
-    }
-}
-
-/// Relative time of a flow's next epoch: in the first round its parameter
-/// count (a spline coupling costs about ten affine ones per parameter:
-/// 8-13x per update, DEVELOPERS.md), later its own seconds per epoch.
-fn expected_cost(r: &Racer, round: usize) -> f64 {
-    if round == 0 || r.flow.epochs() == 0 {
-        let spline = r.flow.settings().coupling != crate::flow::Coupling::Affine;
-        r.flow.parameters() as f64 * if spline { 10.0 } else { 1.0 }
-    } else {
-        r.flow.seconds() / r.flow.epochs() as f64
-    }
-}
-
-/// Every flow as a checkpoint keeps it: those in flight as they were when
-/// their stage began.
-fn views<'a>(slots: &'a [Option<Racer>], in_flight: &'a [(usize, Snapshot)]) -> Vec<RacerView<'a>> {
-    slots
-        .iter()
-        .enumerate()
-        .map(|(i, r)| match r {
-            Some(r) => r.view(),
-            None => in_flight.iter().find(|(j, _)| *j == i).expect("a flow not in its slot is in flight").1.view(),
-        })
-        .collect()
 }
 
 /// End a stage: the better half carries on; a finished run stands on its
@@ -558,11 +401,12 @@ fn halve(racers: &mut [Racer], at: &mut Position) {
     }
     at.alive.truncate(keep);
     at.round += 1;
+    at.next = 0;
 }
 
 /// Every flow's epochs so far, each marked with its configuration.
-fn race_log(racers: &[RacerView]) -> Vec<LogEntry> {
-    racers.iter().flat_map(|r| r.state.log_as(r.name)).collect()
+fn race_log(racers: &[Racer]) -> Vec<LogEntry> {
+    racers.iter().flat_map(|r| r.flow.log_as(r.config.name)).collect()
 }
 
 fn minutes(seconds: f64) -> String {
@@ -602,7 +446,7 @@ pub(super) fn fit_best(run: &Run, opts: &FitOptions, saved: Option<&SavedSearch>
             Err(e) => return Err(e),
         };
         let seconds_all: f64 = racers.iter().map(|r| r.flow.seconds()).sum();
-        flow_epochs = race_log(&racers.iter().map(Racer::view).collect::<Vec<_>>());
+        flow_epochs = race_log(&racers);
         let winner = (0..racers.len())
             .min_by(|&a, &b| racers[a].flow.best_validation_nll().total_cmp(&racers[b].flow.best_validation_nll()));
         for (i, r) in racers.into_iter().enumerate() {
