@@ -30,15 +30,20 @@ pub fn params_per_element(bins: usize) -> usize {
 /// outputs; `bins <= MAX_BINS`.
 pub const MAX_BINS: usize = 32;
 
+/// Softmax shares of an element's bin widths and heights; knot positions
+/// are summed from them only as far as the bin that is needed.
 struct Knots {
-    /// Softmax shares of widths and heights.
     w_share: [f32; MAX_BINS],
     h_share: [f32; MAX_BINS],
-    /// Bin widths and heights (sum 2B each) and left knot positions.
-    w: [f32; MAX_BINS],
-    h: [f32; MAX_BINS],
-    x: [f32; MAX_BINS + 1],
-    y: [f32; MAX_BINS + 1],
+}
+
+/// One bin of an element's spline: its index, left knot and size.
+struct Located {
+    b: usize,
+    x: f32,
+    y: f32,
+    w: f32,
+    h: f32,
 }
 
 /// The derivative at knot `i` of `k + 1` (1 at both ends); only the two
@@ -76,32 +81,30 @@ fn sigmoid(r: f32) -> f32 {
 }
 
 impl Knots {
-    fn new(raw: &[f32], k: usize, bound: f32) -> Knots {
-        let mut kn = Knots {
-            w_share: [0.0; MAX_BINS],
-            h_share: [0.0; MAX_BINS],
-            w: [0.0; MAX_BINS],
-            h: [0.0; MAX_BINS],
-            x: [0.0; MAX_BINS + 1],
-            y: [0.0; MAX_BINS + 1],
-        };
+    fn new(raw: &[f32], k: usize) -> Knots {
+        let mut kn = Knots { w_share: [0.0; MAX_BINS], h_share: [0.0; MAX_BINS] };
         softmax_into(&raw[..k], &mut kn.w_share[..k]);
         softmax_into(&raw[k..2 * k], &mut kn.h_share[..k]);
-        let spread = 1.0 - MIN_BIN * k as f32;
-        kn.x[0] = -bound;
-        kn.y[0] = -bound;
-        for i in 0..k {
-            kn.w[i] = 2.0 * bound * (MIN_BIN + spread * kn.w_share[i]);
-            kn.h[i] = 2.0 * bound * (MIN_BIN + spread * kn.h_share[i]);
-            kn.x[i + 1] = kn.x[i] + kn.w[i];
-            kn.y[i + 1] = kn.y[i] + kn.h[i];
-        }
         kn
     }
 
-    /// The bin whose [left, right) interval along `edges` holds `v`.
-    fn bin(edges: &[f32], k: usize, v: f32) -> usize {
-        (1..k).take_while(|&i| v >= edges[i]).count()
+    /// The bin whose [left, right) interval holds `v`, along the inputs
+    /// (`along_x`) or the outputs; the last bin takes everything beyond.
+    fn locate(&self, k: usize, bound: f32, v: f32, along_x: bool) -> Located {
+        let scale = 2.0 * bound;
+        let spread = 1.0 - MIN_BIN * k as f32;
+        let (mut x, mut y) = (-bound, -bound);
+        for b in 0..k {
+            let w = scale * (MIN_BIN + spread * self.w_share[b]);
+            let h = scale * (MIN_BIN + spread * self.h_share[b]);
+            let right = if along_x { x + w } else { y + h };
+            if v < right || b + 1 == k {
+                return Located { b, x, y, w, h };
+            }
+            x += w;
+            y += h;
+        }
+        unreachable!("a spline has at least one bin")
     }
 }
 
@@ -111,6 +114,8 @@ impl Knots {
 struct Bin {
     kn: Knots,
     b: usize,
+    /// The bin's left knot output.
+    yb: f32,
     wb: f32,
     hb: f32,
     db: f32,
@@ -125,16 +130,16 @@ struct Bin {
 
 impl Bin {
     fn of(x: f32, raw: &[f32], k: usize, bound: f32) -> Bin {
-        let kn = Knots::new(raw, k, bound);
-        let b = Knots::bin(&kn.x, k, x);
-        let (wb, hb, db, db1) = (kn.w[b], kn.h[b], derivative(raw, k, b), derivative(raw, k, b + 1));
+        let kn = Knots::new(raw, k);
+        let Located { b, x: xb, y: yb, w: wb, h: hb } = kn.locate(k, bound, x, true);
+        let (db, db1) = (derivative(raw, k, b), derivative(raw, k, b + 1));
         let s = hb / wb;
-        let xi = ((x - kn.x[b]) / wb).clamp(0.0, 1.0);
+        let xi = ((x - xb) / wb).clamp(0.0, 1.0);
         let q = xi * (1.0 - xi);
         let num = hb * (s * xi * xi + db * q);
         let den = s + (db1 + db - 2.0 * s) * q;
         let t = db1 * xi * xi + 2.0 * s * q + db * (1.0 - xi) * (1.0 - xi);
-        Bin { kn, b, wb, hb, db, db1, s, xi, q, num, den, t }
+        Bin { kn, b, yb, wb, hb, db, db1, s, xi, q, num, den, t }
     }
 }
 
@@ -143,10 +148,10 @@ pub fn forward(x: f32, raw: &[f32], k: usize, bound: f32) -> (f32, f32) {
     if !(-bound..bound).contains(&x) {
         return (x, 0.0);
     }
-    let Bin { kn, b, s, num, den, t, .. } = Bin::of(x, raw, k, bound);
+    let Bin { yb, s, num, den, t, .. } = Bin::of(x, raw, k, bound);
     // ln(s^2 t / den^2) in one logarithm.
     let r = s / den;
-    (kn.y[b] + num / den, (r * r * t).ln())
+    (yb + num / den, (r * r * t).ln())
 }
 
 /// Reverse mode through [`forward`]: given the gradients `gy` of `y` and
@@ -157,7 +162,7 @@ pub fn backward(x: f32, raw: &[f32], k: usize, bound: f32, gy: f32, gld: f32, gr
     if !(-bound..bound).contains(&x) {
         return gy;
     }
-    let Bin { kn, b, wb, hb, db, db1, s, xi, q, num, den, t } = Bin::of(x, raw, k, bound);
+    let Bin { kn, b, wb, hb, db, db1, s, xi, q, num, den, t, .. } = Bin::of(x, raw, k, bound);
     // Adjoints of the intermediate quantities, in reverse order.
     let g_yb = gy;
     let g_num = gy / den;
@@ -222,18 +227,17 @@ pub fn inverse(y: f32, raw: &[f32], k: usize, bound: f32) -> f32 {
     if !(-bound..bound).contains(&y) {
         return y;
     }
-    let kn = Knots::new(raw, k, bound);
-    let b = Knots::bin(&kn.y, k, y);
-    let (wb, hb) = (kn.w[b] as f64, kn.h[b] as f64);
+    let Located { b, x: xb, y: yb, w, h } = Knots::new(raw, k).locate(k, bound, y, false);
+    let (wb, hb) = (w as f64, h as f64);
     let (db, db1) = (derivative(raw, k, b) as f64, derivative(raw, k, b + 1) as f64);
     let s = hb / wb;
-    let dy = (y - kn.y[b]) as f64;
+    let dy = (y - yb) as f64;
     let a = hb * (s - db) + dy * (db1 + db - 2.0 * s);
     let bq = hb * db - dy * (db1 + db - 2.0 * s);
     let c = -s * dy;
     let disc = (bq * bq - 4.0 * a * c).max(0.0);
     let xi = (2.0 * c / (-bq - disc.sqrt())).clamp(0.0, 1.0);
-    (xi * wb) as f32 + kn.x[b]
+    (xi * wb) as f32 + xb
 }
 
 #[cfg(test)]
