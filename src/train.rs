@@ -838,6 +838,11 @@ impl Staged {
         self.learned.state.finished || self.learned.state.epoch > self.learned.settings.epochs
     }
 
+    /// Trainable parameters of the flow.
+    pub(crate) fn parameters(&self) -> usize {
+        self.learned.model.flow.param_count()
+    }
+
     /// Why a finished flow stopped.
     pub(crate) fn why_finished(&self) -> String {
         let (st, s) = (&self.learned.state, &self.learned.settings);

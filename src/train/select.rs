@@ -152,14 +152,44 @@ fn flow_configs(opts: &FitOptions, table: &Settings, dims: usize) -> Vec<FlowCon
     configs
 }
 
-/// The default search budget, as a multiple of the projected time of one
-/// flow at the settings table (its first stage's seconds per epoch times
-/// its epochs), at least a minute: the race of nine configurations costs
-/// about seven such flows when no run stops early.
-const DEFAULT_BUDGET_FACTOR: f64 = 10.0;
+/// The default search budget: this many times the projected time of the
+/// whole race when no run stops early, at least a minute. The projection
+/// takes the settings table's flow's seconds per epoch from its first stage
+/// and scales it by every flow's relative cost per epoch
+/// ([`relative_cost`]) and by the epochs successive halving gives each
+/// round; the slack covers validation passes and a loaded machine.
+const BUDGET_SLACK: f64 = 1.5;
 
-fn default_budget(first_stage_seconds: f64, first_stage_epochs: usize, epochs: usize) -> f64 {
-    (DEFAULT_BUDGET_FACTOR * first_stage_seconds / first_stage_epochs.max(1) as f64 * epochs as f64).max(60.0)
+/// Time per update of a spline coupling against an affine one with the
+/// same conditioner: 8-13x (D = 384 and 64; DEVELOPERS.md).
+const SPLINE_COST: f64 = 10.0;
+
+/// A flow's time per epoch relative to others: its parameter count, times
+/// [`SPLINE_COST`] for spline couplings.
+fn relative_cost(r: &Racer) -> f64 {
+    let spline = r.flow.settings().coupling != crate::flow::Coupling::Affine;
+    r.flow.parameters() as f64 * if spline { SPLINE_COST } else { 1.0 }
+}
+
+/// The default budget once the table's flow (`table`) has run its first
+/// stage: its seconds per epoch times the race's projected epochs, each
+/// weighted by its flow's relative cost, the better half of the flows
+/// assumed to cost as much as all of them on average.
+fn default_budget(table: &Racer, racers: &[Racer], stages: &[usize; ROUNDS]) -> f64 {
+    let per_epoch = table.flow.seconds() / table.flow.epochs().max(1) as f64;
+    let mean_cost = racers.iter().map(relative_cost).sum::<f64>() / racers.len() as f64 / relative_cost(table);
+    (BUDGET_SLACK * per_epoch * mean_cost * race_epochs(racers.len(), stages) as f64).max(60.0)
+}
+
+/// Epochs that successive halving trains over all `n` flows when none stops
+/// early: every flow to the first stage, the better half on to the second, ...
+fn race_epochs(n: usize, stages: &[usize; ROUNDS]) -> usize {
+    let (mut alive, mut before, mut epochs) = (n, 0, 0);
+    for &until in stages {
+        epochs += alive * (until - before);
+        (alive, before) = (alive.div_ceil(2), until);
+    }
+    epochs
 }
 
 /// A flow of the search and how far it got.
@@ -342,13 +372,14 @@ fn race_flows(run: &Run, opts: &FitOptions, best: &Model, saved: Option<&SavedSe
                 return Err(e);
             }
             r.stages.push(r.flow.best_validation_nll());
+            let r = &racers[i];
             if at.budget.is_none() {
                 // The first stage of the table's flow sets the default budget.
-                let b = default_budget(r.flow.seconds(), r.flow.epochs(), epochs);
+                let b = default_budget(r, &racers, &stages);
                 at.budget = Some(b);
                 if !opts.quiet {
                     note(format!(
-                        "search budget {} ({DEFAULT_BUDGET_FACTOR} x the projected time of one flow; --budget sets it)",
+                        "search budget {} ({BUDGET_SLACK} x the race's projected time; --budget sets it)",
                         minutes(b)
                     ));
                 }
@@ -588,6 +619,13 @@ fn interrupted(run: &Run, best: Option<Model>, msg: String) -> Error {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Nine flows to 50 epochs, five on to 100, three on to 200.
+    #[test]
+    fn race_epochs_follow_the_halving() {
+        assert_eq!(race_epochs(9, &[50, 100, 200]), 9 * 50 + 5 * 50 + 3 * 100);
+        assert_eq!(race_epochs(1, &[50, 100, 200]), 200);
+    }
 
     #[test]
     fn spline_couplings_race_when_the_table_already_models_every_dim() {
