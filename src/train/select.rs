@@ -403,7 +403,10 @@ fn race_flows(run: &Run, opts: &FitOptions, best: &Model, saved: Option<&SavedSe
         halve(&mut racers, &mut at);
     }
     for r in &mut racers {
-        let why = r.flow.why_finished();
+        let why = match r.flow.finished() {
+            true => r.flow.why_finished(),
+            false => format!("budget spent at epoch {}", r.flow.epochs()),
+        };
         r.stopped.get_or_insert(why);
     }
     Ok((racers, dims))
