@@ -26,12 +26,12 @@ pub struct TrainingLog {
     pub candidates: Vec<Candidate>,
 }
 
-/// A line of the log: an epoch, or a candidate's result.
-#[derive(serde::Serialize, serde::Deserialize)]
+/// A line of the log as written: an epoch, or a candidate's result.
+#[derive(serde::Serialize)]
 #[serde(untagged)]
 enum LogLine<'a> {
-    Result { candidate_result: std::borrow::Cow<'a, Candidate> },
-    Epoch(std::borrow::Cow<'a, LogEntry>),
+    Result { candidate_result: &'a Candidate },
+    Epoch(&'a LogEntry),
 }
 
 /// Read a JSON-lines training log written by `fit --log`.
@@ -39,13 +39,16 @@ pub fn read_log(path: &Path) -> Result<TrainingLog> {
     let text = crate::data::read_text(path)?;
     let mut log = TrainingLog::default();
     for (i, l) in text.lines().enumerate().filter(|(_, l)| !l.trim().is_empty()) {
-        let line: LogLine = serde_json::from_str(l).map_err(|e| {
+        let bad = |e: serde_json::Error| {
             let e = crate::data::printable(&e.to_string(), 300);
             Error::Invalid(format!("{}: line {}: not a training log entry ({e})", path.display(), i + 1))
-        })?;
-        match line {
-            LogLine::Epoch(e) => log.epochs.push(e.into_owned()),
-            LogLine::Result { candidate_result } => log.candidates.push(candidate_result.into_owned()),
+        };
+        // Parsed by its key rather than as an untagged enum, so that a wrong
+        // field is named instead of "did not match any variant".
+        let mut value: serde_json::Value = serde_json::from_str(l).map_err(bad)?;
+        match value.as_object_mut().and_then(|o| o.remove("candidate_result")) {
+            Some(c) => log.candidates.push(serde_json::from_value(c).map_err(bad)?),
+            None => log.epochs.push(serde_json::from_value(value).map_err(bad)?),
         }
     }
     Ok(log)
@@ -54,10 +57,8 @@ pub fn read_log(path: &Path) -> Result<TrainingLog> {
 /// Write the run's log (atomically): its epochs, then the candidates' results.
 pub(crate) fn write_log(run: &Run, epochs: &[LogEntry], candidates: &[Candidate]) -> Result<()> {
     let Some(path) = run.log else { return Ok(()) };
-    let lines = epochs
-        .iter()
-        .map(|e| LogLine::Epoch(std::borrow::Cow::Borrowed(e)))
-        .chain(candidates.iter().map(|c| LogLine::Result { candidate_result: std::borrow::Cow::Borrowed(c) }));
+    let lines =
+        epochs.iter().map(LogLine::Epoch).chain(candidates.iter().map(|c| LogLine::Result { candidate_result: c }));
     crate::output::write_atomic(path, |w| {
         for line in lines {
             let line = serde_json::to_string(&line).map_err(|e| Error::Invalid(e.to_string()))?;
