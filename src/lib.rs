@@ -20,6 +20,7 @@ pub mod check;
 pub mod columnar;
 pub mod data;
 pub mod demo;
+pub mod density;
 pub mod error;
 pub mod evaluate;
 pub mod flow;

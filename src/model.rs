@@ -8,12 +8,11 @@
 //!   log p(x) = -NLL_flow(u[..k]) - sum_{i>=k} (u_i^2/2 + ln(2 pi)/2) + log-det
 
 use crate::data::{Dataset, Matrix};
+use crate::density::{Density, Evaluate, Parts};
 use crate::error::{Error, Result};
-use crate::flow::{self, Flow, FlowSpec, Workers, HALF_LN_2PI};
-use crate::mixture::Mixture;
+use crate::flow::{Flow, FlowSpec, Workers, HALF_LN_2PI};
 use crate::preprocess::{Method, Preprocessor};
 use rand::SeedableRng;
-use rand_distr::{Distribution, StandardNormal};
 use std::path::Path;
 
 /// Newest version of the model file layout; bumped on any incompatible
@@ -169,28 +168,7 @@ impl Meta {
             )
             .to_lowercase(),
         );
-        line(
-            "flow",
-            format!(
-                "{} {} coupling layers over the leading {} of {} whitened dims; conditioner {} x {} (soft clamp {}); {}",
-                self.flow.layers,
-                match self.flow.coupling {
-                    crate::flow::Coupling::Affine => "affine".to_string(),
-                    crate::flow::Coupling::Spline { bins, tail_bound } => {
-                        format!("rational-quadratic spline ({bins} bins on [-{tail_bound}, {tail_bound}])")
-                    }
-                },
-                self.flow_dims,
-                p.whitened_dims,
-                self.flow.depth,
-                self.flow.hidden,
-                self.flow.clamp,
-                match self.flow.mixing {
-                    crate::flow::Mixing::Permutation => "permutations between layers",
-                    crate::flow::Mixing::Lu => "permutations and learned LU mixing between layers",
-                }
-            ),
-        );
+        line("flow", crate::density::flow::describe_flow(&self.flow, p.whitened_dims));
         if let Some(m) = &self.mixture {
             line(
                 "mixture",
@@ -320,12 +298,10 @@ pub struct PreprocessingMeta {
 pub struct Model {
     pub meta: Meta,
     pub pre: Preprocessor,
-    pub flow: Flow,
+    /// The density over the whitened vectors.
+    pub density: Box<dyn Density>,
     /// The background flow of the likelihood-ratio score, if fitted.
     pub background: Option<Flow>,
-    /// The density over the whitened vectors when it is a Gaussian mixture
-    /// (the flow is then the identity).
-    pub mixture: Option<Mixture>,
     pub refs: ScoringRefs,
 }
 
@@ -339,25 +315,7 @@ pub struct ScoringRefs {
     pub validation_nll: Vec<f64>,
 }
 
-/// What kind of density a model is.
-#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, serde::Serialize, serde::Deserialize, clap::ValueEnum)]
-#[serde(rename_all = "kebab-case")]
-pub enum Kind {
-    /// Whitening followed by coupling layers (optionally class-conditional).
-    #[default]
-    Flow,
-    /// One full-covariance Gaussian (Ledoit-Wolf shrinkage when rows are few).
-    Gaussian,
-    /// Class means with one shared covariance.
-    ClassGaussian,
-    /// Gaussian mixture with full covariances, fitted by EM; components and ridge chosen on validation rows.
-    Mixture,
-}
-
-/// The name of a kind as the command line spells it.
-pub fn kind_name(kind: Kind) -> String {
-    serde_json::to_value(kind).ok().and_then(|v| v.as_str().map(str::to_string)).unwrap_or_default()
-}
+pub use crate::density::{kind_name, Kind};
 
 /// Metadata of the reference values in [`ScoringRefs`].
 #[derive(Clone, Debug, Default, serde::Serialize, serde::Deserialize)]
@@ -410,10 +368,12 @@ pub struct Evaluation {
 /// What [`Model::evaluator`] builds once and reuses for every chunk.
 pub struct Evaluator<'m> {
     model: &'m Model,
-    /// Rows whitened and pushed through the flow at a time.
+    /// Rows whitened and evaluated at a time.
     cap: usize,
-    workers: Workers,
+    density: Box<dyn Evaluate + 'm>,
     bg_workers: Option<Workers>,
+    /// Threads for the scoring work when the density has none of its own.
+    pool: Option<rayon::ThreadPool>,
     whitened: Vec<f32>,
     rows: Vec<f32>,
 }
@@ -429,21 +389,21 @@ impl Evaluator<'_> {
             let mut residual = vec![0.0f64; n];
             m.pre.transform(&self.rows, n, &mut self.whitened, Some(&mut residual));
             out.subspace_residual.extend(residual);
-            m.evaluate_whitened(
-                &self.whitened[..n * m.dim()],
-                n,
-                &mut self.workers,
-                self.bg_workers.as_mut(),
-                &mut out,
-            );
+            let u = &self.whitened[..n * m.dim()];
+            let mut parts = Parts::default();
+            self.density.evaluate(u, n, &mut parts);
+            m.add_input_space(parts, &mut out);
+            if let (Some(bg), Some(workers)) = (&m.background, self.bg_workers.as_mut()) {
+                m.background_log_likelihood(bg, workers, u, n, &mut out.background_log_likelihood);
+            }
             out.dead_deviation.extend(self.rows.chunks(x.cols).map(|r| m.pre.dead_deviation(r)));
         }
         out
     }
 
-    /// The flow workers' thread pool (`None` with one thread).
+    /// Worker threads for the scoring work (`None` with one thread).
     pub fn pool(&self) -> Option<&rayon::ThreadPool> {
-        self.workers.pool()
+        self.density.pool().or(self.pool.as_ref())
     }
 }
 
@@ -478,14 +438,17 @@ impl Model {
         self.evaluator(threads, idx.len()).evaluate_rows(x, idx)
     }
 
-    /// Flow workers and scratch for evaluating up to `max_rows` rows per
+    /// Workspaces and threads for evaluating up to `max_rows` rows per
     /// call, to keep across calls (`score` makes one for the whole file).
     pub fn evaluator(&self, threads: usize, max_rows: usize) -> Evaluator<'_> {
         let cap = (CHUNK_ROWS * threads.max(1)).min(max_rows).max(1);
+        let density = self.density.evaluator(threads, cap);
+        let own_pool = threads > 1 && density.pool().is_none();
         Evaluator {
             model: self,
             cap,
-            workers: Workers::forward_only(&self.flow, threads, cap),
+            pool: own_pool.then(|| rayon::ThreadPoolBuilder::new().num_threads(threads).build().ok()).flatten(),
+            density,
             bg_workers: self.background.as_ref().map(|bg| Workers::forward_only(bg, threads, cap)),
             whitened: vec![0.0f32; cap * self.dim()],
             rows: Vec::new(),
@@ -497,7 +460,8 @@ impl Model {
     pub fn fingerprint(&self) -> String {
         let mut h = 0x7D3A_u64;
         let mut eat = |bits: u64| h = crate::data::mix64(h ^ bits);
-        for v in self.flow.params.iter().chain(self.background.iter().flat_map(|b| b.params.iter())) {
+        self.density.fingerprint(&mut eat);
+        for v in self.background.iter().flat_map(|b| b.params.iter()) {
             eat(v.to_bits() as u64);
         }
         for v in self.pre.mean.iter().chain(&self.pre.scale) {
@@ -506,137 +470,56 @@ impl Model {
         for v in self.pre.components.iter().flatten() {
             eat(v.to_bits() as u64);
         }
-        if let Some(m) = &self.mixture {
-            for v in m.log_weights.iter().chain(&m.means).chain(&m.precision_cholesky) {
-                eat(v.to_bits());
-            }
-        }
         format!("{h:016x}")
     }
 
     /// Number of classes of a class-conditional model (0 otherwise).
     pub fn classes(&self) -> usize {
-        self.flow.spec.classes
+        self.density.classes()
     }
 
-    /// log of each class's prior (its share of the training labels).
-    fn log_priors(&self) -> Vec<f64> {
-        // In f64: row counts come from the file and their sum may not fit.
-        let total: f64 = self.meta.classes.iter().map(|c| c.rows as f64).sum();
-        self.meta.classes.iter().map(|c| (c.rows as f64 / total).ln()).collect()
+    /// The flow, for a flow model.
+    pub fn flow(&self) -> Option<&Flow> {
+        self.density.flow()
     }
 
-    /// Evaluate whitened rows (`rows x dim`), appending to `out`.
-    fn evaluate_whitened(
-        &self,
-        u: &[f32],
-        rows: usize,
-        workers: &mut Workers,
-        bg_workers: Option<&mut Workers>,
-        out: &mut Evaluation,
-    ) {
-        if let Some(mixture) = &self.mixture {
-            return self.evaluate_mixture(mixture, u, rows, out);
-        }
+    /// The density's parts of whitened rows, taken to input space: the
+    /// whitening's log-determinant joins every log-density (change of
+    /// variables).
+    fn add_input_space(&self, parts: Parts, out: &mut Evaluation) {
+        let pre = self.pre.log_det();
+        out.log_likelihood.extend(parts.log_density.iter().map(|v| v + pre));
+        out.base_log_density.extend(parts.base_log_density);
+        out.log_det.extend(parts.log_det.iter().map(|v| v + pre));
+        out.latent_norm.extend(parts.latent_norm);
+        out.mahalanobis_sq.extend(parts.mahalanobis_sq);
+        out.class_log_likelihood.extend(parts.class_log_density.iter().map(|v| v + pre));
+        out.predicted_class.extend(parts.predicted_class);
+        out.class_probability.extend(parts.class_probability);
+        out.component.extend(parts.component);
+        out.component_probability.extend(parts.component_probability);
+    }
+
+    /// log p_background(x) of whitened rows `u`: the background flow on the
+    /// leading dimensions, a standard normal on the rest.
+    fn background_log_likelihood(&self, bg: &Flow, workers: &mut Workers, u: &[f32], rows: usize, out: &mut Vec<f64>) {
         let (d, k) = (self.dim(), self.meta.flow_dims);
-        // No copy when the flow models every dimension.
-        let head = if k == d { std::borrow::Cow::Borrowed(u) } else { leading_columns(u, rows, d, k).into() };
-        let mut z = vec![0.0f32; rows * k];
-        let mut flow_logdet = vec![0.0f64; rows];
-        workers.latent(&self.flow, &head, rows, &mut z, &mut flow_logdet);
+        let head = leading_columns(u, rows, d, k);
+        let mut bz = vec![0.0f32; rows * k];
+        let mut bg_logdet = vec![0.0f64; rows];
+        workers.latent(bg, &head, rows, &mut bz, &mut bg_logdet);
         let pre_log_det = self.pre.log_det();
-        let priors = self.log_priors();
-        let mut per_class = vec![0.0f64; self.classes()];
-        if let (Some(bg), Some(bg_workers)) = (&self.background, bg_workers) {
-            let mut bz = vec![0.0f32; rows * k];
-            let mut bg_logdet = vec![0.0f64; rows];
-            bg_workers.latent(bg, &head, rows, &mut bz, &mut bg_logdet);
-            for r in 0..rows {
-                let sq: f64 =
-                    bz[r * k..(r + 1) * k].iter().chain(&u[r * d + k..(r + 1) * d]).map(|&v| (v as f64).powi(2)).sum();
-                out.background_log_likelihood.push(-0.5 * sq - d as f64 * HALF_LN_2PI + bg_logdet[r] + pre_log_det);
-            }
-        }
         for r in 0..rows {
-            let zr = &z[r * k..(r + 1) * k];
-            let tail_sq: f64 = u[r * d + k..(r + 1) * d].iter().map(|&v| (v as f64).powi(2)).sum();
-            let head_sq: f64 = zr.iter().map(|&v| (v as f64).powi(2)).sum();
-            let norm_const = d as f64 * HALF_LN_2PI;
-            let log_det = flow_logdet[r] + pre_log_det;
-            let (base, maha) = if self.classes() == 0 {
-                (-0.5 * (head_sq + tail_sq) - norm_const, head_sq + tail_sq)
-            } else {
-                for (c, slot) in per_class.iter_mut().enumerate() {
-                    let sq: f64 = zr.iter().zip(self.flow.class_mean(c)).map(|(&v, &m)| ((v - m) as f64).powi(2)).sum();
-                    *slot = sq + tail_sq;
-                }
-                let maha = per_class.iter().cloned().fold(f64::INFINITY, f64::min);
-                // log N(z; mu_c, I) + log pi_c, then the mixture and the posterior.
-                for (slot, p) in per_class.iter_mut().zip(&priors) {
-                    *slot = -0.5 * *slot - norm_const + p;
-                }
-                let mix = log_sum_exp(&per_class);
-                let (best, top) =
-                    per_class
-                        .iter()
-                        .enumerate()
-                        .fold((0, f64::NEG_INFINITY), |b, (c, &v)| if v > b.1 { (c, v) } else { b });
-                out.predicted_class.push(best);
-                out.class_probability.push((top - mix).exp());
-                out.class_log_likelihood.extend(per_class.iter().zip(&priors).map(|(v, p)| v - p + log_det));
-                (mix, maha)
-            };
-            out.log_likelihood.push(base + log_det);
-            out.base_log_density.push(base);
-            out.log_det.push(log_det);
-            out.latent_norm.push((head_sq + tail_sq).sqrt());
-            out.mahalanobis_sq.push(maha);
+            let sq: f64 =
+                bz[r * k..(r + 1) * k].iter().chain(&u[r * d + k..(r + 1) * d]).map(|&v| (v as f64).powi(2)).sum();
+            out.push(-0.5 * sq - d as f64 * HALF_LN_2PI + bg_logdet[r] + pre_log_det);
         }
-    }
-
-    /// The mixture's statistics of whitened rows: the latent of a row is its
-    /// whitened offset from the most responsible component.
-    fn evaluate_mixture(&self, mixture: &Mixture, u: &[f32], rows: usize, out: &mut Evaluation) {
-        let u64s: Vec<f64> = u[..rows * self.dim()].iter().map(|&v| v as f64).collect();
-        let e = mixture.evaluate(&u64s, rows);
-        let log_det = self.pre.log_det();
-        for r in 0..rows {
-            out.log_likelihood.push(e.log_density[r] + log_det);
-            out.base_log_density.push(e.log_density[r]);
-            out.log_det.push(log_det);
-            out.latent_norm.push(e.mahalanobis_sq[r].sqrt());
-            out.mahalanobis_sq.push(e.mahalanobis_sq[r]);
-        }
-        out.component.extend(e.component);
-        out.component_probability.extend(e.probability);
     }
 
     /// Draw `n` vectors from the model (input space).
     pub fn sample(&self, n: usize, seed: u64) -> Matrix {
-        let (d, k) = (self.dim(), self.meta.flow_dims);
         let mut rng = rand::rngs::StdRng::seed_from_u64(seed);
-        if let Some(mixture) = &self.mixture {
-            let u: Vec<f32> = mixture.sample(n, &mut rng).iter().map(|&v| v as f32).collect();
-            return Matrix::new(n, self.meta.input_dim, self.pre.inverse(&u, n));
-        }
-        let z: Vec<f32> = (0..n * d).map(|_| StandardNormal.sample(&mut rng)).collect();
-        let mut head_z = leading_columns(&z, n, d, k);
-        if self.classes() > 0 {
-            // A class from the priors, then the base around its mean.
-            let priors: Vec<f64> = self.log_priors().iter().map(|p| p.exp()).collect();
-            let pick = rand_distr::weighted::WeightedIndex::new(&priors).expect("class priors are positive");
-            for row in head_z.chunks_mut(k) {
-                let c = pick.sample(&mut rng);
-                for (v, m) in row.iter_mut().zip(self.flow.class_mean(c)) {
-                    *v += m;
-                }
-            }
-        }
-        let head = flow::inverse(&self.flow, &head_z, n);
-        let mut u = z;
-        for r in 0..n {
-            u[r * d..r * d + k].copy_from_slice(&head[r * k..(r + 1) * k]);
-        }
+        let u = self.density.sample(n, &mut rng);
         Matrix::new(n, self.meta.input_dim, self.pre.inverse(&u, n))
     }
 }

@@ -196,7 +196,7 @@ pub fn available_columns(model: &Model) -> Vec<String> {
         cols.push("class_probability".into());
         cols.extend(model.meta.classes.iter().map(|c| format!("class_log_likelihood_{}", c.label)));
     }
-    if model.mixture.is_some() {
+    if model.density.components() > 0 {
         cols.push("component".into());
         cols.push("component_probability".into());
     }

@@ -6,6 +6,7 @@
 
 use crate::check;
 use crate::data::{mix64, Dataset};
+use crate::density::{Density, FlowDensity, Gaussian};
 use crate::error::{Error, Result};
 use crate::flow::{Coupling, Flow, FlowSpec, Mixing, Workers, HALF_LN_2PI};
 use crate::model::{
@@ -275,7 +276,7 @@ fn fit_one(run: &Run, opts: &FitOptions) -> Result<Model> {
         }
     }
     train(run, opts, &mut learned, started, None)?;
-    learned.model.flow.params = learned.best_params.clone();
+    put_params(&mut learned.model, &learned.best_params);
     if learned.settings.kind == Kind::Mixture {
         let rows = Rows::new(run, &learned.settings, &learned.model);
         fit_mixture::fit_mixture(&rows, &mut learned, opts.components, opts.quiet)?;
@@ -327,7 +328,7 @@ impl Staged {
 
     /// Trainable parameters of the flow.
     pub(crate) fn parameters(&self) -> usize {
-        self.learned.model.flow.param_count()
+        params(&self.learned.model).len()
     }
 
     /// Why a finished flow stopped.
@@ -362,21 +363,21 @@ impl Staged {
     /// The tensors a search checkpoint keeps of this flow.
     fn tensors(&self) -> [&[f32]; 4] {
         let l = &self.learned;
-        [&l.model.flow.params, &l.best_params, &l.adam.m, &l.adam.v]
+        [params(&l.model), &l.best_params, &l.adam.m, &l.adam.v]
     }
 
     /// Put back what [`Staged::tensors`] and the state saved.
     fn restore(&mut self, state: TrainState, [params, best, m, v]: [Vec<f32>; 4]) {
         let l = &mut self.learned;
         l.adam = Adam { m, v, t: state.adam_t };
-        l.model.flow.params = params;
+        put_params(&mut l.model, &params);
         l.best_params = best;
         l.state = state;
     }
 
     /// The model with its best weights.
     pub(crate) fn into_model(mut self, run: &Run) -> Result<Model> {
-        self.learned.model.flow.params = self.learned.best_params.clone();
+        put_params(&mut self.learned.model, &self.learned.best_params);
         finish(run, &mut self.learned)?;
         Ok(self.learned.model)
     }
@@ -472,7 +473,8 @@ fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
         flow.params[at..at + flow.spec.dim].copy_from_slice(&u);
     }
     let meta = skeleton_meta(x.cols, &pre, &flow, &settings, classes)?;
-    let model = Model { meta, pre, flow, background: None, mixture: None, refs: ScoringRefs::default() };
+    let density = untrained_density(kind, flow, pre.dim(), &meta.classes);
+    let model = Model { meta, pre, density, background: None, refs: ScoringRefs::default() };
     new_learned(run, model, settings, kind != Kind::Flow)
 }
 
@@ -506,9 +508,9 @@ fn shrinkage_for<'a>(
 /// i.e. the whitened Gaussian, or the class means as they are) is candidate
 /// zero; then ActNorm is initialised from the data.
 fn new_learned(run: &Run, model: Model, settings: Settings, finished: bool) -> Result<Learned> {
-    let n = model.flow.param_count();
+    let n = params(&model).len();
     let mut learned = Learned {
-        best_params: model.flow.params.clone(),
+        best_params: params(&model).to_vec(),
         adam: Adam::new(n),
         state: TrainState {
             epoch: 1,
@@ -543,9 +545,10 @@ fn new_learned(run: &Run, model: Model, settings: Settings, finished: bool) -> R
         let init_rows = &rows.train[..rows.train.len().min(4096)];
         let mut batch = BatchBuffers::default();
         rows.prepare_batch(&learned.model, init_rows, &mut batch);
-        learned.model.flow.init_actnorm(&batch.head, init_rows.len());
-        if learned.model.classes() > 0 {
-            init_class_means(&mut learned.model.flow, &batch.head, &batch.classes);
+        let flow = trained_flow(&mut learned.model);
+        flow.init_actnorm(&batch.head, init_rows.len());
+        if flow.spec.classes > 0 {
+            init_class_means(flow, &batch.head, &batch.classes);
         }
     }
     Ok(learned)
@@ -574,6 +577,44 @@ fn init_class_means(flow: &mut Flow, head: &[f32], classes: &[u32]) {
     }
 }
 
+/// The density a kind starts from: the flow as built; for the Gaussian
+/// kinds the standard normal around the flow's class means (the whitening
+/// holds the covariance); for the mixture the standard normal, until EM
+/// replaces it.
+fn untrained_density(kind: Kind, flow: Flow, dim: usize, classes: &[ClassCount]) -> Box<dyn Density> {
+    let log_priors = if flow.spec.classes > 0 {
+        crate::density::log_priors(&classes.iter().map(|c| c.rows).collect::<Vec<_>>())
+    } else {
+        Vec::new()
+    };
+    match kind {
+        Kind::Flow => Box::new(FlowDensity::new(flow, dim, log_priors)),
+        _ => Box::new(Gaussian {
+            dim,
+            mean_dims: flow.spec.dim,
+            class_means: flow.params[flow.class_means..].to_vec(),
+            log_priors,
+        }),
+    }
+}
+
+/// The parameters of the model's flow (none for the other kinds).
+fn params(model: &Model) -> &[f32] {
+    model.flow().map_or(&[], |f| &f.params)
+}
+
+/// Set the parameters of the model's flow (nothing to set for the other kinds).
+fn put_params(model: &mut Model, params: &[f32]) {
+    if let Some(f) = model.density.flow_mut() {
+        f.params.clone_from_slice(params);
+    }
+}
+
+/// The flow that training steps: only a flow's training runs epochs.
+fn trained_flow(model: &mut Model) -> &mut Flow {
+    model.density.flow_mut().expect("only a flow trains by epochs")
+}
+
 /// Train the background flow of the likelihood-ratio score (Ren et al.
 /// 2019, adapted to embeddings): a smaller flow on the same whitened
 /// training vectors perturbed with Gaussian noise of scale `sigma`. It is
@@ -588,9 +629,9 @@ fn train_background(run: &Run, opts: &FitOptions, main: &Learned, sigma: f64, st
         ..s.clone()
     };
     let spec =
-        FlowSpec { layers: settings.layers, hidden: settings.hidden, classes: 0, ..main.model.flow.spec.clone() };
+        FlowSpec { layers: settings.layers, hidden: settings.hidden, classes: 0, ..main.model.meta.flow.clone() };
     let mut model = main.model.clone();
-    model.flow = Flow::new(spec, derive(s.seed, 7, 0));
+    model.density = Box::new(FlowDensity::new(Flow::new(spec, derive(s.seed, 7, 0)), model.dim(), Vec::new()));
     model.meta.classes.clear();
     let quiet_run = Run { checkpoint: None, log: None, output: None, resume: None, labels: None, ..*run };
     let mut bg = new_learned(&quiet_run, model, settings, false)?;
@@ -598,8 +639,8 @@ fn train_background(run: &Run, opts: &FitOptions, main: &Learned, sigma: f64, st
         note(format!("training the background flow (noise {sigma})"));
     }
     train(&quiet_run, opts, &mut bg, started, None)?;
-    bg.model.flow.params = bg.best_params;
-    Ok(bg.model.flow)
+    put_params(&mut bg.model, &bg.best_params);
+    Ok(trained_flow(&mut bg.model).clone())
 }
 
 /// Class of every data row, as an index into `classes` (sorted labels).
@@ -727,6 +768,10 @@ pub(crate) struct Pause {
 /// Train until the run finishes (last epoch or early stopping) or, with a
 /// `pause`, until the stage ends.
 fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant, pause: Option<Pause>) -> Result<()> {
+    if l.model.flow().is_none() {
+        // The other kinds were fitted when they were built.
+        return Ok(());
+    }
     let until = pause.map_or(usize::MAX, |p| p.epoch);
     let deadline = pause.and_then(|p| p.deadline);
     let s = l.settings.clone();
@@ -735,24 +780,24 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant, pause:
     let n_train = rows.train.len();
     let steps_per_epoch = n_train.div_ceil(s.batch_size);
     let total_steps = steps_per_epoch * s.epochs;
-    let mut workers = Workers::new(&l.model.flow, s.threads, s.batch_size);
-    let mut grad = vec![0.0f32; l.model.flow.param_count()];
+    let mut workers = Workers::new(trained_flow(&mut l.model), s.threads, s.batch_size);
+    let mut grad = vec![0.0f32; params(&l.model).len()];
     let mut batch = BatchBuffers::default();
-    let decay = decay_mask(&l.model.flow);
+    let decay = decay_mask(trained_flow(&mut l.model));
     let position = |st: &TrainState| (st.epoch - 1) * steps_per_epoch + st.batch;
     let progress = Progress::new(total_steps, position(&l.state), opts.quiet);
     let seconds_before = l.state.seconds;
     let mut last_checkpoint = Instant::now();
     let mut injected = false;
     // The last good state, for rolling back after a divergence.
-    let mut snapshot = (l.model.flow.params.clone(), l.adam.clone(), l.state.clone());
+    let mut snapshot = (params(&l.model).to_vec(), l.adam.clone(), l.state.clone());
     let mut epoch_started = Instant::now();
     let mut epoch_samples = 0usize;
     'epochs: while !l.state.finished && l.state.epoch <= s.epochs.min(until) {
         let mut order = rows.train.clone();
         order.shuffle(&mut StdRng::seed_from_u64(derive(s.seed, 2, l.state.epoch as u64)));
         if l.state.batch == 0 {
-            snapshot = (l.model.flow.params.clone(), l.adam.clone(), l.state.clone());
+            snapshot = (params(&l.model).to_vec(), l.adam.clone(), l.state.clone());
         }
         while l.state.batch < steps_per_epoch {
             let chunk = &order[l.state.batch * s.batch_size..((l.state.batch + 1) * s.batch_size).min(n_train)];
@@ -766,7 +811,8 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant, pause:
             }
             let dropout = (s.dropout > 0.0).then(|| (s.dropout as f32, derive(s.seed, 4, l.state.step as u64)));
             let classes = rows.class_of.is_some().then_some(&batch.classes[..]);
-            let nll = workers.nll_and_grad(&l.model.flow, &batch.head, classes, chunk.len(), dropout, &mut grad);
+            let nll =
+                workers.nll_and_grad(trained_flow(&mut l.model), &batch.head, classes, chunk.len(), dropout, &mut grad);
             if opts.inject_nan_at_step == Some(l.state.step) && !injected {
                 injected = true;
                 grad[0] = f32::NAN;
@@ -778,7 +824,7 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant, pause:
                     stop_early(run, l, Halt::Diverged(l.state.epoch))?;
                 }
                 let (retries, lr_scale) = (l.state.retries + 1, l.state.lr_scale * 0.5);
-                l.model.flow.params.clone_from(&snapshot.0);
+                put_params(&mut l.model, &snapshot.0);
                 l.adam = snapshot.1.clone();
                 l.state = snapshot.2.clone();
                 l.state.retries = retries;
@@ -793,7 +839,7 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant, pause:
             }
             clip_norm(&mut grad, grad_norm, s.grad_clip);
             let lr = learning_rate(s.lr, l.state.step, total_steps, s.warmup_fraction) * l.state.lr_scale;
-            l.adam.step_on(&workers, &mut l.model.flow.params, &grad, lr, s.weight_decay, &decay);
+            l.adam.step_on(&workers, &mut trained_flow(&mut l.model).params, &grad, lr, s.weight_decay, &decay);
             l.state.adam_t = l.adam.t;
             l.state.train_sum += nll * chunk.len() as f64;
             l.state.grad_norm_sum += grad_norm;
@@ -819,7 +865,7 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant, pause:
             l.state.best_val = val_nll;
             l.state.best_epoch = l.state.epoch;
             l.state.since_best = 0;
-            l.best_params.clone_from(&l.model.flow.params);
+            l.best_params.clone_from(&trained_flow(&mut l.model).params);
         } else {
             l.state.since_best += 1;
         }
@@ -880,7 +926,7 @@ fn stop_early(run: &Run, l: &mut Learned, why: Halt) -> Result<()> {
         best_params: l.best_params.clone(),
         adam: Adam::new(0),
     };
-    best.model.flow.params = l.best_params.clone();
+    put_params(&mut best.model, &l.best_params);
     finish(run, &mut best)?;
     if let Some(out) = run.output {
         best.model.save(out)?;

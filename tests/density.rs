@@ -125,8 +125,9 @@ fn lu_mixed_flow_is_a_density_and_its_file_reloads() {
     let opts = FitOptions { epochs: Some(40), mixing: Some(Mixing::Lu), ..quiet() };
     let model = fit(&Dataset::in_memory(train.clone()), None, &opts).unwrap();
     assert_eq!(model.meta.format_version, 2);
-    let mix = model.flow.slots[0].mix.expect("an LU block");
-    assert!(model.flow.params[mix..mix + 4].iter().any(|&v| v != 0.0), "the LU block was trained");
+    let flow = model.flow().expect("a flow");
+    let mix = flow.slots[0].mix.expect("an LU block");
+    assert!(flow.params[mix..mix + 4].iter().any(|&v| v != 0.0), "the LU block was trained");
 
     let (lo, hi, steps) = ([-5.5f32, -3.0], [5.5f32, 32.0], 300);
     let h = [(hi[0] - lo[0]) / steps as f32, (hi[1] - lo[1]) / steps as f32];

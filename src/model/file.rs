@@ -2,10 +2,13 @@
 //! tensor, and every metadata field checked against the tensors and sane
 //! bounds before anything is allocated from it.
 
-use super::{format_version_for, Meta, Model, ScoringRefs, FORMAT_VERSION, META_KEY};
+use super::{Kind, Meta, Model, ScoringRefs, FORMAT_VERSION, META_KEY};
+use crate::density::flow::{read_flow, write_flow};
+use crate::density::{
+    le_bytes_f32, le_bytes_f64, le_bytes_i64, Density, FlowDensity, Gaussian, MixtureDensity, TensorSource,
+};
 use crate::error::{Error, Result};
-use crate::flow::{Flow, FlowSpec};
-use crate::mixture::Mixture;
+use crate::flow::FlowSpec;
 use crate::preprocess::{Method, Preprocessor};
 use safetensors::{Dtype, SafeTensors};
 use std::collections::HashMap;
@@ -43,15 +46,9 @@ impl Model {
         if !pre.dead.is_empty() {
             put("preprocess.dead_values", Dtype::F64, vec![pre.dead.len()], le_bytes_f64(&pre.dead_value));
         }
-        flow_tensors(&self.flow, "flow", &mut put);
+        self.density.write(&mut put);
         if let Some(bg) = &self.background {
-            flow_tensors(bg, "background", &mut put);
-        }
-        if let Some(m) = &self.mixture {
-            let (c, d) = (m.components(), m.dim);
-            put("mixture.log_weights", Dtype::F64, vec![c], le_bytes_f64(&m.log_weights));
-            put("mixture.means", Dtype::F64, vec![c, d], le_bytes_f64(&m.means));
-            put("mixture.precision_cholesky", Dtype::F64, vec![c, d, d], le_bytes_f64(&m.precision_cholesky));
+            write_flow(bg, "background", &mut put);
         }
         let r = &self.refs;
         let kde_cols = self.meta.scoring.kde_columns.len().max(1);
@@ -170,13 +167,9 @@ impl Model {
             floored: pm.floored_components,
             shrinkage: pm.shrinkage,
         };
-        let flow = read_flow(&tensors, "flow", &meta.flow, meta.format_version)?;
+        let density = read_density(&tensors, &meta)?;
         let background = match &meta.background {
             Some(spec) => Some(read_flow(&tensors, "background", spec, meta.format_version)?),
-            None => None,
-        };
-        let mixture = match &meta.mixture {
-            Some(mm) => Some(read_mixture(&tensors, mm.components, k)?),
             None => None,
         };
         let s = &meta.scoring;
@@ -192,7 +185,7 @@ impl Model {
                 tensors.f64s("scores.validation_nll", &[s.validation_rows])?
             },
         };
-        Ok(Model { meta, pre, flow, background, mixture, refs })
+        Ok(Model { meta, pre, density, background, refs })
     }
 }
 
@@ -412,6 +405,12 @@ impl Tensors<'_, '_> {
         }
         Ok(t.data())
     }
+}
+
+impl TensorSource for Tensors<'_, '_> {
+    fn path(&self) -> &Path {
+        self.path
+    }
 
     fn f32s(&self, name: &str, shape: &[usize]) -> Result<Vec<f32>> {
         finite(self.path, name, from_f32(self.raw(name, Dtype::F32, shape)?))
@@ -421,7 +420,6 @@ impl Tensors<'_, '_> {
         finite(self.path, name, from_f64(self.raw(name, Dtype::F64, shape)?))
     }
 
-    /// Non-negative indices stored as i64.
     fn indices(&self, name: &str, len: usize) -> Result<Vec<usize>> {
         let raw = self.raw(name, Dtype::I64, &[len])?;
         raw.chunks_exact(8)
@@ -463,128 +461,23 @@ impl Extras {
     }
 }
 
-/// Add a flow's tensors under `prefix` (`{prefix}.{layer}.actnorm.log_scale`, ...).
-fn flow_tensors(flow: &Flow, prefix: &str, put: &mut dyn FnMut(&str, Dtype, Vec<usize>, Vec<u8>)) {
-    let p = &flow.params;
-    let dim = flow.spec.dim;
-    for (k, slot) in flow.slots.iter().enumerate() {
-        put(
-            &format!("{prefix}.{k}.actnorm.log_scale"),
-            Dtype::F32,
-            vec![dim],
-            le_bytes_f32(&p[slot.log_scale..slot.log_scale + dim]),
-        );
-        put(&format!("{prefix}.{k}.actnorm.bias"), Dtype::F32, vec![dim], le_bytes_f32(&p[slot.bias..slot.bias + dim]));
-        let perm: Vec<usize> = flow.perms[k].iter().map(|&v| v as usize).collect();
-        put(&format!("{prefix}.{k}.permutation"), Dtype::I64, vec![dim], le_bytes_i64(&perm));
-        if let Some(mix) = slot.mix {
-            put(&format!("{prefix}.{k}.mixing.lu"), Dtype::F32, vec![dim, dim], le_bytes_f32(&p[mix..mix + dim * dim]));
+/// The density the metadata describes, from its tensors.
+fn read_density(t: &Tensors, meta: &Meta) -> Result<Box<dyn Density>> {
+    let dim = meta.preprocessing.whitened_dims;
+    let counts: Vec<usize> = meta.classes.iter().map(|c| c.rows).collect();
+    let log_priors = crate::density::log_priors(&counts);
+    Ok(match (meta.kind, &meta.mixture) {
+        (Kind::Mixture, Some(mm)) => Box::new(MixtureDensity::read(t, mm.components, dim)?),
+        (Kind::Gaussian | Kind::ClassGaussian, _) if meta.flow.layers == 0 => {
+            Box::new(Gaussian::read(t, dim, meta.flow_dims, log_priors)?)
         }
-        for (i, lin) in slot.linears.iter().enumerate() {
-            let w = &p[lin.weight..lin.weight + lin.out * lin.inp];
-            put(&format!("{prefix}.{k}.net.{i}.weight"), Dtype::F32, vec![lin.out, lin.inp], le_bytes_f32(w));
-            put(
-                &format!("{prefix}.{k}.net.{i}.bias"),
-                Dtype::F32,
-                vec![lin.out],
-                le_bytes_f32(&p[lin.bias..lin.bias + lin.out]),
-            );
+        _ => {
+            let flow = read_flow(t, "flow", &meta.flow, meta.format_version)?;
+            Box::new(FlowDensity::new(flow, dim, log_priors))
         }
-    }
-    if flow.spec.classes > 0 {
-        let means = &p[flow.class_means..flow.class_means + flow.spec.classes * dim];
-        put(&format!("{prefix}.class_means"), Dtype::F32, vec![flow.spec.classes, dim], le_bytes_f32(means));
-    }
+    })
 }
 
-/// Read a flow written by [`flow_tensors`]. Every tensor's shape is
-/// checked before the flow is built, so the metadata cannot size the
-/// flow's parameters beyond what the file holds.
-fn read_flow(t: &Tensors, prefix: &str, spec: &FlowSpec, version: u32) -> Result<Flow> {
-    if version < format_version_for(spec.mixing, crate::model::Kind::Flow) {
-        return Err(Error::model(t.path, format!("{prefix}: LU mixing in a version {version} model file")));
-    }
-    if version < 3 && spec.coupling != crate::flow::Coupling::Affine {
-        return Err(Error::model(t.path, format!("{prefix}: spline couplings in a version {version} model file")));
-    }
-    let (dim, h) = (spec.dim, spec.hidden);
-    let d1 = spec.split().0;
-    let mut shapes = vec![(h, d1)];
-    shapes.extend(std::iter::repeat_n((h, h), spec.depth - 1));
-    shapes.push((spec.conditioner_out(), h));
-    let mut values = Vec::new();
-    for k in 0..spec.layers {
-        values.push(t.f32s(&format!("{prefix}.{k}.actnorm.log_scale"), &[dim])?);
-        values.push(t.f32s(&format!("{prefix}.{k}.actnorm.bias"), &[dim])?);
-        if spec.mixing == crate::flow::Mixing::Lu {
-            values.push(t.f32s(&format!("{prefix}.{k}.mixing.lu"), &[dim, dim])?);
-        }
-        for (i, &(out, inp)) in shapes.iter().enumerate() {
-            values.push(t.f32s(&format!("{prefix}.{k}.net.{i}.weight"), &[out, inp])?);
-            values.push(t.f32s(&format!("{prefix}.{k}.net.{i}.bias"), &[out])?);
-        }
-    }
-    if spec.classes > 0 {
-        values.push(t.f32s(&format!("{prefix}.class_means"), &[spec.classes, dim])?);
-    }
-    let mut perms = Vec::with_capacity(spec.layers);
-    for k in 0..spec.layers {
-        let name = format!("{prefix}.{k}.permutation");
-        let perm = t.indices(&name, dim)?;
-        let mut seen = vec![false; dim];
-        for &p in &perm {
-            if p >= dim || std::mem::replace(&mut seen[p], true) {
-                return Err(Error::model(t.path, format!("tensor '{name}' is not a permutation")));
-            }
-        }
-        perms.push(perm.iter().map(|&p| p as u32).collect());
-    }
-    // The values above are in the order of the flow's parameter layout.
-    let mut flow = Flow::new(spec.clone(), 0);
-    let mut at = 0;
-    for v in values {
-        flow.params[at..at + v.len()].copy_from_slice(&v);
-        at += v.len();
-    }
-    if at != flow.params.len() {
-        return Err(Error::model(t.path, format!("{prefix}: parameter count does not match the flow's shape")));
-    }
-    flow.perms = perms;
-    Ok(flow)
-}
-
-/// A mixture of `c` components over `d` dims: weights that are
-/// log-probabilities summing to 1, finite means, and precision factors
-/// that are upper triangular with a positive diagonal.
-fn read_mixture(t: &Tensors, c: usize, d: usize) -> Result<Mixture> {
-    let log_weights = t.f64s("mixture.log_weights", &[c])?;
-    let means = t.f64s("mixture.means", &[c, d])?;
-    let precision_cholesky = t.f64s("mixture.precision_cholesky", &[c, d, d])?;
-    let total = crate::linalg::log_sum_exp(&log_weights);
-    if log_weights.iter().any(|w| !(w.is_finite() && *w <= 0.0)) || (total.abs() > 1e-6) {
-        return Err(Error::model(t.path, "tensor 'mixture.log_weights' does not hold log-probabilities summing to 1"));
-    }
-    for w in precision_cholesky.chunks(d * d) {
-        let upper = (0..d).all(|i| w[i * d + i] > 0.0 && (0..i).all(|j| w[i * d + j] == 0.0));
-        if !upper {
-            return Err(Error::model(
-                t.path,
-                "tensor 'mixture.precision_cholesky' holds a factor that is not upper triangular with a positive diagonal",
-            ));
-        }
-    }
-    Ok(Mixture { dim: d, log_weights, means, precision_cholesky })
-}
-
-fn le_bytes_f32(v: &[f32]) -> Vec<u8> {
-    v.iter().flat_map(|x| x.to_le_bytes()).collect()
-}
-fn le_bytes_f64(v: &[f64]) -> Vec<u8> {
-    v.iter().flat_map(|x| x.to_le_bytes()).collect()
-}
-fn le_bytes_i64(v: &[usize]) -> Vec<u8> {
-    v.iter().flat_map(|&x| (x as i64).to_le_bytes()).collect()
-}
 fn from_f32(b: &[u8]) -> Vec<f32> {
     b.chunks_exact(4).map(|c| f32::from_le_bytes([c[0], c[1], c[2], c[3]])).collect()
 }

@@ -39,7 +39,7 @@ impl Checkpoint {
             .map_err(|e| Error::model(path, format!("bad checkpoint state: {e}")))?;
         let settings: Settings = serde_json::from_value(model.meta.training.settings.clone())
             .map_err(|e| Error::model(path, format!("bad checkpoint settings: {e}")))?;
-        let n = model.flow.param_count();
+        let n = model.flow().map_or(0, |f| f.param_count());
         let adam = Adam {
             m: extras.tensor("checkpoint.adam_m", n)?,
             v: extras.tensor("checkpoint.adam_v", n)?,

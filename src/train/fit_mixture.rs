@@ -144,7 +144,7 @@ pub(super) fn fit_mixture(rows: &Rows, l: &mut Learned, asked: Option<usize>, qu
         em_iterations: report.iterations,
         converged: report.converged,
     });
-    l.model.mixture = Some(mixture);
+    l.model.density = Box::new(crate::density::MixtureDensity { mixture });
     l.state.best_val = chosen.validation_nll;
     Ok(())
 }
