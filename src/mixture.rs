@@ -41,6 +41,10 @@ pub struct MixtureEvaluation {
     pub probability: Vec<f64>,
     /// Squared Mahalanobis distance to the most responsible component.
     pub mahalanobis_sq: Vec<f64>,
+    /// ln of the summed weighted densities of each group's components,
+    /// `rows x groups` (empty without groups): for a class-conditional
+    /// mixture, ln [pi_c p(u | c)].
+    pub group_log_joint: Vec<f64>,
 }
 
 /// How EM ran.
@@ -90,8 +94,15 @@ impl Mixture {
 
     /// ln p(u) and the nearest-component statistics for `rows` rows of `u`.
     pub fn evaluate(&self, u: &[f64], rows: usize) -> MixtureEvaluation {
+        self.evaluate_grouped(u, rows, &[], 0)
+    }
+
+    /// As [`Mixture::evaluate`], and the log of each group's share of the
+    /// density, where component `k` belongs to group `group_of[k]`.
+    pub fn evaluate_grouped(&self, u: &[f64], rows: usize, group_of: &[usize], groups: usize) -> MixtureEvaluation {
         let (d, kk) = (self.dim, self.components());
         let mut e = MixtureEvaluation::default();
+        let mut members: Vec<Vec<f64>> = vec![Vec::new(); groups];
         for start in (0..rows).step_by(BLOCK) {
             let n = BLOCK.min(rows - start);
             let (mut lp, maha) = self.log_gaussians(&u[start * d..(start + n) * d], n);
@@ -107,9 +118,31 @@ impl Mixture {
                 e.component.push(best);
                 e.probability.push((top - total).exp());
                 e.mahalanobis_sq.push(maha[r * kk + best]);
+                if groups > 0 {
+                    members.iter_mut().for_each(Vec::clear);
+                    for (&v, &g) in row.iter().zip(group_of) {
+                        members[g].push(v);
+                    }
+                    e.group_log_joint.extend(members.iter().map(|m| log_sum_exp(m)));
+                }
             }
         }
         e
+    }
+
+    /// One mixture of several, each weighted by its `log_share` (the shares
+    /// sum to 1); also which part each component came from.
+    pub fn union(parts: &[(f64, &Mixture)]) -> (Mixture, Vec<usize>) {
+        let dim = parts.first().map_or(0, |p| p.1.dim);
+        let mut out = Mixture { dim, log_weights: Vec::new(), means: Vec::new(), precision_cholesky: Vec::new() };
+        let mut part_of = Vec::new();
+        for (i, (share, m)) in parts.iter().enumerate() {
+            out.log_weights.extend(m.log_weights.iter().map(|w| w + share));
+            out.means.extend(&m.means);
+            out.precision_cholesky.extend(&m.precision_cholesky);
+            part_of.extend(std::iter::repeat_n(i, m.components()));
+        }
+        (out, part_of)
     }
 
     /// Mean ln p(u) over `rows` rows.

@@ -18,13 +18,16 @@ use std::path::Path;
 /// Newest version of the model file layout; bumped on any incompatible
 /// change. Version 2 added LU mixing; a model without it is still written as
 /// version 1, so that older builds read it.
-pub const FORMAT_VERSION: u32 = 3;
+pub const FORMAT_VERSION: u32 = 4;
 
 /// The oldest version that can hold a model with this mixing and kind
 /// (builds before version 2 would read an LU-mixed flow as a permuted one,
-/// and builds before version 3 know no mixture, so they must refuse them).
-pub fn format_version_for(mixing: crate::flow::Mixing, kind: Kind) -> u32 {
+/// builds before version 3 know no mixture, and builds before version 4
+/// would read a class-conditional mixture as one without classes, so they
+/// must refuse them).
+pub fn format_version_for(mixing: crate::flow::Mixing, kind: Kind, labelled: bool) -> u32 {
     match (kind, mixing) {
+        (Kind::Mixture, _) if labelled => 4,
         (Kind::Mixture, _) => 3,
         (_, crate::flow::Mixing::Permutation) => 1,
         (_, crate::flow::Mixing::Lu) => 2,
@@ -131,7 +134,12 @@ pub struct Meta {
 #[derive(Clone, Debug, serde::Serialize, serde::Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct MixtureMeta {
+    /// All components (with classes, over every class).
     pub components: usize,
+    /// Components of each class, in the order of the classes (empty
+    /// without classes).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub per_class: Vec<usize>,
     /// Added to every covariance's diagonal (whitened units).
     pub ridge: f64,
     pub em_iterations: usize,
@@ -173,8 +181,16 @@ impl Meta {
             line(
                 "mixture",
                 format!(
-                    "{} full-covariance Gaussians over all {} whitened dims, ridge {:.3e}, {} EM iterations{}",
+                    "{} full-covariance Gaussians{} over all {} whitened dims, ridge {:.3e}, {} EM iterations{}",
                     m.components,
+                    if m.per_class.is_empty() {
+                        String::new()
+                    } else {
+                        format!(
+                            " ({} per class)",
+                            m.per_class.iter().map(|k| k.to_string()).collect::<Vec<_>>().join(", ")
+                        )
+                    },
                     p.whitened_dims,
                     m.ridge,
                     m.em_iterations,

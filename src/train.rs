@@ -425,10 +425,9 @@ fn start(run: &Run, opts: &FitOptions) -> Result<Learned> {
     if kind == Kind::ClassGaussian && class_of.is_none() {
         return Err(Error::Invalid("--kind class-gaussian needs --labels".into()));
     }
-    if kind == Kind::Mixture && class_of.is_some() {
+    if kind == Kind::Gaussian && class_of.is_some() {
         return Err(Error::Invalid(
-            "--kind mixture fits no per-class densities yet; drop --labels, or use --kind class-gaussian or flow"
-                .into(),
+            "--kind gaussian fits one Gaussian and uses no labels; drop --labels, or use --kind class-gaussian".into(),
         ));
     }
     // Class means (input space) over the training rows, for pooling.
@@ -656,11 +655,9 @@ fn labels_checksum(labels: &[i64]) -> u64 {
 fn skeleton_meta(cols: usize, pre: &Preprocessor, flow: &Flow, s: &Settings, classes: Vec<ClassCount>) -> Result<Meta> {
     Ok(Meta {
         format: "tidemark-model".into(),
-        format_version: if flow.spec.coupling == Coupling::Affine {
-            format_version_for(flow.spec.mixing, s.kind)
-        } else {
-            3
-        },
+        // Spline couplings came with version 3.
+        format_version: format_version_for(flow.spec.mixing, s.kind, !classes.is_empty())
+            .max(if flow.spec.coupling == Coupling::Affine { 1 } else { 3 }),
         created_by: format!("tidemark {}", env!("CARGO_PKG_VERSION")),
         input_dim: cols,
         preprocessing: PreprocessingMeta {
@@ -703,7 +700,8 @@ struct Rows<'a> {
 impl<'a> Rows<'a> {
     fn new(run: &Run<'a>, s: &Settings, model: &Model) -> Rows<'a> {
         let (train, val) = split_rows(run.data.rows, s.val_fraction, s.seed);
-        let class_of = run.labels.filter(|_| model.classes() > 0).map(|l| class_indices(l, &model.meta.classes));
+        let class_of =
+            run.labels.filter(|_| !model.meta.classes.is_empty()).map(|l| class_indices(l, &model.meta.classes));
         let (val_data, val) = match run.val {
             Some(v) => (v, (0..v.rows).collect()),
             // Without validation rows the training rows stand in.

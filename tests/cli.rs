@@ -367,7 +367,65 @@ fn few_rows_per_feature_leave_the_flow_out_unless_one_is_asked_for() {
     assert!(stderr.contains("2.2 per feature") && stderr.contains("--kind flow"), "{stderr}");
     assert!(stderr.contains("candidate gaussian") && stderr.contains("candidate mixture"), "{stderr}");
     assert!(!stderr.contains("candidate flow"), "{stderr}");
-    assert_eq!(kind_with(&["--labels", labels.to_str().unwrap()]).0, "class-gaussian");
+    let (kind, stderr) = kind_with(&["--labels", labels.to_str().unwrap()]);
+    assert!(kind == "class-gaussian" || kind == "mixture", "{kind}");
+    assert!(stderr.contains("candidate class-gaussian") && stderr.contains("per class"), "{stderr}");
     assert_eq!(kind_with(&["--kind", "flow"]).0, "flow");
     assert_eq!(kind_with(&["--layers", "2"]).0, "flow");
+}
+
+/// The mixture kind with labels writes per-class columns whose Bayes-rule
+/// marginal is the log-likelihood column (log p(x) = logsumexp_c [log p(x |
+/// c) + log pi_c], pi_c from the label counts); a class with a single
+/// training row stops `--kind mixture` with a line naming its label and
+/// leaves the default search to the other kinds; `--kind gaussian` refuses
+/// labels it would not use.
+#[test]
+fn class_mixture_scores_per_class_and_names_a_class_too_small() {
+    let dir = tempfile::tempdir().unwrap();
+    let f = |name: &str| common::fixture(name).to_str().unwrap().to_string();
+    let (wine, labels) = (f("wine.csv"), f("wine_labels.csv"));
+    let model = dir.path().join("m.safetensors");
+    let scores = dir.path().join("s.csv");
+    let m = model.to_str().unwrap();
+    tidemark().args(["fit", &wine, "--labels", &labels, "--kind", "mixture", "-q", "-o", m]).assert().success();
+    tidemark().args(["score", m, &wine, "-o", scores.to_str().unwrap()]).assert().success();
+    let text = std::fs::read_to_string(&scores).unwrap();
+    let counts: Vec<f64> = {
+        let l = std::fs::read_to_string(&labels).unwrap();
+        let rows: Vec<i64> = l.lines().skip(1).map(|v| v.trim().parse().unwrap()).collect();
+        (0..3).map(|c| rows.iter().filter(|&&r| r == c).count() as f64 / rows.len() as f64).collect()
+    };
+    let ll = common::column(&text, "log_likelihood");
+    let per: Vec<Vec<f64>> = (0..3).map(|c| common::column(&text, &format!("class_log_likelihood_{c}"))).collect();
+    for r in 0..ll.len() {
+        let joint: Vec<f64> = (0..3).map(|c| per[c][r] + counts[c].ln()).collect();
+        let top = joint.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
+        let marginal = top + joint.iter().map(|j| (j - top).exp()).sum::<f64>().ln();
+        assert!((marginal - ll[r]).abs() < 1e-6 * ll[r].abs().max(1.0), "row {r}: {marginal} vs {}", ll[r]);
+    }
+    let out = tidemark().args(["inspect", m]).assert().success();
+    assert!(String::from_utf8_lossy(&out.get_output().stdout).contains("per class"));
+
+    let lonely = dir.path().join("lonely.csv");
+    let l = std::fs::read_to_string(&labels).unwrap();
+    let mut lines: Vec<String> = l.lines().map(str::to_string).collect();
+    lines[5] = "7".into();
+    std::fs::write(&lonely, lines.join("\n") + "\n").unwrap();
+    let other = dir.path().join("o.safetensors");
+    let o = other.to_str().unwrap();
+    let base = ["fit", &wine, "--labels", lonely.to_str().unwrap(), "-o", o];
+    let out = tidemark().args(base).args(["--kind", "mixture"]).assert().failure();
+    let err = String::from_utf8_lossy(&out.get_output().stderr).to_string();
+    assert!(err.contains("class 7 has 1 training rows"), "{err}");
+    assert!(!other.exists());
+    let out = tidemark().args(base).args(["--budget", "5s"]).assert().success();
+    let err = String::from_utf8_lossy(&out.get_output().stderr).to_string();
+    assert!(err.contains("mixture left out of the comparison: class 7"), "{err}");
+    let out = tidemark()
+        .args(["fit", &wine, "--labels", &labels, "--kind", "gaussian", "-o", o, "--force"])
+        .assert()
+        .failure();
+    assert!(String::from_utf8_lossy(&out.get_output().stderr)
+        .contains("--kind gaussian fits one Gaussian and uses no labels"));
 }

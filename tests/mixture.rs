@@ -162,3 +162,50 @@ fn altered_mixture_files_are_refused_by_name() {
     let err = rewrite("mixture.means", &|_| (), &|m| m.replace("\"components\":2", "\"components\":3"));
     assert!(err.contains("mixture."), "{err}");
 }
+
+/// With labels and one component per class, the mixture is
+/// sum_c pi_c N(x; m_c, S_c + r S) in input space: on held-out wine rows
+/// it picks the ridge r that scipy ranks best and gives scipy's per-class
+/// log-likelihoods, log-likelihood, most probable class and posterior
+/// (scripts/make_density_fixtures.py); the file round-trips with its
+/// classes.
+#[test]
+fn class_mixture_matches_scipy_per_class_gaussians() {
+    let want = &density()["class_mixture"];
+    let train = Dataset::open(&common::fixture("wine_class_train.npy"), None).unwrap();
+    let held = Dataset::open(&common::fixture("wine_class_heldout.npy"), None).unwrap();
+    let labels: Vec<i64> = want["train_labels"].as_array().unwrap().iter().map(|v| v.as_i64().unwrap()).collect();
+    let opts = FitOptions {
+        kind: Some(Kind::Mixture),
+        components: Some(1),
+        quiet: true,
+        threads: Some(1),
+        ..FitOptions::default()
+    };
+    let run = Run { val: Some(&held), labels: Some(&labels), ..Run::new(&train) };
+    let model = tidemark::train::fit_run(&run, &opts).unwrap();
+    let mm = model.meta.mixture.as_ref().unwrap();
+    assert_eq!(mm.per_class, vec![1, 1, 1]);
+    let best = want["best_ridge"].as_f64().unwrap();
+    assert!(close(mm.ridge, best, 1e-9), "chose ridge {} instead of scipy's {best}", mm.ridge);
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("classes.safetensors");
+    model.save(&path).unwrap();
+    let back = tidemark::model::Model::load(&path).unwrap();
+    assert_eq!(back.meta.format_version, 4);
+    let e = back.evaluate(&held, 1);
+    let per_class = common::floats(&want["class_log_likelihood"]);
+    assert_eq!(e.class_log_likelihood.len(), per_class.len());
+    for (a, b) in e.class_log_likelihood.iter().zip(&per_class) {
+        assert!(close(*a, *b, 1e-5), "class log-likelihood {a} vs scipy {b}");
+    }
+    for (a, b) in e.log_likelihood.iter().zip(common::floats(&want["log_likelihood"])) {
+        assert!(close(*a, b, 1e-5), "log-likelihood {a} vs scipy {b}");
+    }
+    let classes: Vec<usize> =
+        want["predicted_class"].as_array().unwrap().iter().map(|v| v.as_u64().unwrap() as usize).collect();
+    assert_eq!(e.predicted_class, classes);
+    for (a, b) in e.class_probability.iter().zip(common::floats(&want["class_probability"])) {
+        assert!((a - b).abs() < 1e-5, "posterior {a} vs scipy {b}");
+    }
+}

@@ -188,7 +188,7 @@ pub(crate) fn write_flow(flow: &Flow, prefix: &str, put: &mut Put) {
 /// parameters beyond what the file holds.
 pub(crate) fn read_flow(t: &dyn super::TensorSource, prefix: &str, spec: &FlowSpec, version: u32) -> Result<Flow> {
     let path = t.path();
-    if version < crate::model::format_version_for(spec.mixing, Kind::Flow) {
+    if version < crate::model::format_version_for(spec.mixing, Kind::Flow, false) {
         return Err(Error::model(path, format!("{prefix}: LU mixing in a version {version} model file")));
     }
     if version < 3 && spec.coupling != crate::flow::Coupling::Affine {

@@ -1,8 +1,10 @@
 //! The Gaussian mixture over whitened rows (the fitting, EM, is in
 //! [`crate::mixture`]): its latent for a row is the row's whitened offset
-//! from the most responsible component.
+//! from the most responsible component. With classes, each class has its
+//! own components, weighted within the class and then by the class prior,
+//! so that p(u) = sum_c pi_c p(u | c) is itself one mixture.
 
-use super::{le_bytes_f64, Density, Evaluate, Parts, Put, TensorSource};
+use super::{argmax, le_bytes_f64, le_bytes_i64, Density, Evaluate, Parts, Put, TensorSource};
 use crate::error::{Error, Result};
 use crate::mixture::Mixture;
 use rand::rngs::StdRng;
@@ -11,13 +13,22 @@ use safetensors::Dtype;
 #[derive(Clone, Debug)]
 pub struct MixtureDensity {
     pub mixture: Mixture,
+    /// The class of each component (empty without classes).
+    pub component_class: Vec<usize>,
+    /// ln of each class's prior (empty without classes).
+    pub log_priors: Vec<f64>,
 }
+
+/// Where the class of each component sits in a model file.
+const COMPONENT_CLASS: &str = "mixture.component_class";
 
 impl MixtureDensity {
     /// A mixture of `c` components over `d` dims: weights that are
     /// log-probabilities summing to 1, finite means, and precision factors
-    /// that are upper triangular with a positive diagonal.
-    pub(crate) fn read(t: &dyn TensorSource, c: usize, d: usize) -> Result<MixtureDensity> {
+    /// that are upper triangular with a positive diagonal; with classes,
+    /// every class owns a component and its components' weights sum to its
+    /// prior.
+    pub(crate) fn read(t: &dyn TensorSource, c: usize, d: usize, log_priors: Vec<f64>) -> Result<MixtureDensity> {
         let log_weights = t.f64s("mixture.log_weights", &[c])?;
         let means = t.f64s("mixture.means", &[c, d])?;
         let precision_cholesky = t.f64s("mixture.precision_cholesky", &[c, d, d])?;
@@ -37,20 +48,48 @@ impl MixtureDensity {
                 ));
             }
         }
-        Ok(MixtureDensity { mixture: Mixture { dim: d, log_weights, means, precision_cholesky } })
+        let mixture = Mixture { dim: d, log_weights, means, precision_cholesky };
+        let component_class = if log_priors.is_empty() { Vec::new() } else { t.indices(COMPONENT_CLASS, c)? };
+        if component_class.iter().any(|&k| k >= log_priors.len()) {
+            return Err(Error::model(t.path(), format!("tensor '{COMPONENT_CLASS}' names a class the model lacks")));
+        }
+        for (class, prior) in log_priors.iter().enumerate() {
+            let weights: Vec<f64> = (component_class.iter().zip(&mixture.log_weights))
+                .filter(|(&k, _)| k == class)
+                .map(|(_, &w)| w)
+                .collect();
+            if weights.is_empty() || (crate::linalg::log_sum_exp(&weights) - prior).abs() > 1e-6 {
+                return Err(Error::model(
+                    t.path(),
+                    format!(
+                        "tensor '{COMPONENT_CLASS}' gives class {class} no components or weights that do not sum to its prior"
+                    ),
+                ));
+            }
+        }
+        Ok(MixtureDensity { mixture, component_class, log_priors })
     }
 }
 
 struct MixtureEvaluator<'a> {
-    mixture: &'a Mixture,
+    density: &'a MixtureDensity,
     u: Vec<f64>,
 }
 
 impl Evaluate for MixtureEvaluator<'_> {
     fn evaluate(&mut self, u: &[f32], rows: usize, out: &mut Parts) {
+        let m = self.density;
         self.u.clear();
-        self.u.extend(u[..rows * self.mixture.dim].iter().map(|&v| v as f64));
-        let e = self.mixture.evaluate(&self.u, rows);
+        self.u.extend(u[..rows * m.mixture.dim].iter().map(|&v| v as f64));
+        let classes = m.log_priors.len();
+        let e = m.mixture.evaluate_grouped(&self.u, rows, &m.component_class, classes);
+        // ln p(u | c) = ln [pi_c p(u | c)] - ln pi_c; the posterior by Bayes' rule.
+        for (joint, total) in e.group_log_joint.chunks(classes.max(1)).zip(&e.log_density) {
+            let (best, top) = argmax(joint);
+            out.predicted_class.push(best);
+            out.class_probability.push((top - total).exp());
+            out.class_log_density.extend(joint.iter().zip(&m.log_priors).map(|(j, p)| j - p));
+        }
         out.log_density.extend(&e.log_density);
         out.base_log_density.extend(&e.log_density);
         out.log_det.extend(std::iter::repeat_n(0.0, rows));
@@ -67,7 +106,7 @@ impl Density for MixtureDensity {
     }
 
     fn classes(&self) -> usize {
-        0
+        self.log_priors.len()
     }
 
     fn components(&self) -> usize {
@@ -75,7 +114,7 @@ impl Density for MixtureDensity {
     }
 
     fn evaluator(&self, _threads: usize, _cap: usize) -> Box<dyn Evaluate + '_> {
-        Box::new(MixtureEvaluator { mixture: &self.mixture, u: Vec::new() })
+        Box::new(MixtureEvaluator { density: self, u: Vec::new() })
     }
 
     fn sample(&self, n: usize, rng: &mut StdRng) -> Vec<f32> {
@@ -95,6 +134,9 @@ impl Density for MixtureDensity {
         put("mixture.log_weights", Dtype::F64, vec![c], le_bytes_f64(&m.log_weights));
         put("mixture.means", Dtype::F64, vec![c, d], le_bytes_f64(&m.means));
         put("mixture.precision_cholesky", Dtype::F64, vec![c, d, d], le_bytes_f64(&m.precision_cholesky));
+        if !self.component_class.is_empty() {
+            put(COMPONENT_CLASS, Dtype::I64, vec![c], le_bytes_i64(&self.component_class));
+        }
     }
 
     fn boxed_clone(&self) -> Box<dyn Density> {

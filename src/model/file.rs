@@ -235,7 +235,9 @@ fn check_meta(path: &Path, meta: &Meta) -> Result<()> {
             return bad("background", "does not match the flow's dimensions".into());
         }
     }
-    if meta.classes.len() != meta.flow.classes {
+    // A class mixture keeps its classes in its components, not in a flow.
+    let flow_classes = if meta.kind == Kind::Mixture { 0 } else { meta.classes.len() };
+    if flow_classes != meta.flow.classes {
         return bad(
             "classes",
             format!("lists {} classes, the flow has {} class means", meta.classes.len(), meta.flow.classes),
@@ -268,8 +270,18 @@ fn check_meta(path: &Path, meta: &Meta) -> Result<()> {
             if k.checked_mul(k).and_then(|kk| kk.checked_mul(m.components)).is_none_or(|n| n > MAX_MIXTURE_VALUES) {
                 return bad("mixture.components", format!("{} components of {k} dims are too large", m.components));
             }
-            if meta.flow.layers != 0 || meta.flow_dims != k || meta.background.is_some() || !meta.classes.is_empty() {
-                return bad("mixture", "comes with a flow, a background flow or classes".into());
+            if meta.flow.layers != 0 || meta.flow_dims != k || meta.background.is_some() {
+                return bad("mixture", "comes with a flow or a background flow".into());
+            }
+            if !meta.classes.is_empty() && meta.format_version < 4 {
+                return bad(
+                    "format_version",
+                    format!("is {}, too old for a mixture with classes", meta.format_version),
+                );
+            }
+            let shares_sum = m.per_class.iter().sum::<usize>() == m.components;
+            if m.per_class.len() != meta.classes.len() || (!m.per_class.is_empty() && !shares_sum) {
+                return bad("mixture.per_class", "does not give each class its share of the components".into());
             }
             if !(m.ridge.is_finite() && m.ridge >= 0.0) {
                 return bad("mixture.ridge", format!("is {}", m.ridge));
@@ -467,7 +479,7 @@ fn read_density(t: &Tensors, meta: &Meta) -> Result<Box<dyn Density>> {
     let counts: Vec<usize> = meta.classes.iter().map(|c| c.rows).collect();
     let log_priors = crate::density::log_priors(&counts);
     Ok(match (meta.kind, &meta.mixture) {
-        (Kind::Mixture, Some(mm)) => Box::new(MixtureDensity::read(t, mm.components, dim)?),
+        (Kind::Mixture, Some(mm)) => Box::new(MixtureDensity::read(t, mm.components, dim, log_priors)?),
         (Kind::Gaussian | Kind::ClassGaussian, _) if meta.flow.layers == 0 => {
             Box::new(Gaussian::read(t, dim, meta.flow_dims, log_priors)?)
         }

@@ -1,10 +1,14 @@
 //! Fitting the mixture kind: EM on the whitened training rows for a
 //! doubling number of components, each with a ridge, all chosen by the
-//! log-likelihood of the validation rows.
+//! log-likelihood of the validation rows. With labels, each class gets its
+//! own mixture on its own rows (up to the same number of components), and
+//! the model is their union weighted by the class priors; the choice is by
+//! the validation rows' log-likelihood under that union, which needs no
+//! validation labels.
 
 use super::{derive, Learned, Rows};
 use crate::error::{Error, Result};
-use crate::mixture::{em, kmeans_start, responsibilities, EmReport, Mixture};
+use crate::mixture::{em, kmeans_start, responsibilities, EmReport, Fitted, Mixture};
 use crate::model::MixtureMeta;
 use crate::output::note;
 use rand::rngs::StdRng;
@@ -27,6 +31,8 @@ const MAX_COMPONENTS: usize = 64;
 /// component (a full covariance needs well over `dim` rows).
 const MIN_ROWS_PER_COMPONENT: usize = 20;
 const MIN_ROWS_PER_COMPONENT_DIM: usize = 2;
+/// Fewest training rows of a class for a mixture of its own.
+const MIN_CLASS_ROWS: usize = 2;
 /// EM runs on at most this many training rows (a seeded sample).
 const MAX_EM_ROWS: usize = 100_000;
 /// The doubling stops after this many component counts in a row that do
@@ -68,47 +74,145 @@ fn whitened(l: &Learned, data: &crate::data::Dataset, idx: &[usize]) -> Vec<f64>
     out
 }
 
+/// The whitened training rows one mixture is fitted to: all of them, or
+/// one class's.
+struct Group {
+    u: Vec<f64>,
+    n: usize,
+    /// ln of its share of the density: its class prior (0 without classes).
+    log_share: f64,
+    /// Most components its rows allow.
+    cap: usize,
+}
+
+/// The training rows EM runs on: all, or a seeded sample of [`MAX_EM_ROWS`].
+fn em_rows(rows: &Rows, seed: u64) -> Vec<usize> {
+    let mut train = rows.train.clone();
+    if train.len() > MAX_EM_ROWS {
+        train.shuffle(&mut StdRng::seed_from_u64(derive(seed, 9, 0)));
+        train.truncate(MAX_EM_ROWS);
+        train.sort_unstable();
+    }
+    train
+}
+
+/// One group of all `train` rows, or one per class of the model.
+fn groups(rows: &Rows, l: &Learned, train: &[usize]) -> Result<Vec<Group>> {
+    let d = l.model.dim();
+    let group = |idx: &[usize], log_share: f64| {
+        let cap = component_counts(idx.len(), d, None).last().copied().unwrap_or(1);
+        Group { u: whitened(l, rows.data, idx), n: idx.len(), log_share, cap }
+    };
+    let Some(of) = &rows.class_of else { return Ok(vec![group(train, 0.0)]) };
+    let classes = &l.model.meta.classes;
+    let priors = crate::density::log_priors(&classes.iter().map(|c| c.rows).collect::<Vec<_>>());
+    let mut out = Vec::with_capacity(classes.len());
+    for (c, class) in classes.iter().enumerate() {
+        let idx: Vec<usize> = train.iter().copied().filter(|&r| of[r] as usize == c).collect();
+        if idx.len() < MIN_CLASS_ROWS {
+            return Err(Error::Invalid(format!(
+                "class {} has {} training rows; a mixture per class needs at least {MIN_CLASS_ROWS} \
+                 (use --kind class-gaussian, or label more rows of it)",
+                class.label,
+                idx.len()
+            )));
+        }
+        out.push(group(&idx, priors[c]));
+    }
+    Ok(out)
+}
+
+/// EM for every group from a seeded k-means++ start with `counts[i]`
+/// components; `None` if any covariance stopped being positive definite.
+fn em_groups(groups: &[Group], d: usize, counts: &[usize], seed: u64) -> Option<Vec<(Fitted, EmReport)>> {
+    let one = groups.len() == 1;
+    (groups.iter().zip(counts).enumerate())
+        .map(|(i, (g, &k))| {
+            // Without classes the seed is the one earlier builds used.
+            let seed = if one { seed } else { derive(seed, 11, i as u64) };
+            em(&g.u, g.n, d, &kmeans_start(&g.u, g.n, d, k, seed), EM_RIDGE, EM_ROUNDS, EM_TOL)
+        })
+        .collect()
+}
+
+/// EM again for every group at `ridge`, from where `fits` ended.
+fn em_again(groups: &[Group], d: usize, fits: &[(Fitted, EmReport)], ridge: f64) -> Option<Vec<(Fitted, EmReport)>> {
+    (groups.iter().zip(fits))
+        .map(|(g, (f, _))| em(&g.u, g.n, d, &responsibilities(&f.mixture, &g.u, g.n), ridge, EM_ROUNDS, EM_TOL))
+        .collect()
+}
+
+/// How EM ran over all groups: the most rounds any took, converged if all did.
+fn joint_report(fits: &[(Fitted, EmReport)]) -> EmReport {
+    let n = fits.len().max(1) as f64;
+    EmReport {
+        iterations: fits.iter().map(|f| f.1.iterations).max().unwrap_or(0),
+        mean_log_likelihood: fits.iter().map(|f| f.1.mean_log_likelihood).sum::<f64>() / n,
+        converged: fits.iter().all(|f| f.1.converged),
+    }
+}
+
+/// The groups' mixtures as one, weighted by their shares, and the group of
+/// each component.
+fn union(groups: &[Group], parts: &[Mixture]) -> (Mixture, Vec<usize>) {
+    let weighted: Vec<(f64, &Mixture)> = groups.iter().map(|g| g.log_share).zip(parts).collect();
+    Mixture::union(&weighted)
+}
+
+/// The best mixture so far.
+struct Best {
+    mixture: Mixture,
+    component_class: Vec<usize>,
+    counts: Vec<usize>,
+    tried: Tried,
+    report: EmReport,
+}
+
 /// Fit the mixture into `l.model`; the best validation NLL (nats per
 /// vector, input space) goes into the training state.
 pub(super) fn fit_mixture(rows: &Rows, l: &mut Learned, asked: Option<usize>, quiet: bool) -> Result<()> {
     let d = l.model.dim();
-    let mut train = rows.train.clone();
-    if train.len() > MAX_EM_ROWS {
-        train.shuffle(&mut StdRng::seed_from_u64(derive(l.settings.seed, 9, 0)));
-        train.truncate(MAX_EM_ROWS);
-        train.sort_unstable();
-    }
-    let u = whitened(l, rows.data, &train);
+    let train = em_rows(rows, l.settings.seed);
+    let groups = groups(rows, l, &train)?;
+    let labelled = rows.class_of.is_some();
     let v = whitened(l, rows.val_data, &rows.val);
-    let (n, nv) = (train.len(), rows.val.len());
+    let nv = rows.val.len();
     let log_det = l.model.pre.log_det();
-    let mut best: Option<(Mixture, Tried, EmReport)> = None;
+    let mut best: Option<Best> = None;
     let mut tried = Vec::new();
     let mut since_best = 0;
-    for k in component_counts(n, d, asked) {
-        let init = kmeans_start(&u, n, d, k, derive(l.settings.seed, 10, k as u64));
-        let Some((fitted, report)) = em(&u, n, d, &init, EM_RIDGE, EM_ROUNDS, EM_TOL) else {
+    let mut last_counts = Vec::new();
+    let largest = groups.iter().map(|g| g.n).max().unwrap_or(0);
+    for k in component_counts(largest, d, asked) {
+        let counts: Vec<usize> = groups.iter().map(|g| k.min(if asked.is_some() { g.n } else { g.cap })).collect();
+        if counts == last_counts {
+            break; // every class is at the most its rows allow
+        }
+        last_counts.clone_from(&counts);
+        let Some(fits) = em_groups(&groups, d, &counts, derive(l.settings.seed, 10, k as u64)) else {
             if !quiet {
                 note(format!("mixture of {k}: a covariance stopped being positive definite; skipped"));
             }
             continue;
         };
         let mut improved = false;
-        let mut consider = |m: Mixture, ridge: f64, report: EmReport, tried: &mut Vec<Tried>| {
+        let mut consider = |parts: Vec<Mixture>, ridge: f64, report: EmReport, tried: &mut Vec<Tried>| {
+            let (m, component_class) = union(&groups, &parts);
             let nll = -(m.mean_log_density(&v, nv) + log_det);
             let t = Tried { components: k, ridge, validation_nll: nll };
-            let better = best.as_ref().is_none_or(|b| nll < b.1.validation_nll);
-            if better {
-                best = Some((m, t.clone(), report));
+            if best.as_ref().is_none_or(|b| nll < b.tried.validation_nll) {
+                let counts = counts.clone();
+                best = Some(Best { mixture: m, component_class, counts, tried: t.clone(), report });
                 improved = true;
             }
             tried.push(t);
             nll
         };
+        let report = joint_report(&fits);
         let mut ridge_here = (EM_RIDGE, f64::INFINITY);
         for extra in RIDGE_GRID {
-            let Some(m) = fitted.with_ridge(extra) else { continue };
-            let nll = consider(m, EM_RIDGE + extra, report, &mut tried);
+            let Some(parts) = fits.iter().map(|f| f.0.with_ridge(extra)).collect::<Option<Vec<_>>>() else { continue };
+            let nll = consider(parts, EM_RIDGE + extra, report, &mut tried);
             if nll < ridge_here.1 {
                 ridge_here = (EM_RIDGE + extra, nll);
             }
@@ -116,17 +220,19 @@ pub(super) fn fit_mixture(rows: &Rows, l: &mut Learned, asked: Option<usize>, qu
         // A larger ridge added after EM is only an estimate of EM run with
         // it: EM again at that ridge, from where the first run ended.
         if ridge_here.0 > EM_RIDGE {
-            let resp = responsibilities(&fitted.mixture, &u, n);
-            if let Some((again, report)) = em(&u, n, d, &resp, ridge_here.0, EM_ROUNDS, EM_TOL) {
-                consider(again.mixture, ridge_here.0, report, &mut tried);
+            if let Some(again) = em_again(&groups, d, &fits, ridge_here.0) {
+                let report = joint_report(&again);
+                consider(again.into_iter().map(|f| f.0.mixture).collect(), ridge_here.0, report, &mut tried);
             }
         }
         if !quiet {
             let b =
                 tried.iter().filter(|t| t.components == k).min_by(|a, b| a.validation_nll.total_cmp(&b.validation_nll));
             if let Some(b) = b {
+                let what =
+                    if labelled { format!("mixtures of up to {k} per class") } else { format!("mixture of {k}") };
                 note(format!(
-                    "mixture of {k}: validation NLL {:.4} nats/vector (ridge {:.3e}, {} EM rounds)",
+                    "{what}: validation NLL {:.4} nats/vector (ridge {:.3e}, {} EM rounds)",
                     b.validation_nll, b.ridge, report.iterations
                 ));
             }
@@ -136,15 +242,21 @@ pub(super) fn fit_mixture(rows: &Rows, l: &mut Learned, asked: Option<usize>, qu
             break;
         }
     }
-    let (mixture, chosen, report) =
+    let best =
         best.ok_or_else(|| Error::Invalid("no mixture could be fitted: every covariance was singular".into()))?;
     l.model.meta.mixture = Some(MixtureMeta {
-        components: chosen.components,
-        ridge: chosen.ridge,
-        em_iterations: report.iterations,
-        converged: report.converged,
+        components: best.mixture.components(),
+        per_class: if labelled { best.counts } else { Vec::new() },
+        ridge: best.tried.ridge,
+        em_iterations: best.report.iterations,
+        converged: best.report.converged,
     });
-    l.model.density = Box::new(crate::density::MixtureDensity { mixture });
-    l.state.best_val = chosen.validation_nll;
+    let (component_class, log_priors) = if labelled {
+        (best.component_class, groups.iter().map(|g| g.log_share).collect())
+    } else {
+        (Vec::new(), Vec::new())
+    };
+    l.model.density = Box::new(crate::density::MixtureDensity { mixture: best.mixture, component_class, log_priors });
+    l.state.best_val = best.tried.validation_nll;
     Ok(())
 }

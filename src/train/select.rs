@@ -24,15 +24,12 @@ pub(super) fn applies(run: &Run, opts: &FitOptions) -> bool {
         && (run.val.is_some() || opts.val_fraction.unwrap_or(super::DEFAULT_VAL_FRACTION) > 0.0)
 }
 
-/// The kinds compared: the (class-)Gaussian, the mixture without labels,
-/// and the flow unless training rows are too few per feature for one
+/// The kinds compared: the (class-)Gaussian, the (class-)mixture, and the
+/// flow unless training rows are too few per feature for one
 /// (measured: see [`GAUSSIAN_BELOW_ROWS_PER_FEATURE`]).
 fn kinds(run: &Run, opts: &FitOptions) -> Vec<Kind> {
     let labelled = run.labels.is_some();
-    let mut kinds = vec![if labelled { Kind::ClassGaussian } else { Kind::Gaussian }];
-    if !labelled {
-        kinds.push(Kind::Mixture);
-    }
+    let mut kinds = vec![if labelled { Kind::ClassGaussian } else { Kind::Gaussian }, Kind::Mixture];
     let val_share = if run.val.is_some() { 0.0 } else { opts.val_fraction.unwrap_or(super::DEFAULT_VAL_FRACTION) };
     let train_rows = run.data.rows as f64 * (1.0 - val_share);
     if train_rows >= GAUSSIAN_BELOW_ROWS_PER_FEATURE * run.data.cols as f64 {
@@ -53,6 +50,10 @@ fn kinds(run: &Run, opts: &FitOptions) -> Vec<Kind> {
 fn detail(m: &Model) -> String {
     let t = &m.meta.training;
     match (m.meta.kind, &m.meta.mixture) {
+        (Kind::Mixture, Some(mm)) if !mm.per_class.is_empty() => {
+            let per: Vec<String> = mm.per_class.iter().map(|k| k.to_string()).collect();
+            format!("{} components ({} per class), ridge {:.3e}", mm.components, per.join(", "), mm.ridge)
+        }
         (Kind::Mixture, Some(mm)) => format!("{} components, ridge {:.3e}", mm.components, mm.ridge),
         (Kind::Flow, _) => format!(
             "{}, best epoch {}",
@@ -462,7 +463,17 @@ pub(super) fn fit_best(run: &Run, opts: &FitOptions, saved: Option<&SavedSearch>
     for kind in kinds(run, opts) {
         let t = Instant::now();
         if kind != Kind::Flow {
-            let model = fit_one(&quiet_run, &FitOptions { kind: Some(kind), quiet: true, ..opts.clone() })?;
+            let model = match fit_one(&quiet_run, &FitOptions { kind: Some(kind), quiet: true, ..opts.clone() }) {
+                Ok(model) => model,
+                // A later kind that does not suit the data is left out; the Gaussian always fits.
+                Err(Error::Invalid(why)) if best.is_some() => {
+                    if !opts.quiet {
+                        note(format!("{} left out of the comparison: {why}", kind_name(kind)));
+                    }
+                    continue;
+                }
+                Err(e) => return Err(e),
+            };
             let c = Candidate {
                 name: kind_name(kind),
                 detail: detail(&model),
