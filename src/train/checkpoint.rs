@@ -1,7 +1,8 @@
 //! Checkpoints: writing them, reading them back, and the checks that a
 //! resumed run continues the run that wrote it.
 
-use super::{labels_checksum, validation_rows, Adam, Fingerprint, FitOptions, Learned, Run, Settings, TrainState};
+use super::start::labels_checksum;
+use super::{validation_rows, Adam, Fingerprint, FitOptions, Learned, Run, Settings, TrainState};
 use crate::error::{Error, Result};
 use crate::model::Model;
 use crate::output::note;
