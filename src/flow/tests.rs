@@ -1,6 +1,8 @@
 //! The flow held to closed forms, finite differences and the candle reference.
 
 use super::*;
+use rand::rngs::StdRng;
+use rand::{Rng, SeedableRng};
 use rand_distr::{Distribution, StandardNormal};
 
 /// The fast exponential against the standard library's, over the range
