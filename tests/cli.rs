@@ -417,7 +417,7 @@ fn class_mixture_scores_per_class_and_names_a_class_too_small() {
     let base = ["fit", &wine, "--labels", lonely.to_str().unwrap(), "-o", o];
     let out = tidemark().args(base).args(["--kind", "mixture"]).assert().failure();
     let err = String::from_utf8_lossy(&out.get_output().stderr).to_string();
-    assert!(err.contains("class 7 has 1 training rows"), "{err}");
+    assert!(err.contains("class 7 has 1 training row;"), "{err}");
     assert!(!other.exists());
     let out = tidemark().args(base).args(["--budget", "5s"]).assert().success();
     let err = String::from_utf8_lossy(&out.get_output().stderr).to_string();

@@ -111,10 +111,11 @@ fn groups(rows: &Rows, l: &Learned, train: &[usize]) -> Result<Vec<Group>> {
         let idx: Vec<usize> = train.iter().copied().filter(|&r| of[r] as usize == c).collect();
         if idx.len() < MIN_CLASS_ROWS {
             return Err(Error::Invalid(format!(
-                "class {} has {} training rows; a mixture per class needs at least {MIN_CLASS_ROWS} \
+                "class {} has {} training row{}; a mixture per class needs at least {MIN_CLASS_ROWS} \
                  (use --kind class-gaussian, or label more rows of it)",
                 class.label,
-                idx.len()
+                idx.len(),
+                if idx.len() == 1 { "" } else { "s" }
             )));
         }
         out.push(group(&idx, priors[c]));
