@@ -99,8 +99,8 @@ struct FlowConfig {
 
 /// The flows compared, around the settings table for this data size
 /// (`table`): every modelled-dimension choice, lighter and heavier
-/// regularisation, a wider and a deeper conditioner, LU mixing and spline
-/// couplings.
+/// regularisation, a wider and a deeper conditioner, LU mixing, all three
+/// of a wider and deeper conditioner with LU mixing, and spline couplings.
 /// Configurations that come out the same are tried once.
 fn flow_configs(opts: &FitOptions, table: &Settings, dims: usize) -> Vec<FlowConfig> {
     let base = FitOptions { kind: Some(Kind::Flow), quiet: true, ..opts.clone() };
@@ -117,6 +117,7 @@ fn flow_configs(opts: &FitOptions, table: &Settings, dims: usize) -> Vec<FlowCon
         o
     };
     let wide = (2 * table.hidden).min(1024);
+    let wider = (4 * table.hidden).min(512).max(wide);
     let mut configs = vec![
         FlowConfig { name: "settings table", opts: set(&|o| o.flow_dims = Some(table.flow_dims)) },
         FlowConfig { name: "all dims", opts: set(&|_| ()) },
@@ -143,6 +144,14 @@ fn flow_configs(opts: &FitOptions, table: &Settings, dims: usize) -> Vec<FlowCon
         },
         FlowConfig { name: "deeper (10 layers)", opts: set(&|o| o.layers = Some(10)) },
         FlowConfig { name: "LU mixing", opts: set(&|o| o.mixing = Some(crate::flow::Mixing::Lu)) },
+        FlowConfig {
+            name: "wider and deeper, LU mixing",
+            opts: set(&|o| {
+                o.hidden = Some(wider);
+                o.layers = Some(10);
+                o.mixing = Some(crate::flow::Mixing::Lu);
+            }),
+        },
         FlowConfig { name: "spline couplings", opts: set(&|o| o.coupling = Some(super::CouplingKind::Spline)) },
     ];
     let key = |o: &FitOptions| {
