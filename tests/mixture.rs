@@ -208,4 +208,34 @@ fn class_mixture_matches_scipy_per_class_gaussians() {
     for (a, b) in e.class_probability.iter().zip(common::floats(&want["class_probability"])) {
         assert!((a - b).abs() < 1e-5, "posterior {a} vs scipy {b}");
     }
+    // Every component moved to class 0 (checksum dropped, as in files from
+    // before checksums): class 0's weights no longer sum to its prior.
+    let bad = dir.path().join("moved.safetensors");
+    rewrite_tensor(&path, &bad, "mixture.component_class", &|b| b.iter_mut().for_each(|v| *v = 0));
+    let err = tidemark::model::Model::load(&bad).map(|_| ()).unwrap_err().to_string();
+    assert!(err.contains("mixture.component_class") && err.contains("class 0"), "{err}");
+}
+
+/// `from` with tensor `name`'s bytes changed by `change` and the checksum
+/// tensor left out, written to `to`.
+fn rewrite_tensor(from: &std::path::Path, to: &std::path::Path, name: &str, change: &dyn Fn(&mut Vec<u8>)) {
+    use safetensors::tensor::TensorView;
+    use safetensors::SafeTensors;
+    let bytes = std::fs::read(from).unwrap();
+    let st = SafeTensors::deserialize(&bytes).unwrap();
+    let (_, header) = SafeTensors::read_metadata(&bytes).unwrap();
+    let mut owned = Vec::new();
+    for (n, t) in st.tensors() {
+        if n == "tidemark.checksum" {
+            continue;
+        }
+        let mut data = t.data().to_vec();
+        if n == name {
+            change(&mut data);
+        }
+        owned.push((n, t.dtype(), t.shape().to_vec(), data));
+    }
+    let views: Vec<(String, TensorView)> =
+        owned.iter().map(|(n, d, s, b)| (n.clone(), TensorView::new(*d, s.clone(), b).unwrap())).collect();
+    std::fs::write(to, safetensors::serialize(views, header.metadata().clone()).unwrap()).unwrap();
 }

@@ -126,6 +126,9 @@ impl Density for MixtureDensity {
         for v in m.log_weights.iter().chain(&m.means).chain(&m.precision_cholesky) {
             eat(v.to_bits());
         }
+        for &k in &self.component_class {
+            eat(k as u64);
+        }
     }
 
     fn write(&self, put: &mut Put) {
