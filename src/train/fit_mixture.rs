@@ -53,10 +53,15 @@ pub(super) fn component_counts(rows: usize, dim: usize, asked: Option<usize>) ->
     if let Some(k) = asked {
         return vec![k];
     }
-    let per = (MIN_ROWS_PER_COMPONENT_DIM * dim).max(MIN_ROWS_PER_COMPONENT);
+    let per = rows_per_component(dim);
     std::iter::successors(Some(1usize), |k| Some(k * 2))
         .take_while(|&k| k == 1 || (k <= MAX_COMPONENTS && rows / k >= per))
         .collect()
+}
+
+/// Fewest training rows each component needs.
+fn rows_per_component(dim: usize) -> usize {
+    (MIN_ROWS_PER_COMPONENT_DIM * dim).max(MIN_ROWS_PER_COMPONENT)
 }
 
 /// Whitened rows `idx` of `data`, in f64, row-major.
@@ -169,51 +174,50 @@ struct Best {
     report: EmReport,
 }
 
-/// Fit the mixture into `l.model`; the best validation NLL (nats per
-/// vector, input space) goes into the training state.
-pub(super) fn fit_mixture(rows: &Rows, l: &mut Learned, asked: Option<usize>, quiet: bool) -> Result<()> {
-    let d = l.model.dim();
-    let train = em_rows(rows, l.settings.seed);
-    let groups = groups(rows, l, &train)?;
-    let labelled = rows.class_of.is_some();
-    let v = whitened(l, rows.val_data, &rows.val);
-    let nv = rows.val.len();
-    let log_det = l.model.pre.log_det();
-    let mut best: Option<Best> = None;
-    let mut tried = Vec::new();
-    let mut since_best = 0;
-    let mut last_counts = Vec::new();
-    let largest = groups.iter().map(|g| g.n).max().unwrap_or(0);
-    for k in component_counts(largest, d, asked) {
-        let counts: Vec<usize> = groups.iter().map(|g| k.min(if asked.is_some() { g.n } else { g.cap })).collect();
-        if counts == last_counts {
-            break; // every class is at the most its rows allow
+/// The search over component counts and ridges: every group's EM for a
+/// count, scored by the validation rows under the union.
+struct Search<'a> {
+    groups: &'a [Group],
+    d: usize,
+    /// Whitened validation rows and their count.
+    v: Vec<f64>,
+    nv: usize,
+    /// The whitening's log-determinant, to report input-space NLL.
+    log_det: f64,
+    asked: Option<usize>,
+    seed: u64,
+    quiet: bool,
+    labelled: bool,
+    best: Option<Best>,
+    tried: Vec<Tried>,
+    /// Per-group counts already fitted, so a count that every class caps
+    /// to the same numbers is not fitted twice.
+    seen: Vec<Vec<usize>>,
+}
+
+impl Search<'_> {
+    /// Fit `k` components (capped per group), try the ridge grid on it;
+    /// `Some(true)` if it beat the best so far, `None` if not fitted.
+    fn try_count(&mut self, k: usize) -> Option<bool> {
+        let counts: Vec<usize> =
+            self.groups.iter().map(|g| k.min(if self.asked.is_some() { g.n } else { g.cap })).collect();
+        if self.seen.contains(&counts) {
+            return None;
         }
-        last_counts.clone_from(&counts);
-        let Some(fits) = em_groups(&groups, d, &counts, derive(l.settings.seed, 10, k as u64)) else {
-            if !quiet {
+        self.seen.push(counts.clone());
+        let Some(fits) = em_groups(self.groups, self.d, &counts, derive(self.seed, 10, k as u64)) else {
+            if !self.quiet {
                 note(format!("mixture of {k}: a covariance stopped being positive definite; skipped"));
             }
-            continue;
+            return Some(false);
         };
         let mut improved = false;
-        let mut consider = |parts: Vec<Mixture>, ridge: f64, report: EmReport, tried: &mut Vec<Tried>| {
-            let (m, component_class) = union(&groups, &parts);
-            let nll = -(m.mean_log_density(&v, nv) + log_det);
-            let t = Tried { components: k, ridge, validation_nll: nll };
-            if best.as_ref().is_none_or(|b| nll < b.tried.validation_nll) {
-                let counts = counts.clone();
-                best = Some(Best { mixture: m, component_class, counts, tried: t.clone(), report });
-                improved = true;
-            }
-            tried.push(t);
-            nll
-        };
         let report = joint_report(&fits);
         let mut ridge_here = (EM_RIDGE, f64::INFINITY);
         for extra in RIDGE_GRID {
             let Some(parts) = fits.iter().map(|f| f.0.with_ridge(extra)).collect::<Option<Vec<_>>>() else { continue };
-            let nll = consider(parts, EM_RIDGE + extra, report, &mut tried);
+            let (nll, better) = self.consider(k, &counts, parts, EM_RIDGE + extra, report);
+            improved |= better;
             if nll < ridge_here.1 {
                 ridge_here = (EM_RIDGE + extra, nll);
             }
@@ -221,30 +225,105 @@ pub(super) fn fit_mixture(rows: &Rows, l: &mut Learned, asked: Option<usize>, qu
         // A larger ridge added after EM is only an estimate of EM run with
         // it: EM again at that ridge, from where the first run ended.
         if ridge_here.0 > EM_RIDGE {
-            if let Some(again) = em_again(&groups, d, &fits, ridge_here.0) {
+            if let Some(again) = em_again(self.groups, self.d, &fits, ridge_here.0) {
                 let report = joint_report(&again);
-                consider(again.into_iter().map(|f| f.0.mixture).collect(), ridge_here.0, report, &mut tried);
+                let parts = again.into_iter().map(|f| f.0.mixture).collect();
+                improved |= self.consider(k, &counts, parts, ridge_here.0, report).1;
             }
         }
-        if !quiet {
-            let b =
-                tried.iter().filter(|t| t.components == k).min_by(|a, b| a.validation_nll.total_cmp(&b.validation_nll));
-            if let Some(b) = b {
-                let what =
-                    if labelled { format!("mixtures of up to {k} per class") } else { format!("mixture of {k}") };
-                note(format!(
-                    "{what}: validation NLL {:.4} nats/vector (ridge {:.3e}, {} EM rounds)",
-                    b.validation_nll, b.ridge, report.iterations
-                ));
-            }
+        self.tell(k, report.iterations);
+        Some(improved)
+    }
+
+    /// Score one candidate on the validation rows and keep it if best;
+    /// its NLL and whether it is the new best.
+    fn consider(
+        &mut self,
+        k: usize,
+        counts: &[usize],
+        parts: Vec<Mixture>,
+        ridge: f64,
+        report: EmReport,
+    ) -> (f64, bool) {
+        let (m, component_class) = union(self.groups, &parts);
+        let nll = -(m.mean_log_density(&self.v, self.nv) + self.log_det);
+        let t = Tried { components: k, ridge, validation_nll: nll };
+        self.tried.push(t.clone());
+        let better = self.best.as_ref().is_none_or(|b| nll < b.tried.validation_nll);
+        if better {
+            self.best = Some(Best { mixture: m, component_class, counts: counts.to_vec(), tried: t, report });
         }
-        since_best = if improved { 0 } else { since_best + 1 };
+        (nll, better)
+    }
+
+    /// The best ridge's figure for `k` components, on the terminal.
+    fn tell(&self, k: usize, rounds: usize) {
+        if self.quiet {
+            return;
+        }
+        let here = self.tried.iter().filter(|t| t.components == k);
+        if let Some(b) = here.min_by(|a, b| a.validation_nll.total_cmp(&b.validation_nll)) {
+            let what =
+                if self.labelled { format!("mixtures of up to {k} per class") } else { format!("mixture of {k}") };
+            note(format!(
+                "{what}: validation NLL {:.4} nats/vector (ridge {:.3e}, {rounds} EM rounds)",
+                b.validation_nll, b.ridge
+            ));
+        }
+    }
+}
+
+/// Counts halfway (geometrically, about) between the best count and its
+/// doubling neighbours, which the doubling skipped: 6 and 12 around 8.
+fn between(best: usize) -> [usize; 2] {
+    [best * 3 / 4, best * 3 / 2]
+}
+
+/// Fit the mixture into `l.model`; the best validation NLL (nats per
+/// vector, input space) goes into the training state.
+pub(super) fn fit_mixture(rows: &Rows, l: &mut Learned, asked: Option<usize>, quiet: bool) -> Result<()> {
+    let d = l.model.dim();
+    let train = em_rows(rows, l.settings.seed);
+    let groups = groups(rows, l, &train)?;
+    let labelled = rows.class_of.is_some();
+    let mut search = Search {
+        groups: &groups,
+        d,
+        v: whitened(l, rows.val_data, &rows.val),
+        nv: rows.val.len(),
+        log_det: l.model.pre.log_det(),
+        asked,
+        seed: l.settings.seed,
+        quiet,
+        labelled,
+        best: None,
+        tried: Vec::new(),
+        seen: Vec::new(),
+    };
+    let largest = groups.iter().map(|g| g.n).max().unwrap_or(0);
+    let ladder = component_counts(largest, d, asked);
+    let mut since_best = 0;
+    for &k in &ladder {
+        match search.try_count(k) {
+            None => break, // every class is at the most its rows allow
+            Some(true) => since_best = 0,
+            Some(false) => since_best += 1,
+        }
         if since_best >= PATIENCE {
             break;
         }
     }
-    let best =
-        best.ok_or_else(|| Error::Invalid("no mixture could be fitted: every covariance was singular".into()))?;
+    if asked.is_none() {
+        if let Some(k) = search.best.as_ref().map(|b| b.tried.components) {
+            let allowed = |c: usize| c > 1 && c <= MAX_COMPONENTS && (largest / c >= rows_per_component(d));
+            for c in between(k).into_iter().filter(|&c| allowed(c)) {
+                search.try_count(c);
+            }
+        }
+    }
+    let best = search
+        .best
+        .ok_or_else(|| Error::Invalid("no mixture could be fitted: every covariance was singular".into()))?;
     l.model.meta.mixture = Some(MixtureMeta {
         components: best.mixture.components(),
         per_class: if labelled { best.counts } else { Vec::new() },
