@@ -33,16 +33,6 @@ from sklearn.mixture import GaussianMixture
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 from table import markdown  # noqa: E402
 
-p = argparse.ArgumentParser()
-p.add_argument("binary")
-p.add_argument("dir", nargs="?", default="target/quality")
-p.add_argument("--sets", default="")
-p.add_argument("--extra", "--extra-fit-args", dest="extra", action="append", default=[],
-               help="another tidemark fit configuration to compare, e.g. \"--kind mixture\" (repeatable)")
-p.add_argument("--json", default="", help="where to write the results [default: DIR/results.json]")
-p.add_argument("--md", default="", help="also write the markdown table to this file")
-args = p.parse_args()
-
 
 def auroc(id_ll, ood_ll):
     y = np.r_[np.zeros(len(id_ll)), np.ones(len(ood_ll))]
@@ -83,80 +73,96 @@ def sk_mixture(train, val):
     return gm.score_samples, f"K={k}, reg={reg:g} x mean var"
 
 
-def tidemark(binary, d, extra):
+def tidemark(binary, d, extra, run=subprocess.run):
+    """Default (or `extra`) fit of set folder d; its held-out log-likelihood per file name, wall seconds and
+    inspect metadata. `run` stands in for subprocess.run (a caller may add a timeout)."""
     model = os.path.join(d, "model" + ("_" + "_".join(x.strip("-") for x in extra) if extra else "") + ".safetensors")
     t = time.time()
-    subprocess.run([binary, "fit", os.path.join(d, "train.npy"), "--val", os.path.join(d, "val.npy"), "-o", model,
-                    "--force", "-q", *extra], check=True)
+    run([binary, "fit", os.path.join(d, "train.npy"), "--val", os.path.join(d, "val.npy"), "-o", model, "--force",
+         "-q", *extra], check=True)
     seconds = time.time() - t
-    meta = json.loads(subprocess.run([binary, "inspect", model, "--json"], check=True, capture_output=True,
-                                     text=True).stdout)
+    meta = json.loads(run([binary, "inspect", model, "--json"], check=True, capture_output=True, text=True).stdout)
 
     def ll(name):
         out = os.path.join(d, f"scores_{name}.npy")
-        subprocess.run([binary, "score", model, os.path.join(d, f"{name}.npy"), "-o", out, "--columns",
-                        "log_likelihood", "--force"], check=True, capture_output=True)
+        run([binary, "score", model, os.path.join(d, f"{name}.npy"), "-o", out, "--columns", "log_likelihood",
+             "--force"], check=True, capture_output=True)
         return np.load(out).reshape(-1)
     return ll, seconds, meta
 
 
-results = {}
-sets = [s for s in sorted(os.listdir(args.dir)) if os.path.isdir(os.path.join(args.dir, s))]
-if args.sets:
-    sets = [s for s in sets if s in args.sets.split(",")]
-for name in sets:
-    d = os.path.join(args.dir, name)
-    load = lambda f: np.load(os.path.join(d, f)).astype(np.float64)
-    train, val, test = load("train.npy"), load("val.npy"), load("test.npy")
-    oods = {f[4:-4]: load(f) for f in sorted(os.listdir(d)) if f.startswith("ood_")}
-    # Columns that do not vary in training (dead ReLU units) are left out,
-    # as tidemark leaves them out of its log-likelihood, so that every
-    # density is over the same features.
-    sd = train.std(0)
-    live = sd > 1e-6 * sd.max()
-    cut = lambda x: x[:, live]
-    row = {"rows": [len(train), len(val), len(test)], "dim": train.shape[1]}
-    if os.path.exists(os.path.join(d, "exact_test_ll.npy")):
-        et = np.load(os.path.join(d, "exact_test_ll.npy"))
-        row["exact"] = {"test_ll": float(et.mean())}
-        for k in oods:
-            f = os.path.join(d, f"exact_ood_{k}_ll.npy")
-            if os.path.exists(f):
-                row["exact"][f"auroc_{k}"] = auroc(et, np.load(f))
+def main():
+    p = argparse.ArgumentParser()
+    p.add_argument("binary")
+    p.add_argument("dir", nargs="?", default="target/quality")
+    p.add_argument("--sets", default="")
+    p.add_argument("--extra", "--extra-fit-args", dest="extra", action="append", default=[],
+                   help="another tidemark fit configuration to compare, e.g. \"--kind mixture\" (repeatable)")
+    p.add_argument("--json", default="", help="where to write the results [default: DIR/results.json]")
+    p.add_argument("--md", default="", help="also write the markdown table to this file")
+    args = p.parse_args()
 
-    def record(key, ll_of, **more):
-        t = ll_of(test)
-        row[key] = {"test_ll": float(np.mean(t)), **{f"auroc_{k}": auroc(t, ll_of(v)) for k, v in oods.items()}, **more}
+    results = {}
+    sets = [s for s in sorted(os.listdir(args.dir)) if os.path.isdir(os.path.join(args.dir, s))]
+    if args.sets:
+        sets = [s for s in sets if s in args.sets.split(",")]
+    for name in sets:
+        d = os.path.join(args.dir, name)
+        load = lambda f: np.load(os.path.join(d, f)).astype(np.float64)
+        train, val, test = load("train.npy"), load("val.npy"), load("test.npy")
+        oods = {f[4:-4]: load(f) for f in sorted(os.listdir(d)) if f.startswith("ood_")}
+        # Columns that do not vary in training (dead ReLU units) are left out,
+        # as tidemark leaves them out of its log-likelihood, so that every
+        # density is over the same features.
+        sd = train.std(0)
+        live = sd > 1e-6 * sd.max()
+        cut = lambda x: x[:, live]
+        row = {"rows": [len(train), len(val), len(test)], "dim": train.shape[1]}
+        if os.path.exists(os.path.join(d, "exact_test_ll.npy")):
+            et = np.load(os.path.join(d, "exact_test_ll.npy"))
+            row["exact"] = {"test_ll": float(et.mean())}
+            for k in oods:
+                f = os.path.join(d, f"exact_ood_{k}_ll.npy")
+                if os.path.exists(f):
+                    row["exact"][f"auroc_{k}"] = auroc(et, np.load(f))
 
-    row["live_features"] = int(live.sum())
-    t0 = time.time()
-    g = gaussian(cut(train))
-    if g is not None:
-        record("gaussian", lambda x: g(cut(x)), seconds=time.time() - t0)
-    t0 = time.time()
-    sk, how = sk_mixture(cut(train), cut(val))
-    record("sk_mixture", lambda x: sk(cut(x)), how=how, seconds=time.time() - t0)
-    for extra in [[]] + [e.split() for e in args.extra]:
-        ll, seconds, meta = tidemark(args.binary, d, extra)
-        files = {"test": ll("test"), **{k: ll(f"ood_{k}") for k in oods}}
-        key = "tidemark" + (" " + " ".join(extra) if extra else "")
-        row[key] = {
-            "test_ll": float(files["test"].mean()),
-            **{f"auroc_{k}": auroc(files["test"], files[k]) for k in oods},
-            "seconds": seconds,
-            "kind": meta["kind"],
-            "validation_nll": meta["training"]["best_validation_nll"],
-            "candidates": [(c["kind"], c["detail"], c["validation_nll"]) for c in meta["training"].get("candidates", [])],
-        }
-    results[name] = row
-    print(name, json.dumps(row, indent=1)[:2000], flush=True)
-    with open(args.json or os.path.join(args.dir, "results.json"), "w") as f:
-        json.dump(results, f, indent=1)
+        def record(key, ll_of, **more):
+            t = ll_of(test)
+            row[key] = {"test_ll": float(np.mean(t)), **{f"auroc_{k}": auroc(t, ll_of(v)) for k, v in oods.items()}, **more}
 
-keys = ["gaussian", "sk_mixture"] + ["tidemark" + (" " + e if e else "") for e in [""] + args.extra]
-lines = [markdown(results, keys), "", "Cells: mean held-out log-likelihood in nats per vector (AUROC against each "
-         + "outlier set); tidemark cells add the chosen kind and the fit's wall seconds."]
-print("\n" + "\n".join(lines))
-if args.md:
-    with open(args.md, "w") as f:
-        f.write("\n".join(lines) + "\n")
+        row["live_features"] = int(live.sum())
+        t0 = time.time()
+        g = gaussian(cut(train))
+        if g is not None:
+            record("gaussian", lambda x: g(cut(x)), seconds=time.time() - t0)
+        t0 = time.time()
+        sk, how = sk_mixture(cut(train), cut(val))
+        record("sk_mixture", lambda x: sk(cut(x)), how=how, seconds=time.time() - t0)
+        for extra in [[]] + [e.split() for e in args.extra]:
+            ll, seconds, meta = tidemark(args.binary, d, extra)
+            files = {"test": ll("test"), **{k: ll(f"ood_{k}") for k in oods}}
+            key = "tidemark" + (" " + " ".join(extra) if extra else "")
+            row[key] = {
+                "test_ll": float(files["test"].mean()),
+                **{f"auroc_{k}": auroc(files["test"], files[k]) for k in oods},
+                "seconds": seconds,
+                "kind": meta["kind"],
+                "validation_nll": meta["training"]["best_validation_nll"],
+                "candidates": [(c["kind"], c["detail"], c["validation_nll"]) for c in meta["training"].get("candidates", [])],
+            }
+        results[name] = row
+        print(name, json.dumps(row, indent=1)[:2000], flush=True)
+        with open(args.json or os.path.join(args.dir, "results.json"), "w") as f:
+            json.dump(results, f, indent=1)
+
+    keys = ["gaussian", "sk_mixture"] + ["tidemark" + (" " + e if e else "") for e in [""] + args.extra]
+    lines = [markdown(results, keys), "", "Cells: mean held-out log-likelihood in nats per vector (AUROC against each "
+             + "outlier set); tidemark cells add the chosen kind and the fit's wall seconds."]
+    print("\n" + "\n".join(lines))
+    if args.md:
+        with open(args.md, "w") as f:
+            f.write("\n".join(lines) + "\n")
+
+
+if __name__ == "__main__":
+    main()

@@ -10,8 +10,7 @@ default `fit` (no option but --threads) runs first on each set, from the
 same binary.
 
 Fitting, inspecting, scoring and AUROC are compare.py's own `tidemark` and
-`auroc` functions (taken from its source: compare.py runs its whole suite
-at import time, so it cannot be imported as a module). Each configuration
+`auroc` functions. Each configuration
 runs in its own folder of links to the set's files, so that two fits at
 once do not share score files.
 
@@ -30,42 +29,32 @@ Writes WORK_DIR/results.json after every fit; a configuration already measured t
 Tables: python3 scripts/quality/long_grid.py --tables RESULTS.json [MORE.json ...]   (markdown)
 """
 import argparse
-import ast
 import datetime as dt
 import json
 import os
 import queue
-import subprocess as _subprocess
+import subprocess
 import sys
 import threading
 import time
-import types
 
 import numpy as np
 
 HERE = os.path.dirname(os.path.abspath(__file__))
+sys.path.insert(0, HERE)
+from compare import auroc, tidemark  # noqa: E402
 
 
-def from_compare(names, stop_at):
-    """compare.py's functions `names`, executed from its source without running its suite.
-    Their subprocess calls get a timeout that ends at stop_at (epoch seconds), if given."""
-    src = open(os.path.join(HERE, "compare.py")).read()
-    tree = ast.parse(src)
-    keep = [n for n in tree.body if isinstance(n, (ast.Import, ast.ImportFrom)) and not
-            (isinstance(n, ast.ImportFrom) and n.module == "table")]
-    keep += [n for n in tree.body if isinstance(n, ast.FunctionDef) and n.name in names]
-    ns = {"__name__": "compare_functions"}
-    exec(compile(ast.Module(body=keep, type_ignores=[]), "compare.py", "exec"), ns)
-
+def with_deadline(stop_at):
+    """subprocess.run, with a timeout that ends at stop_at (epoch seconds) if given."""
     def run(*a, **k):
         if stop_at is not None:
             left = stop_at - time.time()
             if left <= 0:
-                raise _subprocess.TimeoutExpired(a[0] if a else k.get("args"), 0)
+                raise subprocess.TimeoutExpired(a[0] if a else k.get("args"), 0)
             k.setdefault("timeout", left)
-        return _subprocess.run(*a, **k)
-    ns["subprocess"] = types.SimpleNamespace(run=run, PIPE=_subprocess.PIPE)
-    return [ns[n] for n in names]
+        return subprocess.run(*a, **k)
+    return run
 
 
 def flow_grid(dims):
@@ -140,7 +129,7 @@ def main():
     p.add_argument("--stop-at", default="", help="UTC time (ISO) after which nothing new starts and running fits are stopped")
     args = p.parse_args()
     stop_at = dt.datetime.fromisoformat(args.stop_at).replace(tzinfo=dt.timezone.utc).timestamp() if args.stop_at else None
-    tidemark, auroc = from_compare(["tidemark", "auroc"], stop_at)
+    run = with_deadline(stop_at)
     os.makedirs(args.work_dir, exist_ok=True)
     out_json = os.path.join(args.work_dir, "results.json")
     results = json.load(open(out_json)) if os.path.exists(out_json) else {}
@@ -169,7 +158,7 @@ def main():
         oods = [f[4:-4] for f in files if f.startswith("ood_")]
         rec = {"options": " ".join(extra), "started": dt.datetime.now(dt.timezone.utc).strftime("%H:%M:%S")}
         try:
-            ll, seconds, meta = tidemark(args.binary, run_dir, extra)
+            ll, seconds, meta = tidemark(args.binary, run_dir, extra, run)
             scores = {"test": ll("test"), **{k: ll(f"ood_{k}") for k in oods}}
             tr = meta.get("training", {})
             rec.update({
@@ -182,7 +171,7 @@ def main():
                 "candidates": [(c.get("kind"), c.get("detail"), c.get("validation_nll")) for c in tr.get("candidates", [])],
                 "chosen_detail": tr.get("detail", meta.get("detail")),
             })
-        except _subprocess.TimeoutExpired:
+        except subprocess.TimeoutExpired:
             rec["error"] = "stopped at --stop-at"
         except Exception as e:  # a failed configuration is recorded, not fatal
             rec["error"] = f"{type(e).__name__}: {e}"[:500]
