@@ -105,7 +105,7 @@ pub(crate) struct FitArgs {
     /// Wall-clock bound of the search over densities, e.g. 20m or 8h [default: 5 x the projected time of one flow at the settings table, at least 1 minute].
     #[arg(long)]
     budget: Option<Budget>,
-    /// Components of the mixture kind [default: chosen on the validation rows among 1, 2, 4, ... 64].
+    /// Components of the mixture kind [default: chosen on the validation rows among 1, 2, 4, ... 64, then the counts halfway to the best one's neighbours].
     #[arg(long)]
     components: Option<usize>,
     /// Held-out in-distribution rows for validation and early stopping (instead of a split).

@@ -1,6 +1,7 @@
 //! Fitting the mixture kind: EM on the whitened training rows for a
-//! doubling number of components, each with a ridge, all chosen by the
-//! log-likelihood of the validation rows. With labels, each class gets its
+//! doubling number of components, then the counts halfway to the best
+//! one's neighbours, each with a ridge, all chosen by the log-likelihood of
+//! the validation rows. With labels, each class gets its
 //! own mixture on its own rows (up to the same number of components), and
 //! the model is their union weighted by the class priors; the choice is by
 //! the validation rows' log-likelihood under that union, which needs no
