@@ -319,12 +319,15 @@ pub fn em(
 
 /// Hard responsibilities from seeded k-means++ seeding followed by a few
 /// rounds of Lloyd's algorithm: each row belongs wholly to its nearest centre.
-pub fn kmeans_start(u: &[f64], rows: usize, d: usize, k: usize, seed: u64) -> Vec<f64> {
+/// Distances weigh column j by `w[j]` (squared distance sum_j w_j (a_j - b_j)^2).
+pub fn kmeans_start(u: &[f64], rows: usize, d: usize, w: &[f64], k: usize, seed: u64) -> Vec<f64> {
     let mut rng = StdRng::seed_from_u64(seed);
     let mut centres: Vec<f64> = Vec::with_capacity(k * d);
     let first = rng.random_range(0..rows);
     centres.extend_from_slice(&u[first * d..(first + 1) * d]);
-    let sq = |r: usize, c: &[f64]| -> f64 { u[r * d..(r + 1) * d].iter().zip(c).map(|(a, b)| (a - b) * (a - b)).sum() };
+    let sq = |r: usize, c: &[f64]| -> f64 {
+        u[r * d..(r + 1) * d].iter().zip(c).zip(w).map(|((a, b), w)| w * (a - b) * (a - b)).sum()
+    };
     let mut nearest: Vec<f64> = (0..rows).map(|r| sq(r, &centres[..d])).collect();
     while centres.len() < k * d {
         let total: f64 = nearest.iter().sum();
@@ -348,7 +351,7 @@ pub fn kmeans_start(u: &[f64], rows: usize, d: usize, k: usize, seed: u64) -> Ve
     }
     let mut assign = vec![0usize; rows];
     for _ in 0..LLOYD_ROUNDS {
-        assign = nearest_centres(u, rows, d, &centres);
+        assign = nearest_centres(u, rows, d, w, &centres);
         let mut sums = vec![0.0f64; k * d];
         let mut counts = vec![0usize; k];
         for (r, &c) in assign.iter().enumerate() {
@@ -375,12 +378,15 @@ pub fn kmeans_start(u: &[f64], rows: usize, d: usize, k: usize, seed: u64) -> Ve
 /// Lloyd rounds after seeding: enough to settle the start; EM does the rest.
 const LLOYD_ROUNDS: usize = 10;
 
-/// Index of the nearest centre of every row (||u||^2 - 2 u.c + ||c||^2).
-fn nearest_centres(u: &[f64], rows: usize, d: usize, centres: &[f64]) -> Vec<usize> {
+/// Index of the nearest centre of every row under the column weights `w`
+/// (||u||_w^2 - 2 u.(w c) + ||c||_w^2, the first term the same for all).
+fn nearest_centres(u: &[f64], rows: usize, d: usize, w: &[f64], centres: &[f64]) -> Vec<usize> {
     let k = centres.len() / d;
-    let norms: Vec<f64> = centres.chunks(d).map(|c| c.iter().map(|v| v * v).sum()).collect();
+    let weighted: Vec<f64> = centres.chunks(d).flat_map(|c| c.iter().zip(w).map(|(v, w)| v * w)).collect();
+    let norms: Vec<f64> =
+        centres.chunks(d).zip(weighted.chunks(d)).map(|(c, wc)| c.iter().zip(wc).map(|(a, b)| a * b).sum()).collect();
     let mut dots = vec![0.0f64; rows * k];
-    matmul(&mut dots, k, false, View::rows(u, rows, d, d), View::transposed(centres, k, d));
+    matmul(&mut dots, k, false, View::rows(u, rows, d, d), View::transposed(&weighted, k, d));
     (0..rows)
         .map(|r| {
             (0..k)
@@ -473,7 +479,7 @@ mod tests {
                 [c + a, 0.5 * b]
             })
             .collect();
-        let init = kmeans_start(&u, rows, 2, 2, 0);
+        let init = kmeans_start(&u, rows, 2, &[1.0, 1.0], 2, 0);
         let (fitted, report) = em(&u, rows, 2, &init, 1e-6, 100, 1e-6).unwrap();
         assert!(report.converged);
         let m = fitted.mixture;

@@ -111,6 +111,42 @@ fn mixture_kind_beats_one_gaussian_on_clustered_rows_and_round_trips() {
     assert_eq!(back.evaluate(&x, 1).log_likelihood, mixture.evaluate(&x, 1).log_likelihood);
 }
 
+/// Six well-separated Gaussian clusters: the doubling ladder (1, 2, 4, 8,
+/// ...) holds no 6, and the counts tried halfway between its steps find
+/// the true number of components.
+#[test]
+fn mixture_finds_a_component_count_between_powers_of_two() {
+    use rand::{rngs::StdRng, SeedableRng};
+    use rand_distr::{Distribution, StandardNormal};
+    let mut rng = StdRng::seed_from_u64(8);
+    let (d, n) = (12, 1200);
+    // Cluster c sits 12 standard deviations out along +-axis c / 2.
+    let data: Vec<f32> = (0..n)
+        .flat_map(|r| {
+            let c = r % 6;
+            let v: Vec<f32> = (0..d)
+                .map(|j| {
+                    let at = if j == c / 2 {
+                        if c % 2 == 0 {
+                            12.0
+                        } else {
+                            -12.0
+                        }
+                    } else {
+                        0.0
+                    };
+                    <StandardNormal as Distribution<f32>>::sample(&StandardNormal, &mut rng) + at
+                })
+                .collect();
+            v
+        })
+        .collect();
+    let x = Dataset::in_memory(tidemark::data::Matrix::new(n, d, data));
+    let opts = FitOptions { quiet: true, threads: Some(1), kind: Some(Kind::Mixture), ..FitOptions::default() };
+    let model = fit(&x, None, &opts).unwrap();
+    assert_eq!(model.meta.mixture.as_ref().unwrap().components, 6);
+}
+
 /// A mixture model file whose tensors were altered (and its checksum
 /// dropped, as in files from before checksums) is refused with a message
 /// naming what is wrong, never a panic: weights that are not

@@ -26,6 +26,10 @@ const RIDGE_GRID: [f64; 7] = [0.0, 1e-3, 1e-2, 3e-2, 0.1, 0.3, 1.0];
 /// log-likelihood gains less than [`EM_TOL`] (common practice).
 const EM_ROUNDS: usize = 100;
 const EM_TOL: f64 = 1e-3;
+/// k-means++ starts EM runs from for each component count: one start can
+/// merge two clusters and split another, and EM rarely moves out of that
+/// (several starts, best by training likelihood: common practice).
+const EM_STARTS: usize = 3;
 /// Most components tried.
 const MAX_COMPONENTS: usize = 64;
 /// Fewest training rows per component, and per dimension of each
@@ -129,15 +133,23 @@ fn groups(rows: &Rows, l: &Learned, train: &[usize]) -> Result<Vec<Group>> {
     Ok(out)
 }
 
-/// EM for every group from a seeded k-means++ start with `counts[i]`
-/// components; `None` if any covariance stopped being positive definite.
-fn em_groups(groups: &[Group], d: usize, counts: &[usize], seed: u64) -> Option<Vec<(Fitted, EmReport)>> {
+/// EM for every group with `counts[i]` components, from [`EM_STARTS`]
+/// seeded k-means++ starts, keeping the start with the best training
+/// log-likelihood; `None` if a group's covariances stopped being positive
+/// definite from every start.
+fn em_groups(groups: &[Group], d: usize, w: &[f64], counts: &[usize], seed: u64) -> Option<Vec<(Fitted, EmReport)>> {
     let one = groups.len() == 1;
     (groups.iter().zip(counts).enumerate())
         .map(|(i, (g, &k))| {
-            // Without classes the seed is the one earlier builds used.
+            // Without classes the first seed is the one earlier builds used.
             let seed = if one { seed } else { derive(seed, 11, i as u64) };
-            em(&g.u, g.n, d, &kmeans_start(&g.u, g.n, d, k, seed), EM_RIDGE, EM_ROUNDS, EM_TOL)
+            let starts = if k == 1 { 1 } else { EM_STARTS };
+            (0..starts)
+                .filter_map(|s| {
+                    let seed = if s == 0 { seed } else { derive(seed, 12, s as u64) };
+                    em(&g.u, g.n, d, &kmeans_start(&g.u, g.n, d, w, k, seed), EM_RIDGE, EM_ROUNDS, EM_TOL)
+                })
+                .reduce(|a, b| if b.1.mean_log_likelihood > a.1.mean_log_likelihood { b } else { a })
         })
         .collect()
 }
@@ -185,6 +197,8 @@ struct Search<'a> {
     nv: usize,
     /// The whitening's log-determinant, to report input-space NLL.
     log_det: f64,
+    /// Column weights of the k-means starts' distances (see [`start_weights`]).
+    start_weights: Vec<f64>,
     asked: Option<usize>,
     seed: u64,
     quiet: bool,
@@ -206,7 +220,8 @@ impl Search<'_> {
             return None;
         }
         self.seen.push(counts.clone());
-        let Some(fits) = em_groups(self.groups, self.d, &counts, derive(self.seed, 10, k as u64)) else {
+        let Some(fits) = em_groups(self.groups, self.d, &self.start_weights, &counts, derive(self.seed, 10, k as u64))
+        else {
             if !self.quiet {
                 note(format!("mixture of {k}: a covariance stopped being positive definite; skipped"));
             }
@@ -274,6 +289,15 @@ impl Search<'_> {
     }
 }
 
+/// Column weights that make the k-means starts measure distance in the
+/// input space (rotated, not rescaled: the variance each whitened column
+/// had), as clustering the raw features does. In whitened space every
+/// low-variance direction weighs as much as a cluster-separating one, and
+/// the starts were measured to merge well-separated clusters there.
+fn start_weights(l: &Learned) -> Vec<f64> {
+    l.model.pre.scale.iter().map(|s| s * s).collect()
+}
+
 /// Counts halfway (geometrically, about) between the best count and its
 /// doubling neighbours, which the doubling skipped: 6 and 12 around 8.
 fn between(best: usize) -> [usize; 2] {
@@ -293,6 +317,7 @@ pub(super) fn fit_mixture(rows: &Rows, l: &mut Learned, asked: Option<usize>, qu
         v: whitened(l, rows.val_data, &rows.val),
         nv: rows.val.len(),
         log_det: l.model.pre.log_det(),
+        start_weights: start_weights(l),
         asked,
         seed: l.settings.seed,
         quiet,
