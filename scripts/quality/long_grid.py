@@ -125,7 +125,8 @@ def main():
     p.add_argument("--threads", type=int, default=1)
     p.add_argument("--max-flows", type=int, default=None, help="flows in the first phase per set, 0 for none [default: all 36]")
     p.add_argument("--also", action="append", default=[],
-                   help="a further --no-search configuration, fitted after the flow grid, e.g. \"--flow-dims 22\" (repeatable)")
+                   help="a further --no-search configuration, fitted after the flow grid, e.g. \"--flow-dims 22\"; "
+                        "{all} stands for the set's live feature count (repeatable)")
     p.add_argument("--no-followups", action="store_true", help="skip the --mixing lu / --coupling spline follow-ups")
     p.add_argument("--stop-at", default="", help="UTC time (ISO) after which nothing new starts and running fits are stopped")
     args = p.parse_args()
@@ -212,7 +213,7 @@ def main():
         if args.max_flows is not None:
             flows = flows[:args.max_flows]
         phase1 += [(" ".join(f[f.index("--hidden"):]), f + th) for f in flows]
-        phase1 += [(a, ["--no-search"] + a.split() + th) for a in args.also]
+        phase1 += [(a, ["--no-search"] + a.replace("{all}", str(live)).split() + th) for a in args.also]
         done = []
         events = []
         for i, (key, extra) in enumerate(phase1):
