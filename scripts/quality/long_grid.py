@@ -27,7 +27,8 @@ the first flow phase, most promising first):
 Run: python3 scripts/quality/long_grid.py TIDEMARK_BIN SETS_DIR WORK_DIR [--sets digits,curved]
          [--jobs 2] [--threads 1] [--max-flows N] [--stop-at 2026-12-04T01:05]
 Writes WORK_DIR/results.json after every fit; a configuration already measured there is not fitted again.
-Tables: python3 scripts/quality/long_grid.py --tables RESULTS.json [MORE.json ...]   (markdown)
+Tables: python3 scripts/quality/long_grid.py --tables RESULTS.json [MORE.json ...]   (markdown; the files' configurations
+        merge per set, a later file winning for the same configuration)
 """
 import argparse
 import datetime as dt
@@ -111,8 +112,12 @@ def tables(results):
 def main():
     if len(sys.argv) > 2 and sys.argv[1] == "--tables":
         rows = {}
-        for f in sys.argv[2:]:
-            rows.update(json.load(open(f)))
+        for f in sys.argv[2:]:  # configurations merge per set; a later file wins for the same configuration
+            for name, row in json.load(open(f)).items():
+                into = rows.setdefault(name, {})
+                configs = {**into.get("configs", {}), **row.get("configs", {})}
+                into.update(row)
+                into["configs"] = configs
         per_set, summary = tables(rows)
         print(per_set + "\n" + summary)
         return
