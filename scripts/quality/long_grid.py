@@ -131,7 +131,7 @@ def main():
     p.add_argument("--max-flows", type=int, default=None, help="flows in the first phase per set, 0 for none [default: all 36]")
     p.add_argument("--also", action="append", default=[],
                    help="a further --no-search configuration, fitted after the flow grid, e.g. \"--flow-dims 22\"; "
-                        "{all} stands for the set's live feature count (repeatable)")
+                        "{all} stands for the dimensions a flow over all of them models (repeatable)")
     p.add_argument("--no-followups", action="store_true", help="skip the --mixing lu / --coupling spline follow-ups")
     p.add_argument("--stop-at", default="", help="UTC time (ISO) after which nothing new starts and running fits are stopped")
     args = p.parse_args()
@@ -206,7 +206,12 @@ def main():
         set_dir = os.path.join(args.sets_dir, name)
         train = np.load(os.path.join(set_dir, "train.npy"))
         sd = train.std(0)
-        live = int((sd > 1e-6 * sd.max()).sum())  # as compare.py and tidemark count live features
+        live_cols = sd > 1e-6 * sd.max()  # as compare.py and tidemark count live features
+        live = int(live_cols.sum())
+        # Directions with variance: what a flow over every dimension models (tidemark leaves out principal
+        # directions with no training variance, e.g. the one a LayerNorm's zero-sum constraint removes).
+        eig = np.linalg.eigvalsh(np.cov(train[:, live_cols].astype(np.float64), rowvar=False))
+        modelled = int((eig > 1e-12 * eig.max()).sum())
         with lock:
             results.setdefault(name, {}).update({"rows": [len(train), len(np.load(os.path.join(set_dir, "val.npy"))),
                                                           len(np.load(os.path.join(set_dir, "test.npy")))],
@@ -214,11 +219,11 @@ def main():
         th = ["--threads", str(args.threads)]
         phase1 = [("default", th), ("--kind mixture", ["--no-search", "--kind", "mixture"] + th),
                   ("--kind gaussian", ["--no-search", "--kind", "gaussian"] + th)]
-        flows = flow_grid(live)
+        flows = flow_grid(modelled)
         if args.max_flows is not None:
             flows = flows[:args.max_flows]
         phase1 += [(" ".join(f[f.index("--hidden"):]), f + th) for f in flows]
-        phase1 += [(a, ["--no-search"] + a.replace("{all}", str(live)).split() + th) for a in args.also]
+        phase1 += [(a, ["--no-search"] + a.replace("{all}", str(modelled)).split() + th) for a in args.also]
         done = []
         events = []
         for i, (key, extra) in enumerate(phase1):
