@@ -246,6 +246,8 @@ def main():
             return
         _, best_key, best_extra = min(affine)
         for j, (tag, more) in enumerate([("--mixing lu", ["--mixing", "lu"]), ("--coupling spline", ["--coupling", "spline"])]):
+            if tag in best_key:
+                continue  # the best already has it
             submit((idx, 1, j), lambda tag=tag, more=more: run_config(name, set_dir, best_extra + more, best_key + " " + tag))
 
     threads = [threading.Thread(target=worker, daemon=True) for _ in range(args.jobs)]
