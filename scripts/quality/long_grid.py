@@ -6,14 +6,13 @@ val.npy, seed 0), score test.npy and every ood_*.npy, and record per
 configuration the validation NLL the model reports, the mean held-out
 log-likelihood, the likelihood AUROC per outlier set and the wall seconds.
 The grid's best is the configuration with the best validation NLL (--also
-configurations included since 2026-12-04's second run; reruns with another --seed never). The
-default `fit` (no option but --threads) runs first on each set, from the
-same binary.
+configurations included since 2026-12-04's second run; reruns with another
+--seed never). The default `fit` (no option but --threads) runs first on
+each set, from the same binary.
 
 Fitting, inspecting, scoring and AUROC are compare.py's own `tidemark` and
-`auroc` functions. Each configuration
-runs in its own folder of links to the set's files, so that two fits at
-once do not share score files.
+`auroc` functions. Each configuration runs in its own folder of links to the
+set's files, so that two fits at once do not share score files.
 
 Grid, per set, in this order (at most --jobs fits at once; --max-flows cuts
 the first flow phase, most promising first):

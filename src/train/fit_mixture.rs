@@ -58,15 +58,12 @@ pub(super) fn component_counts(rows: usize, dim: usize, asked: Option<usize>) ->
     if let Some(k) = asked {
         return vec![k];
     }
-    let per = rows_per_component(dim);
-    std::iter::successors(Some(1usize), |k| Some(k * 2))
-        .take_while(|&k| k == 1 || (k <= MAX_COMPONENTS && rows / k >= per))
-        .collect()
+    std::iter::successors(Some(1usize), |k| Some(k * 2)).take_while(|&k| k == 1 || room_for(rows, dim, k)).collect()
 }
 
-/// Fewest training rows each component needs.
-fn rows_per_component(dim: usize) -> usize {
-    (MIN_ROWS_PER_COMPONENT_DIM * dim).max(MIN_ROWS_PER_COMPONENT)
+/// Whether `rows` training rows allow `k` components of dimension `dim`.
+fn room_for(rows: usize, dim: usize, k: usize) -> bool {
+    k <= MAX_COMPONENTS && rows / k >= (MIN_ROWS_PER_COMPONENT_DIM * dim).max(MIN_ROWS_PER_COMPONENT)
 }
 
 /// Whitened rows `idx` of `data`, in f64, row-major.
@@ -341,8 +338,7 @@ pub(super) fn fit_mixture(rows: &Rows, l: &mut Learned, asked: Option<usize>, qu
     }
     if asked.is_none() {
         if let Some(k) = search.best.as_ref().map(|b| b.tried.components) {
-            let allowed = |c: usize| c > 1 && c <= MAX_COMPONENTS && (largest / c >= rows_per_component(d));
-            for c in between(k).into_iter().filter(|&c| allowed(c)) {
+            for c in between(k).into_iter().filter(|&c| c > 1 && room_for(largest, d, c)) {
                 search.try_count(c);
             }
         }
