@@ -89,6 +89,14 @@ pub struct Candidate {
     /// Validation NLL after each stage of the flows' successive halving.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub stages: Vec<f64>,
+    /// The stage its first entry in `stages` belongs to: 0, or later for a
+    /// flow of the local round that follows the first round.
+    #[serde(default, skip_serializing_if = "is_zero")]
+    pub first_stage: usize,
+}
+
+fn is_zero(n: &usize) -> bool {
+    *n == 0
 }
 
 /// Mean and standard deviation of a statistic over the training rows.

@@ -277,7 +277,7 @@ fn leaderboard(candidates: &[Candidate]) -> Result<String> {
 /// Validation NLL per round of the successive halving, one line per flow;
 /// the kinds fitted once are drawn flat across the rounds.
 fn rounds(candidates: &[Candidate], raced: &[&Candidate]) -> Result<String> {
-    let last = raced.iter().map(|c| c.stages.len()).max().unwrap_or(1).max(2) as u32;
+    let last = raced.iter().map(|c| c.first_stage + c.stages.len()).max().unwrap_or(1).max(2) as u32;
     let flat: Vec<&Candidate> =
         candidates.iter().filter(|c| c.stages.is_empty() && c.validation_nll.is_finite()).collect();
     let values: Vec<f64> = raced
@@ -311,7 +311,7 @@ fn rounds(candidates: &[Candidate], raced: &[&Candidate]) -> Result<String> {
             .draw()
             .map_err(plot_error)?;
         for (i, c) in raced.iter().enumerate() {
-            let pts = c.stages.iter().enumerate().map(|(r, &v)| (r as u32 + 1, v));
+            let pts = c.stages.iter().enumerate().map(|(r, &v)| ((c.first_stage + r) as u32 + 1, v));
             let width = if c.chosen { 3 } else { 1 };
             chart.draw_series(LineSeries::new(pts.clone(), color(i).stroke_width(width))).map_err(plot_error)?;
             // A flow halved out after the first round is a single point.
@@ -328,7 +328,8 @@ fn rounds(candidates: &[Candidate], raced: &[&Candidate]) -> Result<String> {
     let items: Vec<(&str, RGBColor)> = names.iter().enumerate().map(|(i, n)| (n.as_str(), color(i))).collect();
     Ok(format!(
         "<figure>{svg}{}</figure>\n<p class=\"note\">Each flow's best validation NLL after each round; the better half \
-         of each round trains on. Kinds fitted once are flat lines; the chosen density is drawn thick. Lower is better.</p>\n",
+         of each round trains on. Flows that start at round 4 race around the first winner on a longer schedule. \
+         Kinds fitted once are flat lines; the chosen density is drawn thick. Lower is better.</p>\n",
         legend(&items)
     ))
 }
@@ -557,6 +558,7 @@ mod tests {
             epochs: 10 * stages.len(),
             stopped: "all epochs".into(),
             stages: stages.to_vec(),
+            first_stage: 0,
         }
     }
 

@@ -29,6 +29,7 @@ mod fit_mixture;
 mod log;
 mod options;
 mod progress;
+mod race;
 mod select;
 mod start;
 use log::write_log;

@@ -1,0 +1,569 @@
+//! The flows of the search, raced by successive halving on the validation
+//! rows: a first round over configurations spread around the settings
+//! table, then a local round around its winner on a longer schedule. The
+//! whole race can be checkpointed and resumed.
+
+use super::checkpoint::{absolute, same_inputs, SEARCH_KEY};
+use super::{write_log, FitOptions, LogEntry, Pause, Run, Settings, Staged, TrainState};
+use crate::error::{Error, Result};
+use crate::flow::Mixing;
+use crate::model::{Extras, Kind, Model};
+use crate::output::note;
+use std::path::Path;
+use std::time::{Duration, Instant};
+
+/// One flow configuration of the search: a name and the options that set it.
+pub(super) struct FlowConfig {
+    pub(super) name: String,
+    opts: FitOptions,
+}
+
+/// The flows compared, around the settings table for this data size
+/// (`table`): every modelled-dimension choice, lighter and heavier
+/// regularisation, a wider and a deeper conditioner, LU mixing, all three
+/// of a wider and deeper conditioner with LU mixing, and spline couplings.
+/// Configurations that come out the same are tried once.
+fn flow_configs(opts: &FitOptions, table: &Settings, dims: usize) -> Vec<FlowConfig> {
+    let base = FitOptions { kind: Some(Kind::Flow), quiet: true, ..opts.clone() };
+    let set = |f: &dyn Fn(&mut FitOptions)| {
+        let mut o = FitOptions {
+            flow_dims: Some(dims),
+            layers: Some(table.layers),
+            hidden: Some(table.hidden),
+            dropout: Some(table.dropout),
+            noise: Some(table.noise),
+            ..base.clone()
+        };
+        f(&mut o);
+        o
+    };
+    let wide = (2 * table.hidden).min(1024);
+    let wider = (4 * table.hidden).min(512).max(wide);
+    let configs = vec![
+        ("settings table", set(&|o| o.flow_dims = Some(table.flow_dims))),
+        ("all dims", set(&|_| ())),
+        ("two thirds of the dims", set(&|o| o.flow_dims = Some((2 * dims).div_ceil(3).max(2.min(dims))))),
+        (
+            "wide, light regularisation",
+            set(&|o| {
+                o.hidden = Some(wide);
+                o.dropout = Some(0.05);
+                o.noise = Some(0.05);
+            }),
+        ),
+        ("no dropout or noise", set(&|o| (o.dropout, o.noise) = (Some(0.0), Some(0.0)))),
+        (
+            "heavier regularisation",
+            set(&|o| {
+                o.dropout = Some((table.dropout + REGULARISATION_STEP).min(MAX_DROPOUT));
+                o.noise = Some(table.noise + REGULARISATION_STEP);
+                o.weight_decay = Some(1e-4);
+            }),
+        ),
+        ("deeper (10 layers)", set(&|o| o.layers = Some(10))),
+        ("LU mixing", set(&|o| o.mixing = Some(Mixing::Lu))),
+        (
+            "wider and deeper, LU mixing",
+            set(&|o| {
+                o.hidden = Some(wider);
+                o.layers = Some(10);
+                o.mixing = Some(Mixing::Lu);
+            }),
+        ),
+        ("spline couplings", set(&|o| o.coupling = Some(super::CouplingKind::Spline))),
+    ];
+    distinct(configs.into_iter().filter(|(_, o)| o.flow_dims.is_none_or(|k| k <= dims)))
+}
+
+/// Named configurations, each tried once: a later one that comes out the
+/// same as an earlier one is dropped.
+fn distinct(configs: impl Iterator<Item = (impl Into<String>, FitOptions)>) -> Vec<FlowConfig> {
+    let key = |o: &FitOptions| {
+        format!(
+            "{:?}",
+            (o.flow_dims, o.layers, o.hidden, o.dropout, o.noise, o.weight_decay, o.mixing, o.coupling, o.epochs)
+        )
+    };
+    let mut seen = std::collections::HashSet::new();
+    configs
+        .filter(|(_, o)| seen.insert(key(o)))
+        .map(|(name, opts)| FlowConfig { name: name.into(), opts })
+        .collect()
+}
+
+/// One step of dropout and of input noise (whitened units) between
+/// neighbouring configurations.
+const REGULARISATION_STEP: f64 = 0.1;
+const MAX_DROPOUT: f64 = 0.5;
+
+/// The local round trains this many times the table's epochs: a flow that
+/// still improved at the first round's last epoch gains from a longer
+/// cosine schedule, and early stopping ends the others as before.
+const LOCAL_SCHEDULE: usize = 2;
+
+/// The local round's configurations: the winner of the first round (its
+/// `settings` as resolved, its `opts` as given) with one regularisation
+/// step either way (dropout and input noise, weight decay at least 1e-4 on
+/// the way up) crossed with either mixing (permutation or LU), all on the
+/// longer schedule, the winner's own settings included. The first round
+/// samples each setting coarsely around the table; this round searches
+/// the winner's neighbourhood, as one tuning by hand would next.
+fn local_configs(winner: &FlowConfig, settings: &Settings) -> Vec<FlowConfig> {
+    let epochs = LOCAL_SCHEDULE * settings.epochs;
+    let other = match settings.mixing {
+        Mixing::Permutation => Mixing::Lu,
+        Mixing::Lu => Mixing::Permutation,
+    };
+    let mixing_name = |m: Mixing| match m {
+        Mixing::Permutation => "permutation mixing",
+        Mixing::Lu => "LU mixing",
+    };
+    let step = |up: f64| {
+        let dropout = (settings.dropout + up).clamp(0.0, MAX_DROPOUT);
+        let noise = (settings.noise + up).max(0.0);
+        let decay = if up > 0.0 { settings.weight_decay.max(1e-4) } else { settings.weight_decay };
+        (dropout, noise, decay)
+    };
+    let mut configs = Vec::new();
+    for (up, change) in [(0.0, None), (REGULARISATION_STEP, Some("more")), (-REGULARISATION_STEP, Some("less"))] {
+        for mixing in [settings.mixing, other] {
+            let (dropout, noise, decay) = step(up);
+            let opts = FitOptions {
+                dropout: Some(dropout),
+                noise: Some(noise),
+                weight_decay: Some(decay),
+                mixing: Some(mixing),
+                epochs: Some(epochs),
+                ..winner.opts.clone()
+            };
+            let mut what: Vec<String> = change.map(|c| format!("{c} regularisation")).into_iter().collect();
+            if mixing != settings.mixing {
+                what.push(mixing_name(mixing).to_string());
+            }
+            what.push(format!("{epochs} epochs"));
+            configs.push((format!("{} / {}", winner.name, what.join(", ")), opts));
+        }
+    }
+    distinct(configs.into_iter())
+}
+
+/// Most configurations of the local round: three regularisation levels
+/// times two mixings.
+const LOCAL_MOST: usize = 6;
+
+/// The default search budget: this many times the projected time of the
+/// whole race when no run stops early, at least a minute. The projection
+/// takes the settings table's flow's seconds per epoch from its first stage
+/// and scales it by every flow's relative cost per epoch
+/// ([`relative_cost`]) and by the epochs successive halving gives each
+/// round; the slack covers validation passes and a loaded machine.
+pub(super) const BUDGET_SLACK: f64 = 1.5;
+
+/// Time per update of a spline coupling against an affine one with the
+/// same conditioner: 8-13x (D = 384 and 64; DEVELOPERS.md).
+const SPLINE_COST: f64 = 10.0;
+
+/// A flow's time per epoch relative to others: its parameter count, times
+/// [`SPLINE_COST`] for spline couplings.
+fn relative_cost(r: &Racer) -> f64 {
+    let spline = r.flow.settings().coupling != crate::flow::Coupling::Affine;
+    r.flow.parameters() as f64 * if spline { SPLINE_COST } else { 1.0 }
+}
+
+/// The default budget once the table's flow (`table`) has run its first
+/// stage: its seconds per epoch times the race's projected epochs, both
+/// rounds, each weighted by the first round's mean relative cost per epoch
+/// (the better half, and the local round's flows, assumed to cost as much
+/// as all of them on average).
+fn default_budget(table: &Racer, racers: &[Racer], epochs: usize) -> f64 {
+    let per_epoch = table.flow.seconds() / table.flow.epochs().max(1) as f64;
+    let mean_cost = racers.iter().map(relative_cost).sum::<f64>() / racers.len() as f64 / relative_cost(table);
+    let projected = race_epochs(racers.len(), &stages(0, epochs)) + race_epochs(LOCAL_MOST, &stages(ROUNDS, epochs));
+    (BUDGET_SLACK * per_epoch * mean_cost * projected as f64).max(60.0)
+}
+
+/// Epochs that successive halving trains over all `n` flows when none stops
+/// early: every flow to the first stage, the better half on to the second, ...
+fn race_epochs(n: usize, stages: &[usize; ROUNDS]) -> usize {
+    let (mut alive, mut before, mut epochs) = (n, 0, 0);
+    for &until in stages {
+        epochs += alive * (until - before);
+        (alive, before) = (alive.div_ceil(2), until);
+    }
+    epochs
+}
+
+/// Rounds of halving in each race (the first and the local one).
+const ROUNDS: usize = 3;
+
+/// The epochs each stage of the race that `round` belongs to trains to,
+/// for a table of `epochs`: a quarter, half and all of the schedule, which
+/// the local round makes [`LOCAL_SCHEDULE`] times as long.
+fn stages(round: usize, epochs: usize) -> [usize; ROUNDS] {
+    let total = if round < ROUNDS { epochs } else { LOCAL_SCHEDULE * epochs };
+    [total.div_ceil(4), total.div_ceil(2), total]
+}
+
+/// A flow of the search and how far it got.
+pub(super) struct Racer {
+    pub(super) config: FlowConfig,
+    pub(super) flow: Staged,
+    /// Best validation NLL after each stage it ran.
+    pub(super) stages: Vec<f64>,
+    /// The stage it started at: 0, or [`ROUNDS`] for the local round.
+    pub(super) first_stage: usize,
+    /// Why it left the race, once it has.
+    pub(super) stopped: Option<String>,
+}
+
+/// Where the race stands: the stage (the local round's stages follow the
+/// first round's), the flows still racing, and which of them trains next.
+#[derive(Clone, serde::Serialize, serde::Deserialize)]
+struct Position {
+    round: usize,
+    alive: Vec<usize>,
+    /// Index into `alive` of the flow that trains next.
+    next: usize,
+    budget: Option<f64>,
+    /// Seconds the search had run.
+    elapsed: f64,
+}
+
+/// Everything but tensors that a search checkpoint holds.
+#[derive(serde::Serialize, serde::Deserialize)]
+struct SearchState {
+    position: Position,
+    racers: Vec<RacerState>,
+    model_path: Option<std::path::PathBuf>,
+    log_path: Option<std::path::PathBuf>,
+}
+
+#[derive(serde::Serialize, serde::Deserialize)]
+struct RacerState {
+    name: String,
+    state: TrainState,
+    stages: Vec<f64>,
+    #[serde(default)]
+    stopped: Option<String>,
+}
+
+/// A search checkpoint read back: its state, and the file for its tensors.
+pub(crate) struct SavedSearch {
+    state: SearchState,
+    extras: Extras,
+}
+
+impl SavedSearch {
+    pub(super) fn read(path: &Path, json: &str, extras: Extras) -> Result<SavedSearch> {
+        let state: SearchState = serde_json::from_str(json).map_err(|e| {
+            Error::model(path, format!("bad search checkpoint: {}", crate::data::printable(&e.to_string(), 200)))
+        })?;
+        let p = &state.position;
+        if p.round >= 2 * ROUNDS || p.next > p.alive.len() || p.alive.iter().any(|&i| i >= state.racers.len()) {
+            return Err(Error::model(path, "bad search checkpoint: its position is out of range"));
+        }
+        Ok(SavedSearch { state, extras })
+    }
+
+    pub(super) fn paths(&self) -> (Option<&Path>, Option<&Path>) {
+        (self.state.model_path.as_deref(), self.state.log_path.as_deref())
+    }
+}
+
+const TENSORS: [&str; 4] = ["params", "best_params", "adam_m", "adam_v"];
+
+/// Racers for `configs`, all starting at `first_stage`.
+fn enter(run: &Run, configs: Vec<FlowConfig>, first_stage: usize) -> Result<Vec<Racer>> {
+    configs
+        .into_iter()
+        .map(|config| {
+            let flow = Staged::new(run, &config.opts)?;
+            Ok(Racer { config, flow, stages: Vec::new(), first_stage, stopped: None })
+        })
+        .collect()
+}
+
+/// The race: configurations, their flows (restored from a checkpoint when
+/// resuming) and where it stands.
+fn line_up(
+    run: &Run,
+    opts: &FitOptions,
+    table: &Settings,
+    dims: usize,
+    saved: Option<&SavedSearch>,
+) -> Result<(Vec<Racer>, Position)> {
+    let mut racers = enter(run, flow_configs(opts, table, dims), 0)?;
+    let Some(saved) = saved else {
+        let position = Position {
+            round: 0,
+            alive: (0..racers.len()).collect(),
+            next: 0,
+            budget: opts.budget.map(|b| b.0),
+            elapsed: 0.0,
+        };
+        return Ok((racers, position));
+    };
+    restore(run, &mut racers, saved, 0)?;
+    // The local round's flows follow from the first round's results.
+    if saved.state.racers.len() > racers.len() {
+        let first = racers.len();
+        let local = local_configs(&racers[winner(&racers)].config, racers[winner(&racers)].flow.settings());
+        racers.extend(enter(run, local, ROUNDS)?);
+        restore(run, &mut racers, saved, first)?;
+    }
+    let mut position = saved.state.position.clone();
+    if let Some(b) = opts.budget {
+        position.budget = Some(b.0);
+    }
+    Ok((racers, position))
+}
+
+/// Restore the racers from `from` on to their checkpointed state, after
+/// checking that the checkpoint raced the same flows.
+fn restore(run: &Run, racers: &mut [Racer], saved: &SavedSearch, from: usize) -> Result<()> {
+    let names: Vec<&str> = racers.iter().map(|r| r.config.name.as_str()).collect();
+    let kept: Vec<&str> = saved.state.racers.iter().map(|r| r.name.as_str()).take(racers.len()).collect();
+    if names != kept {
+        let all: Vec<&str> = saved.state.racers.iter().map(|r| r.name.as_str()).collect();
+        return Err(Error::Invalid(format!(
+            "{}: this search raced other flows ({}); start a new run",
+            saved.extras.path().display(),
+            all.join(", ")
+        )));
+    }
+    for (i, (r, s)) in racers.iter_mut().zip(&saved.state.racers).enumerate().skip(from) {
+        same_inputs(run, &s.state)?;
+        let n = r.flow.tensors()[0].len();
+        let t = |name: &str| saved.extras.tensor(&format!("search.{i}.{name}"), n);
+        r.flow.restore(s.state.clone(), [t(TENSORS[0])?, t(TENSORS[1])?, t(TENSORS[2])?, t(TENSORS[3])?]);
+        r.stages = s.stages.clone();
+        r.stopped = s.stopped.clone();
+    }
+    Ok(())
+}
+
+/// The flow with the best validation NLL (the first of equals).
+pub(super) fn winner(racers: &[Racer]) -> usize {
+    (0..racers.len())
+        .min_by(|&a, &b| racers[a].flow.best_validation_nll().total_cmp(&racers[b].flow.best_validation_nll()))
+        .unwrap_or(0)
+}
+
+/// Write the search checkpoint: the best density so far as the model, each
+/// flow's weights, best weights and optimizer moments, and the position.
+fn save_search(run: &Run, best: &Model, racers: &[Racer], position: Position) -> Result<()> {
+    let Some(path) = &run.checkpoint else { return Ok(()) };
+    let state = SearchState {
+        position,
+        racers: racers
+            .iter()
+            .map(|r| RacerState {
+                name: r.config.name.clone(),
+                state: r.flow.state().clone(),
+                stages: r.stages.clone(),
+                stopped: r.stopped.clone(),
+            })
+            .collect(),
+        model_path: absolute(run.output),
+        log_path: absolute(run.log),
+    };
+    let json = serde_json::to_string(&state).map_err(|e| Error::Invalid(e.to_string()))?;
+    let mut extra = Vec::new();
+    for (i, r) in racers.iter().enumerate() {
+        for (name, values) in TENSORS.iter().zip(r.flow.tensors()) {
+            extra.push((format!("search.{i}.{name}"), values));
+        }
+    }
+    best.save_with(path, extra, Some((SEARCH_KEY, json)))
+}
+
+/// Successive halving over the flow configurations (Jamieson & Talwalkar
+/// 2016; Li et al. 2018): every configuration trains for a quarter of the
+/// epochs, the better half by validation NLL carries on to half, the better
+/// half of those to all of them (each on the learning-rate schedule of the
+/// full run, so a stage continues where the last one paused). A run that
+/// stops early keeps its best. Then the same again over the winner's
+/// neighbours ([`local_configs`]). The stages stop when the budget is
+/// spent. A search checkpoint (see [`save_search`]) is written after every
+/// stage of every flow and when interrupted; resuming from it continues to
+/// the same result. Returns the racers and the flows' dimensions.
+pub(super) fn race_flows(
+    run: &Run,
+    opts: &FitOptions,
+    best: &Model,
+    saved: Option<&SavedSearch>,
+) -> Result<(Vec<Racer>, usize)> {
+    let quiet_run = Run { output: None, checkpoint: None, log: None, ..*run };
+    // The settings table and the dimensions come from a flow's own
+    // whitening (the Gaussian's shrinkage may keep a direction it drops).
+    let probe = Staged::new(&quiet_run, &FitOptions { kind: Some(Kind::Flow), quiet: true, ..opts.clone() })?;
+    let (table, dims) = (probe.settings().clone(), probe.dim());
+    drop(probe);
+    let (mut racers, mut at) = line_up(&quiet_run, opts, &table, dims, saved)?;
+    let started = Instant::now().checked_sub(Duration::from_secs_f64(at.elapsed)).unwrap_or_else(Instant::now);
+    let spent = |at: &Position| at.budget.is_some_and(|b| started.elapsed().as_secs_f64() >= b);
+    while at.round < 2 * ROUNDS {
+        let until = stages(at.round, table.epochs)[at.round % ROUNDS];
+        while at.next < at.alive.len() {
+            let i = at.alive[at.next];
+            let first = at.round == 0 && i == 0;
+            if spent(&at) && !first {
+                break;
+            }
+            let deadline = at.budget.filter(|_| !first).map(|b| started + Duration::from_secs_f64(b));
+            let r = &mut racers[i];
+            if let Err(e) = r.flow.train_to(&quiet_run, &r.config.opts, Pause { epoch: until, deadline }) {
+                if let Error::Interrupted(_) = e {
+                    at.elapsed = started.elapsed().as_secs_f64();
+                    save_search(run, best, &racers, at)?;
+                }
+                return Err(e);
+            }
+            r.stages.push(r.flow.best_validation_nll());
+            let r = &racers[i];
+            if at.budget.is_none() {
+                // The first stage of the table's flow sets the default budget.
+                let b = default_budget(r, &racers, table.epochs);
+                at.budget = Some(b);
+                if !opts.quiet {
+                    note(format!(
+                        "search budget {} ({BUDGET_SLACK} x the race's projected time; --budget sets it)",
+                        minutes(b)
+                    ));
+                }
+            }
+            if !opts.quiet {
+                note(format!(
+                    "flow \"{}\": epoch {}, validation NLL {:.4} nats/vector ({} spent)",
+                    r.config.name,
+                    r.flow.epochs(),
+                    r.flow.best_validation_nll(),
+                    minutes(started.elapsed().as_secs_f64())
+                ));
+            }
+            at.next += 1;
+            write_log(run, &race_log(&racers), &[])?;
+            // After every stage of every flow, so that a run killed outright
+            // (SIGKILL, power loss) loses at most one stage of one flow.
+            at.elapsed = started.elapsed().as_secs_f64();
+            save_search(run, best, &racers, at.clone())?;
+        }
+        halve(&mut racers, &mut at);
+        if at.round == ROUNDS {
+            if spent(&at) {
+                at.round = 2 * ROUNDS;
+            } else {
+                let w = &racers[winner(&racers)];
+                let local = local_configs(&w.config, w.flow.settings());
+                at.alive = (racers.len()..racers.len() + local.len()).collect();
+                racers.extend(enter(&quiet_run, local, ROUNDS)?);
+            }
+        }
+    }
+    for r in &mut racers {
+        let why = match r.flow.finished() {
+            true => r.flow.why_finished(),
+            false => format!("budget spent at epoch {}", r.flow.epochs()),
+        };
+        r.stopped.get_or_insert(why);
+    }
+    Ok((racers, dims))
+}
+
+/// End a stage: the better half carries on; a finished run stands on its
+/// best, and one the budget left waiting stops where it is.
+fn halve(racers: &mut [Racer], at: &mut Position) {
+    let round = at.round;
+    let which = if round < ROUNDS { "" } else { " of the local round" };
+    let stage = format!("stage {} of {ROUNDS}{which}", round % ROUNDS + 1);
+    for &i in &at.alive {
+        let r = &mut racers[i];
+        if r.first_stage + r.stages.len() != round + 1 {
+            r.stopped = Some(format!("budget spent before {stage}"));
+        } else if r.flow.finished() {
+            r.stopped = Some(r.flow.why_finished());
+        }
+    }
+    at.alive.retain(|&i| racers[i].stopped.is_none());
+    at.alive.sort_by(|&a, &b| racers[a].flow.best_validation_nll().total_cmp(&racers[b].flow.best_validation_nll()));
+    let (n, keep) = (at.alive.len(), at.alive.len().div_ceil(2));
+    if (round + 1) % ROUNDS != 0 {
+        for (rank, &i) in at.alive.iter().enumerate().skip(keep) {
+            racers[i].stopped = Some(format!("halved out after {stage} (ranked {} of {n})", rank + 1));
+        }
+    }
+    at.alive.truncate(keep);
+    at.round += 1;
+    at.next = 0;
+}
+
+/// Every flow's epochs so far, each marked with its configuration.
+pub(super) fn race_log(racers: &[Racer]) -> Vec<LogEntry> {
+    racers.iter().flat_map(|r| r.flow.log_as(&r.config.name)).collect()
+}
+
+pub(super) fn minutes(seconds: f64) -> String {
+    if seconds < 120.0 {
+        format!("{seconds:.0} s")
+    } else {
+        format!("{:.1} min", seconds / 60.0)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Nine flows to 50 epochs, five on to 100, three on to 200.
+    #[test]
+    fn race_epochs_follow_the_halving() {
+        assert_eq!(race_epochs(9, &[50, 100, 200]), 9 * 50 + 5 * 50 + 3 * 100);
+        assert_eq!(race_epochs(1, &[50, 100, 200]), 200);
+    }
+
+    #[test]
+    fn the_local_round_runs_on_a_longer_schedule() {
+        assert_eq!(stages(0, 200), [50, 100, 200]);
+        assert_eq!(stages(ROUNDS - 1, 200), [50, 100, 200]);
+        assert_eq!(stages(ROUNDS, 200), [100, 200, 400]);
+        assert_eq!(stages(2 * ROUNDS - 1, 30), [15, 30, 60]);
+    }
+
+    #[test]
+    fn spline_couplings_race_when_the_table_already_models_every_dim() {
+        // With 125 rows per feature the table models all 32 dims, so the
+        // "all dims" configuration repeats it and is dropped; the spline
+        // one differs only in its couplings and must stay.
+        let opts = FitOptions::default();
+        let table = Settings::resolve(&opts, 4000, 32, true, false).expect("valid settings");
+        assert_eq!(table.flow_dims, 32);
+        let names: Vec<String> = flow_configs(&opts, &table, 32).into_iter().map(|c| c.name).collect();
+        assert!(names.iter().any(|n| n == "spline couplings"), "{names:?}");
+        assert!(!names.iter().any(|n| n == "all dims"), "{names:?}");
+    }
+
+    /// Around a winner with neither dropout nor noise, "less" regularisation
+    /// is the same as its own, so four neighbours remain: its own and more
+    /// regularisation, each with either mixing, all on twice the epochs.
+    #[test]
+    fn the_local_round_steps_regularisation_and_mixing() {
+        let opts = FitOptions { dropout: Some(0.0), noise: Some(0.0), ..FitOptions::default() };
+        let table = Settings::resolve(&opts, 4000, 32, true, false).expect("valid settings");
+        let winner = FlowConfig { name: "plain".into(), opts: opts.clone() };
+        let local = local_configs(&winner, &table);
+        let names: Vec<&str> = local.iter().map(|c| c.name.as_str()).collect();
+        let e = 2 * table.epochs;
+        assert_eq!(
+            names,
+            [
+                format!("plain / {e} epochs"),
+                format!("plain / LU mixing, {e} epochs"),
+                format!("plain / more regularisation, {e} epochs"),
+                format!("plain / more regularisation, LU mixing, {e} epochs"),
+            ]
+        );
+        let more = &local[2].opts;
+        assert_eq!((more.dropout, more.noise, more.weight_decay), (Some(0.1), Some(0.1), Some(1e-4)));
+        assert!(local.iter().all(|c| c.opts.epochs == Some(e)));
+    }
+}
