@@ -63,8 +63,8 @@ mod common;
 
 /// A search killed outright (SIGKILL) while the flows race can be resumed
 /// from the checkpoint it writes after every stage; stopped again by
-/// SIGTERM it writes the checkpoint and the best density so far; resumed
-/// to the end it gives the same model as the uninterrupted search (same
+/// SIGTERM it writes the checkpoint and the best density so far, and once
+/// more in the local round; resumed to the end it gives the same model as the uninterrupted search (same
 /// scores, bit for bit) and the same log.
 #[test]
 fn interrupted_search_resumes_to_the_same_model() {
@@ -96,31 +96,39 @@ fn interrupted_search_resumes_to_the_same_model() {
     let checkpoint = dir.path().join("model.checkpoint.safetensors");
     let mut resume = args(&model);
     resume.extend(["--resume".to_string(), s(&checkpoint)]);
-    // Run until `stages` flows have finished a stage, then send `signal`.
-    let stop_after = |args: &[String], stages: usize, signal: &str| {
+    // Run until `stop` holds for the count of flows that have finished a
+    // stage and the last one's line, then send `signal`; the status, what
+    // the run printed after that, and that line.
+    let stop_after = |args: &[String], stop: &dyn Fn(usize, &str) -> bool, signal: &str| {
         let mut child = Command::new(common::bin()).args(args).stderr(Stdio::piped()).spawn().unwrap();
         let mut lines = BufReader::new(child.stderr.take().unwrap()).lines();
-        let mut seen = 0;
+        let (mut seen, mut last) = (0, String::new());
         for line in lines.by_ref() {
-            if line.unwrap().starts_with("flow \"") {
-                seen += 1;
-                if seen == stages {
+            let line = line.unwrap();
+            if line.starts_with("flow \"") {
+                (seen, last) = (seen + 1, line);
+                if stop(seen, &last) {
                     break;
                 }
             }
         }
         common::send(child.id(), signal);
         let rest: Vec<String> = lines.map(|l| l.unwrap()).collect();
-        (child.wait().unwrap(), rest)
+        (child.wait().unwrap(), rest, last)
     };
-    let (killed, _) = stop_after(&args(&model), 2, "-KILL");
+    let (killed, _, _) = stop_after(&args(&model), &|seen, _| seen == 2, "-KILL");
     assert_eq!(killed.code(), None, "SIGKILL ends the process without a status");
     assert!(checkpoint.exists(), "a search checkpoint is written after every stage");
 
-    let (status, rest) = stop_after(&resume, 1, "-TERM");
+    let (status, rest, _) = stop_after(&resume, &|seen, _| seen == 1, "-TERM");
     assert_eq!(status.code(), Some(130), "{rest:?}");
     assert!(checkpoint.exists() && model.exists(), "{rest:?}");
     assert!(rest.iter().any(|l| l.contains("--resume")), "{rest:?}");
+
+    // The local round's flows are named "winner / change".
+    let (status, rest, last) = stop_after(&resume, &|_, line| line.contains(" / "), "-TERM");
+    assert_eq!(status.code(), Some(130), "{rest:?}");
+    assert!(last.contains(" / "), "stopped before the local round: {last}");
 
     resume.push("-q".into());
     assert!(Command::new(common::bin()).args(resume).status().unwrap().success());

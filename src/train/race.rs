@@ -85,10 +85,7 @@ fn distinct(configs: impl Iterator<Item = (impl Into<String>, FitOptions)>) -> V
         )
     };
     let mut seen = std::collections::HashSet::new();
-    configs
-        .filter(|(_, o)| seen.insert(key(o)))
-        .map(|(name, opts)| FlowConfig { name: name.into(), opts })
-        .collect()
+    configs.filter(|(_, o)| seen.insert(key(o))).map(|(name, opts)| FlowConfig { name: name.into(), opts }).collect()
 }
 
 /// One step of dropout and of input noise (whitened units) between
@@ -96,16 +93,18 @@ fn distinct(configs: impl Iterator<Item = (impl Into<String>, FitOptions)>) -> V
 const REGULARISATION_STEP: f64 = 0.1;
 const MAX_DROPOUT: f64 = 0.5;
 
-/// The local round trains this many times the table's epochs: a flow that
-/// still improved at the first round's last epoch gains from a longer
-/// cosine schedule, and early stopping ends the others as before.
+/// The local round trains this many times the table's epochs, with this
+/// many times its patience: a flow that still improved at the first
+/// round's last epoch gains from a longer cosine schedule, and on it the
+/// learning rate falls as much in twice the epochs, so early stopping
+/// waits as much longer.
 const LOCAL_SCHEDULE: usize = 2;
 
 /// The local round's configurations: the winner of the first round (its
 /// `settings` as resolved, its `opts` as given) with one regularisation
 /// step either way (dropout and input noise, weight decay at least 1e-4 on
 /// the way up) crossed with either mixing (permutation or LU), all on the
-/// longer schedule, the winner's own settings included. The first round
+/// longer schedule and patience, the winner's own settings included. The first round
 /// samples each setting coarsely around the table; this round searches
 /// the winner's neighbourhood, as one tuning by hand would next.
 fn local_configs(winner: &FlowConfig, settings: &Settings) -> Vec<FlowConfig> {
@@ -134,6 +133,7 @@ fn local_configs(winner: &FlowConfig, settings: &Settings) -> Vec<FlowConfig> {
                 weight_decay: Some(decay),
                 mixing: Some(mixing),
                 epochs: Some(epochs),
+                patience: Some(LOCAL_SCHEDULE * settings.patience),
                 ..winner.opts.clone()
             };
             let mut what: Vec<String> = change.map(|c| format!("{c} regularisation")).into_iter().collect();
@@ -564,6 +564,6 @@ mod tests {
         );
         let more = &local[2].opts;
         assert_eq!((more.dropout, more.noise, more.weight_decay), (Some(0.1), Some(0.1), Some(1e-4)));
-        assert!(local.iter().all(|c| c.opts.epochs == Some(e)));
+        assert!(local.iter().all(|c| c.opts.epochs == Some(e) && c.opts.patience == Some(2 * table.patience)));
     }
 }

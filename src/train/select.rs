@@ -3,8 +3,8 @@
 //! log-likelihood is kept. A fixed table of settings tuned on one dump does
 //! not transfer to the next; the held-out rows can decide.
 
-use super::race::{minutes, race_flows, race_log, winner};
 pub(crate) use super::race::SavedSearch;
+use super::race::{minutes, race_flows, race_log, winner};
 use super::{fit_one, write_log, FitOptions, LogEntry, Run, GAUSSIAN_BELOW_ROWS_PER_FEATURE};
 use crate::error::{Error, Result};
 use crate::model::{kind_name, Candidate, Kind, Model};
@@ -267,4 +267,3 @@ fn interrupted(run: &Run, best: Option<Model>, msg: String) -> Error {
         _ => Error::Interrupted(format!("search interrupted ({msg})")),
     }
 }
-
