@@ -147,6 +147,12 @@ fn local_configs(winner: &FlowConfig, settings: &Settings) -> Vec<FlowConfig> {
     distinct(configs.into_iter())
 }
 
+/// The local round's configurations around the first round's winner.
+fn around_winner(racers: &[Racer]) -> Vec<FlowConfig> {
+    let w = &racers[winner(racers)];
+    local_configs(&w.config, w.flow.settings())
+}
+
 /// Most configurations of the local round: three regularisation levels
 /// times two mixings.
 const LOCAL_MOST: usize = 6;
@@ -307,8 +313,7 @@ fn line_up(
     // The local round's flows follow from the first round's results.
     if saved.state.racers.len() > racers.len() {
         let first = racers.len();
-        let local = local_configs(&racers[winner(&racers)].config, racers[winner(&racers)].flow.settings());
-        racers.extend(enter(run, local, ROUNDS)?);
+        racers.extend(enter(run, around_winner(&racers), ROUNDS)?);
         restore(run, &mut racers, saved, first)?;
     }
     let mut position = saved.state.position.clone();
@@ -453,8 +458,7 @@ pub(super) fn race_flows(
             if spent(&at) {
                 at.round = 2 * ROUNDS;
             } else {
-                let w = &racers[winner(&racers)];
-                let local = local_configs(&w.config, w.flow.settings());
+                let local = around_winner(&racers);
                 at.alive = (racers.len()..racers.len() + local.len()).collect();
                 racers.extend(enter(&quiet_run, local, ROUNDS)?);
             }
