@@ -64,8 +64,8 @@ mod common;
 /// A search killed outright (SIGKILL) while the flows race can be resumed
 /// from the checkpoint it writes after every stage; stopped again by
 /// SIGTERM it writes the checkpoint and the best density so far, and once
-/// more in the local round; resumed to the end it gives the same model as the uninterrupted search (same
-/// scores, bit for bit) and the same log.
+/// more in the local round; resumed to the end it gives the same model as
+/// the uninterrupted search (same scores, bit for bit) and the same log.
 #[test]
 fn interrupted_search_resumes_to_the_same_model() {
     use std::io::{BufRead, BufReader};

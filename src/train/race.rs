@@ -57,7 +57,7 @@ fn flow_configs(opts: &FitOptions, table: &Settings, dims: usize) -> Vec<FlowCon
             set(&|o| {
                 o.dropout = Some((table.dropout + REGULARISATION_STEP).min(MAX_DROPOUT));
                 o.noise = Some(table.noise + REGULARISATION_STEP);
-                o.weight_decay = Some(1e-4);
+                o.weight_decay = Some(REGULARISED_DECAY);
             }),
         ),
         ("deeper (10 layers)", set(&|o| o.layers = Some(10))),
@@ -91,6 +91,9 @@ fn distinct(configs: impl Iterator<Item = (impl Into<String>, FitOptions)>) -> V
 /// One step of dropout and of input noise (whitened units) between
 /// neighbouring configurations.
 const REGULARISATION_STEP: f64 = 0.1;
+/// The weight decay of the more regularised configurations (the table
+/// has none).
+const REGULARISED_DECAY: f64 = 1e-4;
 const MAX_DROPOUT: f64 = 0.5;
 
 /// The local round trains this many times the table's epochs, with this
@@ -102,11 +105,12 @@ const LOCAL_SCHEDULE: usize = 2;
 
 /// The local round's configurations: the winner of the first round (its
 /// `settings` as resolved, its `opts` as given) with one regularisation
-/// step either way (dropout and input noise, weight decay at least 1e-4 on
-/// the way up) crossed with either mixing (permutation or LU), all on the
-/// longer schedule and patience, the winner's own settings included. The first round
-/// samples each setting coarsely around the table; this round searches
-/// the winner's neighbourhood, as one tuning by hand would next.
+/// step either way (dropout and input noise, weight decay at least
+/// [`REGULARISED_DECAY`] on the way up) crossed with either mixing
+/// (permutation or LU), all on the longer schedule and patience, the
+/// winner's own settings included. The first round samples each setting
+/// coarsely around the table; this round searches the winner's
+/// neighbourhood, as one tuning by hand would next.
 fn local_configs(winner: &FlowConfig, settings: &Settings) -> Vec<FlowConfig> {
     let epochs = LOCAL_SCHEDULE * settings.epochs;
     let other = match settings.mixing {
@@ -120,7 +124,7 @@ fn local_configs(winner: &FlowConfig, settings: &Settings) -> Vec<FlowConfig> {
     let step = |up: f64| {
         let dropout = (settings.dropout + up).clamp(0.0, MAX_DROPOUT);
         let noise = (settings.noise + up).max(0.0);
-        let decay = if up > 0.0 { settings.weight_decay.max(1e-4) } else { settings.weight_decay };
+        let decay = if up > 0.0 { settings.weight_decay.max(REGULARISED_DECAY) } else { settings.weight_decay };
         (dropout, noise, decay)
     };
     let mut configs = Vec::new();
@@ -163,7 +167,7 @@ const LOCAL_MOST: usize = 6;
 /// and scales it by every flow's relative cost per epoch
 /// ([`relative_cost`]) and by the epochs successive halving gives each
 /// round; the slack covers validation passes and a loaded machine.
-pub(super) const BUDGET_SLACK: f64 = 1.5;
+const BUDGET_SLACK: f64 = 1.5;
 
 /// Time per update of a spline coupling against an affine one with the
 /// same conditioner: 8-13x (D = 384 and 64; DEVELOPERS.md).
