@@ -587,6 +587,23 @@ mod tests {
         assert_eq!(html.matches("<circle").count(), 4, "{html}");
     }
 
+    /// A flow of the local round is drawn from the round it joined at: its
+    /// first marker sits one round step right of the first round's last,
+    /// not over the first round's markers.
+    #[test]
+    fn local_round_flows_start_where_they_joined() {
+        let mut local = raced("local", Kind::Flow, &[0.9, 0.5], false);
+        local.first_stage = 3;
+        let candidates = [raced("kept", Kind::Flow, &[3.0, 2.0, 1.0], true), local];
+        let html = leaderboard(&candidates).unwrap();
+        let xs: Vec<f64> =
+            html.split("<circle cx=\"").skip(1).map(|s| s[..s.find('"').unwrap()].parse().unwrap()).collect();
+        assert_eq!(xs.len(), 5, "{html}");
+        let step = xs[1] - xs[0];
+        assert!(step > 0.0 && (xs[2] - xs[1] - step).abs() <= 1.0, "{xs:?}");
+        assert!((xs[3] - xs[2] - step).abs() <= 1.0 && (xs[4] - xs[3] - step).abs() <= 1.0, "{xs:?}");
+    }
+
     /// The range holds the central 99.5% of the in-distribution values and
     /// every outlier set's median, and not a far-off outlier's extreme.
     #[test]
