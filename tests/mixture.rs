@@ -12,8 +12,9 @@ fn density() -> serde_json::Value {
     serde_json::from_str(&std::fs::read_to_string(common::fixture("density.json")).unwrap()).unwrap()
 }
 
+/// `a` within `rel` of `b`, relative to `b` (a 1e-12 floor for values at zero).
 fn close(a: f64, b: f64, rel: f64) -> bool {
-    (a - b).abs() <= rel * b.abs().max(1.0)
+    (a - b).abs() <= rel * b.abs() + 1e-12
 }
 
 /// EM from the same initial responsibilities gives scikit-learn's
@@ -76,23 +77,7 @@ fn gaussian_shrinkage_is_chosen_on_held_out_rows() {
 /// model file round-trips to the same log-likelihoods.
 #[test]
 fn mixture_kind_beats_one_gaussian_on_clustered_rows_and_round_trips() {
-    use rand::{rngs::StdRng, SeedableRng};
-    use rand_distr::{Distribution, StandardNormal};
-    let mut rng = StdRng::seed_from_u64(5);
-    let d = 6;
-    let data: Vec<f32> = (0..3000)
-        .flat_map(|r| {
-            let shift = if r % 3 == 0 { 5.0 } else { -2.5 };
-            let v: Vec<f32> = (0..d)
-                .map(|j| {
-                    <StandardNormal as Distribution<f32>>::sample(&StandardNormal, &mut rng)
-                        + if j < 2 { shift } else { 0.0 }
-                })
-                .collect();
-            v
-        })
-        .collect();
-    let x = Dataset::in_memory(tidemark::data::Matrix::new(3000, d, data));
+    let x = two_clusters();
     let opts = FitOptions { quiet: true, threads: Some(1), ..FitOptions::default() };
     let mixture = fit(&x, None, &FitOptions { kind: Some(Kind::Mixture), ..opts.clone() }).unwrap();
     let gaussian = fit(&x, None, &FitOptions { kind: Some(Kind::Gaussian), ..opts }).unwrap();
@@ -109,6 +94,48 @@ fn mixture_kind_beats_one_gaussian_on_clustered_rows_and_round_trips() {
     mixture.save(&path).unwrap();
     let back = tidemark::model::Model::load(&path).unwrap();
     assert_eq!(back.evaluate(&x, 1).log_likelihood, mixture.evaluate(&x, 1).log_likelihood);
+}
+
+/// 3,000 rows of 6 features: a third of them shifted by +5 in the first two
+/// features, the rest by -2.5, standard normal noise.
+fn two_clusters() -> Dataset {
+    use rand::{rngs::StdRng, SeedableRng};
+    use rand_distr::{Distribution, StandardNormal};
+    let mut rng = StdRng::seed_from_u64(5);
+    let d = 6;
+    let data: Vec<f32> = (0..3000)
+        .flat_map(|r| {
+            let shift = if r % 3 == 0 { 5.0 } else { -2.5 };
+            let v: Vec<f32> = (0..d)
+                .map(|j| {
+                    <StandardNormal as Distribution<f32>>::sample(&StandardNormal, &mut rng)
+                        + if j < 2 { shift } else { 0.0 }
+                })
+                .collect();
+            v
+        })
+        .collect();
+    Dataset::in_memory(tidemark::data::Matrix::new(3000, d, data))
+}
+
+/// A kind's own option without a kind fits exactly that kind, with no
+/// search: `--components K` one mixture of K components, `--shrinkage A`
+/// one Gaussian shrunk by A; both together name no one kind.
+#[test]
+fn a_kinds_own_option_fits_that_kind_alone() {
+    let x = two_clusters();
+    let opts = FitOptions { quiet: true, threads: Some(1), ..FitOptions::default() };
+    let mixture = fit(&x, None, &FitOptions { components: Some(3), ..opts.clone() }).unwrap();
+    assert_eq!(mixture.meta.kind, Kind::Mixture);
+    assert_eq!(mixture.meta.mixture.as_ref().unwrap().components, 3);
+    assert!(mixture.meta.training.candidates.is_empty());
+    let shrink = || Some("0.25".parse().unwrap());
+    let gaussian = fit(&x, None, &FitOptions { shrinkage: shrink(), ..opts.clone() }).unwrap();
+    assert_eq!(gaussian.meta.kind, Kind::Gaussian);
+    assert_eq!(gaussian.pre.shrinkage, 0.25);
+    assert!(gaussian.meta.training.candidates.is_empty());
+    let both = fit(&x, None, &FitOptions { components: Some(3), shrinkage: shrink(), ..opts }).unwrap_err();
+    assert!(both.to_string().contains("give one"), "{both}");
 }
 
 /// Six well-separated Gaussian clusters: the doubling ladder (1, 2, 4, 8,

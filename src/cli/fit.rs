@@ -96,7 +96,7 @@ pub(crate) struct FitArgs {
     /// Worker threads [default: all cores].
     #[arg(long)]
     threads: Option<usize>,
-    /// Covariance shrinkage of the Gaussian kinds: validated (the intensity with the best held-out log-likelihood, Ledoit-Wolf's among the candidates), ledoit-wolf, or an intensity in [0, 1) [default: validated].
+    /// Covariance shrinkage of the Gaussian kinds: validated (the intensity with the best held-out log-likelihood, Ledoit-Wolf's among the candidates), ledoit-wolf, or an intensity in [0, 1) [default: validated]. Without --kind, fits one Gaussian (class-gaussian with labels).
     #[arg(long)]
     shrinkage: Option<ShrinkageOption>,
     /// Fit exactly the configuration the options give (a flow unless rows per feature are few) instead of comparing density kinds on the validation rows.
@@ -105,7 +105,7 @@ pub(crate) struct FitArgs {
     /// Wall-clock bound of the search over densities, e.g. 20m or 8h [default: 1.5 x the projected time of the whole race of flows, at least 1 minute].
     #[arg(long)]
     budget: Option<Budget>,
-    /// Components of the mixture kind [default: chosen on the validation rows among 1, 2, 4, ... 64, then the counts halfway to the best one's neighbours].
+    /// Components of the mixture kind [default: chosen on the validation rows among 1, 2, 4, ... 64, then the counts halfway to the best one's neighbours]. Without --kind, fits one mixture.
     #[arg(long)]
     components: Option<usize>,
     /// Held-out in-distribution rows for validation and early stopping (instead of a split).

@@ -125,6 +125,13 @@ impl FitOptions {
         if let Some(ShrinkageOption::Fixed(v)) = self.shrinkage {
             check::fraction_below(&n("shrinkage"), v, 1.0)?;
         }
+        if self.shrinkage.is_some() && self.kind.is_none() && self.components.is_some() {
+            return Err(Error::Invalid(format!(
+                "{} sizes a mixture and {} shrinks a Gaussian; give one, or name the kind",
+                n("components"),
+                n("shrinkage")
+            )));
+        }
         if self.shrinkage.is_some() && matches!(self.kind, Some(Kind::Flow | Kind::Mixture)) {
             return Err(Error::Invalid(format!(
                 "{} applies to the Gaussian kinds; drop it or the flow kind",
@@ -408,12 +415,21 @@ impl FitOptions {
             || self.noise.is_some()
     }
 
+    /// The kind asked for, or the one a kind's own option names when no
+    /// kind is given: `--components` sizes a mixture, `--shrinkage` shrinks
+    /// the (class-)Gaussian's covariance. Like any density option, either
+    /// one fits exactly that model instead of searching.
+    pub(super) fn implied_kind(&self, labelled: bool) -> Option<Kind> {
+        let gaussian = if labelled { Kind::ClassGaussian } else { Kind::Gaussian };
+        self.kind.or(self.components.map(|_| Kind::Mixture)).or(self.shrinkage.map(|_| gaussian))
+    }
+
     /// The density kind: as asked; else, with fewer than
     /// [`GAUSSIAN_BELOW_ROWS_PER_FEATURE`] training rows per feature and no
     /// flow option given, the Gaussian (class-Gaussian with labels); else a
     /// flow. The second value says whether the size of the data chose it.
     pub(super) fn kind_for(&self, rows: usize, features: usize, labelled: bool) -> (Kind, bool) {
-        match self.kind {
+        match self.implied_kind(labelled) {
             Some(kind) => (kind, false),
             None if (rows as f64) < GAUSSIAN_BELOW_ROWS_PER_FEATURE * features as f64 && !self.asks_for_a_flow() => {
                 (if labelled { Kind::ClassGaussian } else { Kind::Gaussian }, true)

@@ -11,11 +11,11 @@ use crate::model::{kind_name, Candidate, Kind, Model};
 use crate::output::note;
 use std::time::Instant;
 
-/// Whether `fit` chooses the density: no kind or flow option given, not
+/// Whether `fit` chooses the density: no density option given, not
 /// resuming one run, not told to skip the search, and validation rows to
 /// choose on.
 pub(super) fn applies(run: &Run, opts: &FitOptions) -> bool {
-    opts.kind.is_none()
+    opts.implied_kind(run.labels.is_some()).is_none()
         && !opts.no_search
         && !opts.asks_for_a_flow()
         && run.resume.is_none()
@@ -244,7 +244,7 @@ fn keep(opts: &FitOptions, candidates: &mut Vec<Candidate>, best: &mut Option<Mo
 /// are fitted again (they are quick and deterministic), the flows go on
 /// from where they stopped.
 pub(super) fn resume(run: &Run, opts: &FitOptions, saved: &SavedSearch) -> Result<Model> {
-    if opts.kind.is_some() || opts.asks_for_a_flow() {
+    if opts.implied_kind(run.labels.is_some()).is_some() || opts.asks_for_a_flow() {
         return Err(Error::Invalid(
             "this checkpoint is of a search over densities; resume it with the options it was started with".into(),
         ));
