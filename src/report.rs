@@ -328,7 +328,7 @@ fn rounds(candidates: &[Candidate], raced: &[&Candidate]) -> Result<String> {
     let items: Vec<(&str, RGBColor)> = names.iter().enumerate().map(|(i, n)| (n.as_str(), color(i))).collect();
     Ok(format!(
         "<figure>{svg}{}</figure>\n<p class=\"note\">Each flow's best validation NLL after each round; the better half \
-         of each round trains on. Flows that start at round 4 race around the first winner on a longer schedule. \
+         of each round trains on. Flows that join at a later round race around the best flow so far on a longer schedule. \
          Kinds fitted once are flat lines; the chosen density is drawn thick. Lower is better.</p>\n",
         legend(&items)
     ))
@@ -587,7 +587,7 @@ mod tests {
         assert_eq!(html.matches("<circle").count(), 4, "{html}");
     }
 
-    /// A flow of the local round is drawn from the round it joined at: its
+    /// A flow of a local round is drawn from the round it joined at: its
     /// first marker sits one round step right of the first round's last,
     /// not over the first round's markers.
     #[test]

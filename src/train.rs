@@ -167,12 +167,25 @@ pub struct Run<'a> {
     pub log: Option<&'a Path>,
     /// Set (by a signal handler) to stop after the current step.
     pub stop: Option<&'a AtomicBool>,
+    /// When a search's budget ends: the mixture tries no further component
+    /// count after it (the flows' race keeps its own clock).
+    pub deadline: Option<Instant>,
 }
 
 impl<'a> Run<'a> {
     /// A run that only trains: no files, no checkpoints.
     pub fn new(data: &'a Dataset) -> Run<'a> {
-        Run { data, val: None, labels: None, output: None, checkpoint: None, resume: None, log: None, stop: None }
+        Run {
+            data,
+            val: None,
+            labels: None,
+            output: None,
+            checkpoint: None,
+            resume: None,
+            log: None,
+            stop: None,
+            deadline: None,
+        }
     }
 }
 
@@ -277,7 +290,7 @@ fn fit_one(run: &Run, opts: &FitOptions) -> Result<Model> {
     put_params(&mut learned.model, &learned.best_params);
     if learned.settings.kind == Kind::Mixture {
         let rows = Rows::new(run, &learned.settings, &learned.model);
-        fit_mixture::fit_mixture(&rows, &mut learned, opts.components, opts.quiet)?;
+        fit_mixture::fit_mixture(&rows, &mut learned, opts.components, opts.quiet, run.deadline)?;
     }
     if let Some(sigma) = learned.settings.background_noise {
         let bg = train_background(run, opts, &learned, sigma, started)?;

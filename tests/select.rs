@@ -5,7 +5,7 @@ use rand::SeedableRng;
 use rand_distr::{Distribution, StandardNormal};
 use tidemark::data::{Dataset, Matrix};
 use tidemark::model::Kind;
-use tidemark::train::{fit, FitOptions};
+use tidemark::train::{fit, Budget, FitOptions};
 
 fn normal(rng: &mut StdRng) -> f32 {
     StandardNormal.sample(rng)
@@ -36,10 +36,10 @@ fn gaussian_data_keeps_the_gaussian() {
 }
 
 /// Rows on a curved ridge in 8 dimensions (x_{2i+1} = x_{2i}^2 + small
-/// noise): no Gaussian fits it, and the chosen density beats the Gaussian
+/// noise): no Gaussian fits it; a flow is chosen, and it beats the Gaussian
 /// candidate by a wide margin on held-out rows.
 #[test]
-fn curved_data_leaves_the_gaussian() {
+fn curved_data_chooses_a_flow() {
     let mut rng = StdRng::seed_from_u64(2);
     let d = 8;
     let data: Vec<f32> = (0..4000)
@@ -55,8 +55,27 @@ fn curved_data_leaves_the_gaussian() {
     let model = fit(&Dataset::in_memory(Matrix::new(4000, d, data)), None, &opts()).unwrap();
     let c = &model.meta.training.candidates;
     let gaussian = c.iter().find(|c| c.kind == Kind::Gaussian).unwrap().validation_nll;
-    assert_ne!(model.meta.kind, Kind::Gaussian, "{c:?}");
+    assert_eq!(model.meta.kind, Kind::Flow, "{c:?}");
     assert!(model.meta.training.best_validation_nll < gaussian - 2.0, "{c:?}");
+}
+
+/// A budget spent at once still gives a model: the mixture stops after its
+/// first component count, the settings table's flow runs its first stage
+/// (so that a flow is compared), and every other flow is left out with the
+/// budget as the reason.
+#[test]
+fn a_spent_budget_cuts_the_search_short() {
+    let x = Dataset::in_memory(common::wavy(3000, 0.0));
+    let model = fit(&x, None, &FitOptions { budget: Some(Budget(0.001)), ..opts() }).unwrap();
+    let c = &model.meta.training.candidates;
+    let mixture = c.iter().find(|c| c.kind == Kind::Mixture).unwrap();
+    assert!(mixture.detail.starts_with("1 components,"), "{c:?}");
+    let flows: Vec<_> = c.iter().filter(|c| c.kind == Kind::Flow).collect();
+    assert!(flows.len() >= 6, "{c:?}");
+    assert_eq!(flows.iter().filter(|c| c.stages.len() == 1).count(), 1, "{c:?}");
+    let left_out = flows.iter().filter(|c| c.stages.is_empty());
+    assert!(left_out.clone().count() == flows.len() - 1, "{c:?}");
+    assert!(left_out.clone().all(|c| c.stopped == "budget spent before stage 1 of 3"), "{c:?}");
 }
 
 mod common;

@@ -302,6 +302,7 @@ fn fit(
             resume: resumed.as_ref(),
             log: log.as_deref(),
             stop: Some(&stop),
+            deadline: None,
         };
         fit_watching_signals(&run, &opts, &stop)
     });

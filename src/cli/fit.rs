@@ -102,7 +102,7 @@ pub(crate) struct FitArgs {
     /// Fit exactly the configuration the options give (a flow unless rows per feature are few) instead of comparing density kinds on the validation rows.
     #[arg(long)]
     no_search: bool,
-    /// Wall-clock bound of the search over densities, e.g. 20m or 8h [default: 1.5 x the projected time of the whole race of flows, at least 1 minute].
+    /// Wall-clock bound of the whole search over densities, e.g. 20m or 8h; a given budget also buys further local rounds of flows while they gain [default: the Gaussian's and mixture's time plus 1.5 x the projected time of the race of flows, at least 1 minute].
     #[arg(long)]
     budget: Option<Budget>,
     /// Components of the mixture kind [default: chosen on the validation rows among 1, 2, 4, ... 64, then the counts halfway to the best one's neighbours]. Without --kind, fits one mixture.
@@ -239,6 +239,7 @@ pub(crate) fn fit(a: Box<FitArgs>) -> Result<()> {
         resume: resumed.as_ref(),
         log: log.as_deref(),
         stop: Some(&stop),
+        deadline: None,
     };
     let model = match tidemark::train::fit_run(&run, &opts) {
         Err(Error::Interrupted(msg)) if checkpoint.exists() => {

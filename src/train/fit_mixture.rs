@@ -302,8 +302,15 @@ fn between(best: usize) -> [usize; 2] {
 }
 
 /// Fit the mixture into `l.model`; the best validation NLL (nats per
-/// vector, input space) goes into the training state.
-pub(super) fn fit_mixture(rows: &Rows, l: &mut Learned, asked: Option<usize>, quiet: bool) -> Result<()> {
+/// vector, input space) goes into the training state. Past `deadline` no
+/// further component count is tried once one has fitted.
+pub(super) fn fit_mixture(
+    rows: &Rows,
+    l: &mut Learned,
+    asked: Option<usize>,
+    quiet: bool,
+    deadline: Option<std::time::Instant>,
+) -> Result<()> {
     let d = l.model.dim();
     let train = em_rows(rows, l.settings.seed);
     let groups = groups(rows, l, &train)?;
@@ -326,7 +333,11 @@ pub(super) fn fit_mixture(rows: &Rows, l: &mut Learned, asked: Option<usize>, qu
     let largest = groups.iter().map(|g| g.n).max().unwrap_or(0);
     let ladder = component_counts(largest, d, asked);
     let mut since_best = 0;
+    let out_of_time = |s: &Search| s.best.is_some() && deadline.is_some_and(|d| std::time::Instant::now() >= d);
     for &k in &ladder {
+        if out_of_time(&search) {
+            break;
+        }
         match search.try_count(k) {
             None => break, // every class is at the most its rows allow
             Some(true) => since_best = 0,
@@ -339,6 +350,9 @@ pub(super) fn fit_mixture(rows: &Rows, l: &mut Learned, asked: Option<usize>, qu
     if asked.is_none() {
         if let Some(k) = search.best.as_ref().map(|b| b.tried.components) {
             for c in between(k).into_iter().filter(|&c| c > 1 && room_for(largest, d, c)) {
+                if out_of_time(&search) {
+                    break;
+                }
                 search.try_count(c);
             }
         }

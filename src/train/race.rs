@@ -1,7 +1,9 @@
 //! The flows of the search, raced by successive halving on the validation
 //! rows: a first round over configurations spread around the settings
-//! table, then a local round around its winner on a longer schedule. The
-//! whole race can be checkpointed and resumed.
+//! table, then a local round around its winner on a longer schedule (and,
+//! under a budget the user gives, further local rounds while they find a
+//! better flow and time is left). The whole race can be checkpointed and
+//! resumed.
 
 use super::checkpoint::{absolute, same_inputs, SEARCH_KEY};
 use super::{write_log, FitOptions, LogEntry, Pause, Run, Settings, Staged, TrainState};
@@ -151,7 +153,7 @@ fn local_configs(winner: &FlowConfig, settings: &Settings) -> Vec<FlowConfig> {
     distinct(configs.into_iter())
 }
 
-/// The local round's configurations around the first round's winner.
+/// The next local round's configurations, around the best flow so far.
 fn around_winner(racers: &[Racer]) -> Vec<FlowConfig> {
     let w = &racers[winner(racers)];
     local_configs(&w.config, w.flow.settings())
@@ -160,6 +162,28 @@ fn around_winner(racers: &[Racer]) -> Vec<FlowConfig> {
 /// Most configurations of the local round: three regularisation levels
 /// times two mixings.
 const LOCAL_MOST: usize = 6;
+
+/// Most local rounds, each on twice the last one's schedule.
+const MOST_LOCAL_ROUNDS: usize = 3;
+
+/// Whether another local round follows the `done` rounds (the first
+/// included) so far. The first local round runs whenever budget is `left`.
+/// A further one needs a budget the user gave (the default budget projects
+/// one local round), at most [`MOST_LOCAL_ROUNDS`] in all, the best flow so
+/// far found by the last round (round `winner_round`: a longer schedule
+/// around it may gain again; otherwise the longer schedule stopped paying),
+/// and twice the last round's seconds left (its flows train twice as long).
+fn another_round(done: usize, winner_round: usize, last_seconds: f64, left: f64, given: bool) -> bool {
+    match done {
+        1 => left > 0.0,
+        _ => {
+            given
+                && done <= MOST_LOCAL_ROUNDS
+                && winner_round == done - 1
+                && LOCAL_SCHEDULE as f64 * last_seconds <= left
+        }
+    }
+}
 
 /// The default search budget: this many times the projected time of the
 /// whole race when no run stops early, at least a minute. The projection
@@ -208,9 +232,9 @@ const ROUNDS: usize = 3;
 
 /// The epochs each stage of the race that `round` belongs to trains to,
 /// for a table of `epochs`: a quarter, half and all of the schedule, which
-/// the local round makes [`LOCAL_SCHEDULE`] times as long.
+/// each local round makes [`LOCAL_SCHEDULE`] times as long as the last.
 fn stages(round: usize, epochs: usize) -> [usize; ROUNDS] {
-    let total = if round < ROUNDS { epochs } else { LOCAL_SCHEDULE * epochs };
+    let total = epochs * LOCAL_SCHEDULE.pow((round / ROUNDS) as u32);
     [total.div_ceil(4), total.div_ceil(2), total]
 }
 
@@ -220,14 +244,15 @@ pub(super) struct Racer {
     pub(super) flow: Staged,
     /// Best validation NLL after each stage it ran.
     pub(super) stages: Vec<f64>,
-    /// The stage it started at: 0, or [`ROUNDS`] for the local round.
+    /// The stage it started at: 0, or a multiple of [`ROUNDS`] for a local
+    /// round.
     pub(super) first_stage: usize,
     /// Why it left the race, once it has.
     pub(super) stopped: Option<String>,
 }
 
-/// Where the race stands: the stage (the local round's stages follow the
-/// first round's), the flows still racing, and which of them trains next.
+/// Where the race stands: the stage (each local round's stages follow the
+/// last round's), the flows still racing, and which of them trains next.
 #[derive(Clone, serde::Serialize, serde::Deserialize)]
 struct Position {
     round: usize,
@@ -269,7 +294,8 @@ impl SavedSearch {
             Error::model(path, format!("bad search checkpoint: {}", crate::data::printable(&e.to_string(), 200)))
         })?;
         let p = &state.position;
-        if p.round >= 2 * ROUNDS || p.next > p.alive.len() || p.alive.iter().any(|&i| i >= state.racers.len()) {
+        let rounds = ROUNDS * (1 + MOST_LOCAL_ROUNDS);
+        if p.round >= rounds || p.next > p.alive.len() || p.alive.iter().any(|&i| i >= state.racers.len()) {
             return Err(Error::model(path, "bad search checkpoint: its position is out of range"));
         }
         Ok(SavedSearch { state, extras })
@@ -314,10 +340,14 @@ fn line_up(
         return Ok((racers, position));
     };
     restore(run, &mut racers, saved, 0)?;
-    // The local round's flows follow from the first round's results.
-    if saved.state.racers.len() > racers.len() {
+    // Each local round's flows follow from the results of the rounds before.
+    while saved.state.racers.len() > racers.len() {
         let first = racers.len();
-        racers.extend(enter(run, around_winner(&racers), ROUNDS)?);
+        let round = racers[first - 1].first_stage / ROUNDS + 1;
+        if round * ROUNDS > saved.state.position.round {
+            return Err(Error::model(saved.extras.path(), "bad search checkpoint: more flows than its rounds raced"));
+        }
+        racers.extend(enter(run, around_winner(&racers), round * ROUNDS)?);
         restore(run, &mut racers, saved, first)?;
     }
     let mut position = saved.state.position.clone();
@@ -392,15 +422,18 @@ fn save_search(run: &Run, best: &Model, racers: &[Racer], position: Position) ->
 /// half of those to all of them (each on the learning-rate schedule of the
 /// full run, so a stage continues where the last one paused). A run that
 /// stops early keeps its best. Then the same again over the winner's
-/// neighbours ([`local_configs`]). The stages stop when the budget is
-/// spent. A search checkpoint (see [`save_search`]) is written after every
-/// stage of every flow and when interrupted; resuming from it continues to
-/// the same result. Returns the racers and the flows' dimensions.
+/// neighbours ([`local_configs`]), as [`another_round`] allows. The stages
+/// stop when the budget is spent; the search had run `before` seconds
+/// (the other kinds) when the race began. A search checkpoint (see
+/// [`save_search`]) is written after every stage of every flow and when
+/// interrupted; resuming from it continues to the same result. Returns the
+/// racers and the flows' dimensions.
 pub(super) fn race_flows(
     run: &Run,
     opts: &FitOptions,
     best: &Model,
     saved: Option<&SavedSearch>,
+    before: f64,
 ) -> Result<(Vec<Racer>, usize)> {
     let quiet_run = Run { output: None, checkpoint: None, log: None, ..*run };
     // The settings table and the dimensions come from a flow's own
@@ -409,9 +442,12 @@ pub(super) fn race_flows(
     let (table, dims) = (probe.settings().clone(), probe.dim());
     drop(probe);
     let (mut racers, mut at) = line_up(&quiet_run, opts, &table, dims, saved)?;
+    if saved.is_none() {
+        at.elapsed = before;
+    }
     let started = Instant::now().checked_sub(Duration::from_secs_f64(at.elapsed)).unwrap_or_else(Instant::now);
     let spent = |at: &Position| at.budget.is_some_and(|b| started.elapsed().as_secs_f64() >= b);
-    while at.round < 2 * ROUNDS {
+    while at.round < ROUNDS * (1 + MOST_LOCAL_ROUNDS) {
         let until = stages(at.round, table.epochs)[at.round % ROUNDS];
         while at.next < at.alive.len() {
             let i = at.alive[at.next];
@@ -431,8 +467,9 @@ pub(super) fn race_flows(
             r.stages.push(r.flow.best_validation_nll());
             let r = &racers[i];
             if at.budget.is_none() {
-                // The first stage of the table's flow sets the default budget.
-                let b = default_budget(r, &racers, table.epochs);
+                // The first stage of the table's flow sets the default budget,
+                // on top of the time the other kinds took.
+                let b = before + default_budget(r, &racers, table.epochs);
                 at.budget = Some(b);
                 if !opts.quiet {
                     note(format!(
@@ -458,14 +495,18 @@ pub(super) fn race_flows(
             save_search(run, best, &racers, at.clone())?;
         }
         halve(&mut racers, &mut at);
-        if at.round == ROUNDS {
-            if spent(&at) {
-                at.round = 2 * ROUNDS;
-            } else {
-                let local = around_winner(&racers);
-                at.alive = (racers.len()..racers.len() + local.len()).collect();
-                racers.extend(enter(&quiet_run, local, ROUNDS)?);
+        if at.round % ROUNDS == 0 {
+            let done = at.round / ROUNDS;
+            let left = at.budget.map_or(f64::INFINITY, |b| b - started.elapsed().as_secs_f64());
+            let last: f64 =
+                racers.iter().filter(|r| r.first_stage == at.round - ROUNDS).map(|r| r.flow.seconds()).sum();
+            let winner_round = racers[winner(&racers)].first_stage / ROUNDS;
+            if !another_round(done, winner_round, last, left, opts.budget.is_some()) {
+                break;
             }
+            let local = around_winner(&racers);
+            at.alive = (racers.len()..racers.len() + local.len()).collect();
+            racers.extend(enter(&quiet_run, local, at.round)?);
         }
     }
     for r in &mut racers {
@@ -482,7 +523,11 @@ pub(super) fn race_flows(
 /// best, and one the budget left waiting stops where it is.
 fn halve(racers: &mut [Racer], at: &mut Position) {
     let round = at.round;
-    let which = if round < ROUNDS { "" } else { " of the local round" };
+    let which = match round / ROUNDS {
+        0 => String::new(),
+        1 => " of the local round".to_string(),
+        k => format!(" of local round {k}"),
+    };
     let stage = format!("stage {} of {ROUNDS}{which}", round % ROUNDS + 1);
     for &i in &at.alive {
         let r = &mut racers[i];
@@ -535,6 +580,22 @@ mod tests {
         assert_eq!(stages(ROUNDS - 1, 200), [50, 100, 200]);
         assert_eq!(stages(ROUNDS, 200), [100, 200, 400]);
         assert_eq!(stages(2 * ROUNDS - 1, 30), [15, 30, 60]);
+        assert_eq!(stages(2 * ROUNDS, 200), [200, 400, 800]);
+    }
+
+    /// The first local round needs only time left; a further one a budget
+    /// the user gave, the best flow from the round just run, room for twice
+    /// its time, and no more than the most local rounds.
+    #[test]
+    fn further_local_rounds_need_a_given_budget_and_a_gain() {
+        assert!(another_round(1, 0, 100.0, 1.0, false));
+        assert!(!another_round(1, 0, 100.0, 0.0, true));
+        assert!(another_round(2, 1, 100.0, 200.0, true));
+        assert!(!another_round(2, 1, 100.0, 200.0, false), "the default budget buys one local round");
+        assert!(!another_round(2, 0, 100.0, 1e9, true), "the last round found nothing better");
+        assert!(!another_round(2, 1, 100.0, 199.0, true), "twice the last round's time does not fit");
+        assert!(another_round(MOST_LOCAL_ROUNDS, MOST_LOCAL_ROUNDS - 1, 1.0, 1e9, true));
+        assert!(!another_round(MOST_LOCAL_ROUNDS + 1, MOST_LOCAL_ROUNDS, 1.0, 1e9, true));
     }
 
     #[test]

@@ -9,7 +9,7 @@ use super::{fit_one, write_log, FitOptions, LogEntry, Run, GAUSSIAN_BELOW_ROWS_P
 use crate::error::{Error, Result};
 use crate::model::{kind_name, Candidate, Kind, Model};
 use crate::output::note;
-use std::time::Instant;
+use std::time::{Duration, Instant};
 
 /// Whether `fit` chooses the density: no density option given, not
 /// resuming one run, not told to skip the search, and validation rows to
@@ -90,13 +90,16 @@ fn clearly_better(new: &Model, old: &Model) -> bool {
 }
 
 /// Fit every candidate kind and keep the best on the validation rows: the
-/// Gaussian, the mixture, and flows raced by successive halving. An
-/// interrupted search writes the best density so far to the run's output.
+/// Gaussian, the mixture, and flows raced by successive halving, all within
+/// the budget when one is given. An interrupted search writes the best
+/// density so far to the run's output.
 pub(super) fn fit_best(run: &Run, opts: &FitOptions, saved: Option<&SavedSearch>) -> Result<Model> {
+    let started = Instant::now();
     let mut best: Option<Model> = None;
     let mut candidates: Vec<Candidate> = Vec::new();
     let mut flow_epochs: Vec<LogEntry> = Vec::new();
-    let quiet_run = Run { output: None, checkpoint: None, log: None, resume: None, ..*run };
+    let deadline = opts.budget.map(|b| started + Duration::from_secs_f64(b.0));
+    let quiet_run = Run { output: None, checkpoint: None, log: None, resume: None, deadline, ..*run };
     for kind in kinds(run, opts) {
         let t = Instant::now();
         if kind != Kind::Flow {
@@ -122,7 +125,7 @@ pub(super) fn fit_best(run: &Run, opts: &FitOptions, saved: Option<&SavedSearch>
             continue;
         }
         let first = best.as_ref().expect("a Gaussian kind comes first");
-        let (racers, dims) = match race_flows(run, opts, first, saved) {
+        let (racers, dims) = match race_flows(run, opts, first, saved, started.elapsed().as_secs_f64()) {
             Ok(r) => r,
             Err(Error::Interrupted(msg)) => return Err(interrupted(run, best, msg)),
             Err(e) => return Err(e),
