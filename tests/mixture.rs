@@ -138,6 +138,30 @@ fn a_kinds_own_option_fits_that_kind_alone() {
     assert!(both.to_string().contains("give one"), "{both}");
 }
 
+/// The `component` and `component_probability` scores of a two-component
+/// mixture on the two clusters: every row's most responsible component is
+/// its own cluster's (the clusters sit 7.5 standard deviations apart in two
+/// features, so the Bayes error is about 1e-7), one component per cluster,
+/// and the posterior is a probability of at least one half that is near 1
+/// for all but the rows between the clusters.
+#[test]
+fn mixture_components_name_each_rows_cluster() {
+    let x = two_clusters();
+    let opts = FitOptions { components: Some(2), quiet: true, threads: Some(1), ..FitOptions::default() };
+    let model = fit(&x, None, &opts).unwrap();
+    let e = model.evaluate(&x, 1);
+    // Row 0 is in the first cluster, row 1 in the second.
+    let of_cluster = [e.component[0], e.component[1]];
+    assert_ne!(of_cluster[0], of_cluster[1]);
+    for r in 0..x.rows {
+        let cluster = if r % 3 == 0 { 0 } else { 1 };
+        assert_eq!(e.component[r], of_cluster[cluster], "row {r}");
+        assert!((0.5..=1.0).contains(&e.component_probability[r]), "row {r}: {}", e.component_probability[r]);
+    }
+    let sure = e.component_probability.iter().filter(|&&p| p > 0.999).count();
+    assert!(sure as f64 >= 0.99 * x.rows as f64, "{sure} of {}", x.rows);
+}
+
 /// Six well-separated Gaussian clusters: the doubling ladder (1, 2, 4, 8,
 /// ...) holds no 6, and the counts tried halfway between its steps find
 /// the true number of components.
