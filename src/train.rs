@@ -290,7 +290,7 @@ fn fit_one(run: &Run, opts: &FitOptions) -> Result<Model> {
     put_params(&mut learned.model, &learned.best_params);
     if learned.settings.kind == Kind::Mixture {
         let rows = Rows::new(run, &learned.settings, &learned.model);
-        fit_mixture::fit_mixture(&rows, &mut learned, opts.components, opts.quiet, run.deadline)?;
+        fit_mixture::fit_mixture(&rows, &mut learned, opts.components, opts.quiet, run.deadline, run.stop)?;
     }
     if let Some(sigma) = learned.settings.background_noise {
         let bg = train_background(run, opts, &learned, sigma, started)?;

@@ -303,13 +303,15 @@ fn between(best: usize) -> [usize; 2] {
 
 /// Fit the mixture into `l.model`; the best validation NLL (nats per
 /// vector, input space) goes into the training state. Past `deadline` no
-/// further component count is tried once one has fitted.
+/// further component count is tried once one has fitted; when `stop` is
+/// set (Ctrl-C, SIGTERM) the fit ends as interrupted before the next count.
 pub(super) fn fit_mixture(
     rows: &Rows,
     l: &mut Learned,
     asked: Option<usize>,
     quiet: bool,
     deadline: Option<std::time::Instant>,
+    stop: Option<&std::sync::atomic::AtomicBool>,
 ) -> Result<()> {
     let d = l.model.dim();
     let train = em_rows(rows, l.settings.seed);
@@ -334,7 +336,14 @@ pub(super) fn fit_mixture(
     let ladder = component_counts(largest, d, asked);
     let mut since_best = 0;
     let out_of_time = |s: &Search| s.best.is_some() && deadline.is_some_and(|d| std::time::Instant::now() >= d);
+    let interrupted = |k: usize| -> Result<()> {
+        match stop.is_some_and(|f| f.load(std::sync::atomic::Ordering::SeqCst)) {
+            true => Err(Error::Interrupted(format!("interrupted before the mixture of {k} components"))),
+            false => Ok(()),
+        }
+    };
     for &k in &ladder {
+        interrupted(k)?;
         if out_of_time(&search) {
             break;
         }
@@ -350,6 +359,7 @@ pub(super) fn fit_mixture(
     if asked.is_none() {
         if let Some(k) = search.best.as_ref().map(|b| b.tried.components) {
             for c in between(k).into_iter().filter(|&c| c > 1 && room_for(largest, d, c)) {
+                interrupted(c)?;
                 if out_of_time(&search) {
                     break;
                 }

@@ -112,6 +112,7 @@ pub(super) fn fit_best(run: &Run, opts: &FitOptions, saved: Option<&SavedSearch>
                     }
                     continue;
                 }
+                Err(Error::Interrupted(msg)) => return Err(interrupted(run, best, msg)),
                 Err(e) => return Err(e),
             };
             let c = Candidate {
