@@ -162,6 +162,17 @@ fn mixture_components_name_each_rows_cluster() {
     assert!(sure as f64 >= 0.99 * x.rows as f64, "{sure} of {}", x.rows);
 }
 
+/// A stop (Ctrl-C, SIGTERM) already raised ends a mixture fit as
+/// interrupted before its first component count, not after the ladder.
+#[test]
+fn a_raised_stop_interrupts_the_mixture() {
+    let x = two_clusters();
+    let stop = std::sync::atomic::AtomicBool::new(true);
+    let opts = FitOptions { kind: Some(Kind::Mixture), quiet: true, threads: Some(1), ..FitOptions::default() };
+    let err = tidemark::train::fit_run(&Run { stop: Some(&stop), ..Run::new(&x) }, &opts).unwrap_err();
+    assert!(matches!(&err, tidemark::error::Error::Interrupted(m) if m.contains("while fitting the mixture")), "{err}");
+}
+
 /// Six well-separated Gaussian clusters: the doubling ladder (1, 2, 4, 8,
 /// ...) holds no 6, and the counts tried halfway between its steps find
 /// the true number of components.

@@ -336,14 +336,14 @@ pub(super) fn fit_mixture(
     let ladder = component_counts(largest, d, asked);
     let mut since_best = 0;
     let out_of_time = |s: &Search| s.best.is_some() && deadline.is_some_and(|d| std::time::Instant::now() >= d);
-    let interrupted = |k: usize| -> Result<()> {
+    let interrupted = || -> Result<()> {
         match stop.is_some_and(|f| f.load(std::sync::atomic::Ordering::SeqCst)) {
-            true => Err(Error::Interrupted(format!("interrupted before the mixture of {k} components"))),
+            true => Err(Error::Interrupted("interrupted while fitting the mixture".into())),
             false => Ok(()),
         }
     };
     for &k in &ladder {
-        interrupted(k)?;
+        interrupted()?;
         if out_of_time(&search) {
             break;
         }
@@ -359,7 +359,7 @@ pub(super) fn fit_mixture(
     if asked.is_none() {
         if let Some(k) = search.best.as_ref().map(|b| b.tried.components) {
             for c in between(k).into_iter().filter(|&c| c > 1 && room_for(largest, d, c)) {
-                interrupted(c)?;
+                interrupted()?;
                 if out_of_time(&search) {
                     break;
                 }
