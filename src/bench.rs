@@ -5,7 +5,7 @@
 
 use crate::flow::{Flow, FlowSpec, Mixing, Workers};
 use crate::linalg::{matmul, time_in_products, View};
-use crate::train::Adam;
+use crate::train::{Adam, ParamGroups};
 use rand::rngs::StdRng;
 use rand::{Rng, SeedableRng};
 use rand_distr::{Distribution, StandardNormal};
@@ -102,14 +102,14 @@ pub fn run(cfg: &BenchConfig) -> BenchResult {
     let mut workers = Workers::new(&flow, cfg.threads, cfg.batch);
     let mut grad = vec![0.0f32; flow.param_count()];
     let mut adam = Adam::new(flow.param_count());
-    let decay = vec![false; flow.param_count()];
+    let groups = ParamGroups::uniform(flow.param_count(), false);
     let (mut steps, mut at) = (0usize, 0usize);
     let products_before = time_in_products();
     let start = Instant::now();
     while start.elapsed().as_secs_f64() < cfg.seconds || steps < 3 {
         let x = &data[at * cfg.batch * cfg.dim..(at + 1) * cfg.batch * cfg.dim];
         workers.nll_and_grad(&flow, x, None, cfg.batch, None, &mut grad);
-        adam.step_on(&workers, &mut flow.params, &grad, 1e-4, 0.0, &decay);
+        adam.step_on(&workers, &mut flow.params, &grad, 1e-4, 0.0, &groups);
         steps += 1;
         at = (at + 1) % 8;
     }

@@ -27,6 +27,7 @@ use std::time::Instant;
 mod checkpoint;
 mod fit_mixture;
 mod log;
+mod optimizer;
 mod options;
 mod progress;
 mod race;
@@ -34,93 +35,10 @@ mod select;
 mod start;
 use log::write_log;
 pub use log::{read_log, LogEntry, TrainingLog};
+use optimizer::clip_norm;
+pub use optimizer::{learning_rate, Adam, ParamGroups};
 pub use options::*;
 use start::{class_indices, new_learned, start};
-
-/// Adam (Kingma & Ba 2015) with decoupled weight decay (Loshchilov & Hutter
-/// 2019) over the flat parameter vector, in one fused pass. Its whole state
-/// (moments and step count) is saved in checkpoints.
-#[derive(Clone)]
-pub struct Adam {
-    pub m: Vec<f32>,
-    pub v: Vec<f32>,
-    pub t: u64,
-}
-
-impl Adam {
-    const BETA1: f32 = 0.9;
-    const BETA2: f32 = 0.999;
-    const EPS: f32 = 1e-8;
-
-    pub fn new(n: usize) -> Adam {
-        Adam { m: vec![0.0; n], v: vec![0.0; n], t: 0 }
-    }
-
-    /// One update; `decay[i]` says whether parameter i takes weight decay.
-    pub fn step(&mut self, params: &mut [f32], grad: &[f32], lr: f64, weight_decay: f64, decay: &[bool]) {
-        let (step, eps, shrink) = self.advance(lr, weight_decay);
-        adam_update(params, grad, &mut self.m, &mut self.v, decay, step, eps, shrink);
-    }
-
-    /// [`Adam::step`] split over the workers' threads (same result).
-    pub fn step_on(
-        &mut self,
-        workers: &Workers,
-        params: &mut [f32],
-        grad: &[f32],
-        lr: f64,
-        weight_decay: f64,
-        decay: &[bool],
-    ) {
-        let (step, eps, shrink) = self.advance(lr, weight_decay);
-        workers.for_param_blocks(params, &mut self.m, &mut self.v, |at, p, m, v| {
-            let n = p.len();
-            adam_update(p, &grad[at..at + n], m, v, &decay[at..at + n], step, eps, shrink);
-        });
-    }
-
-    /// Count the step; the bias-corrected step size, epsilon and decay factor.
-    fn advance(&mut self, lr: f64, weight_decay: f64) -> (f32, f32, f32) {
-        self.t += 1;
-        let c1 = 1.0 - (Self::BETA1 as f64).powi(self.t as i32);
-        let c2 = 1.0 - (Self::BETA2 as f64).powi(self.t as i32);
-        ((lr * c2.sqrt() / c1) as f32, Self::EPS * c2.sqrt() as f32, (lr * weight_decay) as f32)
-    }
-}
-
-elementwise! {
-    /// One AdamW update of a block of parameters with its moments.
-    #[allow(clippy::too_many_arguments)]
-    fn adam_update(
-        p: &mut [f32],
-        g: &[f32],
-        m: &mut [f32],
-        v: &mut [f32],
-        decay: &[bool],
-        step: f32,
-        eps: f32,
-        shrink: f32,
-    ) {
-        let (b1, b2) = (Adam::BETA1, Adam::BETA2);
-        for ((((p, &g), m), v), &d) in p.iter_mut().zip(g).zip(m).zip(v).zip(decay) {
-            *m = b1 * *m + (1.0 - b1) * g;
-            *v = b2 * *v + (1.0 - b2) * g * g;
-            // Branch-free, so the loop vectorises.
-            let decayed = *p - f32::from(u8::from(d)) * shrink * *p;
-            *p = decayed - step * *m / (v.sqrt() + eps);
-        }
-    }
-}
-
-/// Learning rate at `step` of `total`: linear warm-up, then cosine decay.
-pub fn learning_rate(base: f64, step: usize, total: usize, warmup_fraction: f64) -> f64 {
-    let warm = ((total as f64 * warmup_fraction).ceil() as usize).max(1);
-    if step < warm {
-        return base * (step + 1) as f64 / warm as f64;
-    }
-    let progress = (step - warm) as f64 / (total - warm).max(1) as f64;
-    base * 0.5 * (1.0 + (std::f64::consts::PI * progress.min(1.0)).cos())
-}
 
 /// Independent seeds from (seed, purpose, counter).
 fn derive(seed: u64, purpose: u64, counter: u64) -> u64 {
@@ -533,7 +451,7 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant, pause:
     let mut workers = Workers::new(trained_flow(&mut l.model), s.threads, s.batch_size);
     let mut grad = vec![0.0f32; params(&l.model).len()];
     let mut batch = BatchBuffers::default();
-    let decay = decay_mask(trained_flow(&mut l.model));
+    let groups = ParamGroups::for_flow(trained_flow(&mut l.model));
     let position = |st: &TrainState| (st.epoch - 1) * steps_per_epoch + st.batch;
     let progress = Progress::new(total_steps, position(&l.state), opts.quiet);
     let seconds_before = l.state.seconds;
@@ -589,7 +507,7 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant, pause:
             }
             clip_norm(&mut grad, grad_norm, s.grad_clip);
             let lr = learning_rate(s.lr, l.state.step, total_steps, s.warmup_fraction) * l.state.lr_scale;
-            l.adam.step_on(&workers, &mut trained_flow(&mut l.model).params, &grad, lr, s.weight_decay, &decay);
+            l.adam.step_on(&workers, &mut trained_flow(&mut l.model).params, &grad, lr, s.weight_decay, &groups);
             l.state.adam_t = l.adam.t;
             l.state.train_sum += nll * chunk.len() as f64;
             l.state.grad_norm_sum += grad_norm;
@@ -651,18 +569,6 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant, pause:
     }
     progress.finish();
     Ok(())
-}
-
-/// Conditioner weight matrices take weight decay; biases and ActNorm do not
-/// (common practice).
-fn decay_mask(flow: &Flow) -> Vec<bool> {
-    let mut mask = vec![false; flow.param_count()];
-    for slot in &flow.slots {
-        for lin in &slot.linears {
-            mask[lin.weight..lin.weight + lin.out * lin.inp].fill(true);
-        }
-    }
-    mask
 }
 
 /// Write a checkpoint and the best model so far, then report why training
@@ -758,15 +664,6 @@ fn scoring_references(rows: &Rows, l: &mut Learned) {
     l.model.meta.scoring = meta;
 }
 
-/// Scale `g`, whose global norm is `norm`, down to norm `max` when it is
-/// longer.
-fn clip_norm(g: &mut [f32], norm: f64, max: f64) {
-    if norm > max {
-        let s = (max / norm) as f32;
-        g.iter_mut().for_each(|v| *v *= s);
-    }
-}
-
 elementwise! {
     /// The sum of squares in f64, in sixteen interleaved partial sums so
     /// that the loop vectorises and hides the add latency. Infinite or NaN
@@ -781,32 +678,5 @@ elementwise! {
             }
         }
         acc.iter().sum::<f64>() + tail
-    }
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn schedule_warms_up_then_decays_to_zero() {
-        let total = 1000;
-        assert!((learning_rate(1e-3, 0, total, 0.02) - 1e-3 / 20.0).abs() < 1e-12);
-        assert!((learning_rate(1e-3, 19, total, 0.02) - 1e-3).abs() < 1e-12);
-        assert!(learning_rate(1e-3, 500, total, 0.02) < 1e-3);
-        assert!(learning_rate(1e-3, 999, total, 0.02) < 1e-7);
-    }
-
-    /// Adam's first step moves every parameter by lr against the sign of
-    /// its gradient (bias correction makes m/sqrt(v) = sign(g); Kingma & Ba).
-    /// Decoupled weight decay then shrinks by lr * wd on top.
-    #[test]
-    fn adam_first_step_is_lr_times_sign_plus_decoupled_decay() {
-        let mut p = vec![1.0f32, 1.0, 1.0];
-        let mut adam = Adam::new(3);
-        adam.step(&mut p, &[0.5, -2.0, 1e-3], 0.01, 0.5, &[false, false, true]);
-        for (v, want) in p.iter().zip([0.99, 1.01, 1.0 - 0.005 - 0.01]) {
-            assert!((v - want).abs() < 1e-5, "{v} vs {want}");
-        }
     }
 }

@@ -11,7 +11,7 @@ use tidemark::data::{write_npy, Dataset, Matrix};
 use tidemark::flow::{Coupling, Flow, FlowSpec, Mixing, Workers};
 use tidemark::linalg::inside_gemm;
 use tidemark::preprocess::{Method, Preprocessor, TransformScratch, DEFAULT_DEAD_THRESHOLD};
-use tidemark::train::Adam;
+use tidemark::train::{Adam, ParamGroups};
 
 struct Counting;
 
@@ -59,7 +59,7 @@ fn a_training_step_allocates_nothing_after_the_first() {
         let mut workers = Workers::new(&flow, threads, rows);
         let mut grad = vec![0.0f32; flow.param_count()];
         let mut adam = Adam::new(flow.param_count());
-        let decay = vec![true; flow.param_count()];
+        let groups = ParamGroups::uniform(flow.param_count(), true);
         let (mut raw, mut batch, mut scratch) = (Vec::new(), vec![0.0f32; rows * k], TransformScratch::default());
         let mut step = |flow: &mut Flow, s: usize| {
             let idx: Vec<usize> = (0..rows).map(|r| (r * 37 + s * 101) % n).collect();
@@ -67,7 +67,7 @@ fn a_training_step_allocates_nothing_after_the_first() {
             data.gather(&idx, &mut raw);
             pre.transform_with(&raw, rows, &mut batch, None, &mut scratch);
             workers.nll_and_grad(flow, &batch, Some(&classes), rows, Some((0.1, s as u64)), &mut grad);
-            adam.step_on(&workers, &mut flow.params, &grad, 1e-3, 1e-4, &decay);
+            adam.step_on(&workers, &mut flow.params, &grad, 1e-3, 1e-4, &groups);
             (OURS.load(Ordering::SeqCst) - before.0, GEMM.load(Ordering::SeqCst) - before.1)
         };
         // Warm-up: the buffers grow, and each pool thread allocates gemm's
