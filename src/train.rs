@@ -451,7 +451,7 @@ fn train(run: &Run, opts: &FitOptions, l: &mut Learned, started: Instant, pause:
     let mut workers = Workers::new(trained_flow(&mut l.model), s.threads, s.batch_size);
     let mut grad = vec![0.0f32; params(&l.model).len()];
     let mut batch = BatchBuffers::default();
-    let groups = ParamGroups::for_flow(trained_flow(&mut l.model));
+    let groups = ParamGroups::for_flow(trained_flow(&mut l.model), s.lu_block_rate());
     let position = |st: &TrainState| (st.epoch - 1) * steps_per_epoch + st.batch;
     let progress = Progress::new(total_steps, position(&l.state), opts.quiet);
     let seconds_before = l.state.seconds;

@@ -63,6 +63,9 @@ pub(crate) struct FitArgs {
     /// What mixes features between coupling layers [default: permutation].
     #[arg(long, value_enum)]
     mixing: Option<Mixing>,
+    /// LU blocks' learning rate as a fraction of the schedule's (with --mixing lu) [default: 0.2 x 384 / D, at most 1].
+    #[arg(long)]
+    lu_rate: Option<f64>,
     /// Leading principal components the flow models; the rest are standard normal [default: all, or a third when rows per dimension < 50].
     #[arg(long)]
     flow_dims: Option<usize>,
@@ -162,6 +165,7 @@ impl FitArgs {
             depth: self.depth,
             clamp: self.clamp,
             mixing: self.mixing,
+            lu_rate: self.lu_rate,
             coupling: self.coupling,
             bins: self.bins,
             tail_bound: self.tail_bound,

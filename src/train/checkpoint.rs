@@ -154,6 +154,7 @@ fn apply_resume_options(s: &mut Settings, state: &TrainState, o: &FitOptions) ->
     keep("--depth", o.depth, s.depth)?;
     keep("--clamp", o.clamp, s.clamp)?;
     keep("--mixing", o.mixing, s.mixing)?;
+    keep("--lu-rate", o.lu_rate.map(Some), s.lu_rate)?;
     let coupling = |c: &crate::flow::Coupling| match c {
         crate::flow::Coupling::Affine => super::CouplingKind::Affine,
         crate::flow::Coupling::Spline { .. } => super::CouplingKind::Spline,

@@ -97,8 +97,8 @@ impl ParamGroups {
 
     /// A flow's parameters. Conditioner weight matrices take weight decay;
     /// biases, ActNorm and LU mixing do not (common practice). LU blocks
-    /// step at [`lu_rate`] of the learning rate.
-    pub fn for_flow(flow: &Flow) -> ParamGroups {
+    /// step at `lu_rate` of the learning rate (by default [`lu_rate`]).
+    pub fn for_flow(flow: &Flow, lu_rate: f32) -> ParamGroups {
         let mut groups = ParamGroups::uniform(flow.param_count(), false);
         let dim = flow.spec.dim;
         for slot in &flow.slots {
@@ -106,7 +106,7 @@ impl ParamGroups {
                 groups.decay[lin.weight..lin.weight + lin.out * lin.inp].fill(true);
             }
             if let Some(mix) = slot.mix {
-                groups.rate[mix..mix + dim * dim].fill(lu_rate(dim));
+                groups.rate[mix..mix + dim * dim].fill(lu_rate);
             }
         }
         groups
@@ -189,7 +189,7 @@ mod tests {
             coupling: Coupling::Affine,
         };
         let flow = Flow::new(spec, 1);
-        let groups = ParamGroups::for_flow(&flow);
+        let groups = ParamGroups::for_flow(&flow, lu_rate(128));
         assert_eq!((lu_rate(384), lu_rate(128), lu_rate(64)), (0.2, 0.6, 1.0));
         let (block, weight) = (flow.slots[1].mix.unwrap(), flow.slots[1].linears[0].weight);
         assert_eq!((groups.rate[block], groups.rate[block + 128 * 128 - 1], groups.rate[weight]), (0.6, 0.6, 1.0));

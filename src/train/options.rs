@@ -15,6 +15,8 @@ pub struct FitOptions {
     pub depth: Option<usize>,
     pub clamp: Option<f32>,
     pub mixing: Option<Mixing>,
+    /// LU blocks' learning rate as a fraction of the schedule's.
+    pub lu_rate: Option<f64>,
     pub coupling: Option<CouplingKind>,
     pub bins: Option<usize>,
     pub tail_bound: Option<f32>,
@@ -115,6 +117,10 @@ impl FitOptions {
         real(self.clamp.map(f64::from), "clamp", check::positive)?;
         real(self.tail_bound.map(f64::from), "tail_bound", check::positive)?;
         real(self.lr, "lr", check::positive)?;
+        real(self.lu_rate, "lu_rate", check::positive)?;
+        if self.lu_rate.is_some() && self.mixing == Some(Mixing::Permutation) {
+            return Err(Error::Invalid(format!("{} steps LU blocks; it needs {} lu", n("lu_rate"), n("mixing"))));
+        }
         real(self.grad_clip, "grad_clip", check::positive)?;
         real(self.noise, "noise", check::non_negative)?;
         real(self.weight_decay, "weight_decay", check::non_negative)?;
@@ -152,6 +158,7 @@ impl FitOptions {
             depth: self.depth.or(fallback.depth),
             clamp: self.clamp.or(fallback.clamp),
             mixing: self.mixing.or(fallback.mixing),
+            lu_rate: self.lu_rate.or(fallback.lu_rate),
             coupling: self.coupling.or(fallback.coupling),
             bins: self.bins.or(fallback.bins),
             tail_bound: self.tail_bound.or(fallback.tail_bound),
@@ -341,6 +348,11 @@ pub struct Settings {
     /// option existed used the permutation).
     #[serde(default)]
     pub mixing: Mixing,
+    /// With LU mixing, the LU blocks' learning rate as a fraction of the
+    /// schedule's; `None` (LU flows written before the option existed): the
+    /// rule, [`lu_rate`](super::optimizer::lu_rate) of the flow's dims.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub lu_rate: Option<f64>,
     /// The coupling transform (models made before the option existed used
     /// the affine one).
     #[serde(default)]
@@ -407,6 +419,7 @@ impl FitOptions {
             || self.depth.is_some()
             || self.clamp.is_some()
             || self.mixing.is_some()
+            || self.lu_rate.is_some()
             || self.coupling.is_some()
             || self.bins.is_some()
             || self.tail_bound.is_some()
@@ -463,6 +476,10 @@ impl Settings {
         if flow_dims == 0 || flow_dims > d {
             return Err(Error::Invalid(format!("--flow-dims must be between 1 and {d} (the live features)")));
         }
+        let mixing = o.mixing.unwrap_or_default();
+        if o.lu_rate.is_some() && mixing != Mixing::Lu {
+            return Err(Error::Invalid("--lu-rate steps LU blocks; it needs --mixing lu".into()));
+        }
         let batch_size = o.batch_size.unwrap_or(if n >= 20_000 { 256 } else { 128 }).clamp(1, n);
         let steps_per_epoch = n.div_ceil(batch_size);
         let s = Settings {
@@ -473,7 +490,8 @@ impl Settings {
             hidden: o.hidden.unwrap_or((2 * flow_dims).clamp(64, 512).next_multiple_of(32)),
             depth: o.depth.unwrap_or(2),
             clamp: o.clamp.unwrap_or(3.0),
-            mixing: o.mixing.unwrap_or_default(),
+            mixing,
+            lu_rate: (mixing == Mixing::Lu).then(|| o.lu_rate.unwrap_or(super::optimizer::lu_rate(flow_dims) as f64)),
             coupling: match o.coupling {
                 Some(CouplingKind::Spline) => Coupling::Spline {
                     bins: o.bins.unwrap_or(DEFAULT_BINS),
@@ -501,5 +519,10 @@ impl Settings {
             threads: o.threads.unwrap_or_else(default_threads),
         };
         Ok(s)
+    }
+
+    /// The LU blocks' learning rate as a fraction of the schedule's.
+    pub fn lu_block_rate(&self) -> f32 {
+        self.lu_rate.map_or_else(|| super::optimizer::lu_rate(self.flow_dims), |r| r as f32)
     }
 }
