@@ -3,7 +3,10 @@
 //! class. Also the flow's tensors in a model file, shared with the
 //! background flow of the likelihood-ratio score.
 
-use super::{draw_classes, le_bytes_f32, le_bytes_i64, unit_gaussian_parts, Density, Evaluate, Kind, Parts, Put};
+use super::{
+    draw_classes, le_bytes_f32, le_bytes_i64, unit_gaussian_parts, Density, Evaluate, Kind, Layout, Parts, Put, Stored,
+    TensorSource,
+};
 use crate::error::{Error, Result};
 use crate::flow::{self, Flow, FlowSpec, Workers};
 use rand::rngs::StdRng;
@@ -27,6 +30,12 @@ impl FlowDensity {
     fn class_means(&self) -> &[f32] {
         let f = &self.flow;
         &f.params[f.class_means..f.class_means + f.spec.classes * f.spec.dim]
+    }
+}
+
+impl Stored for FlowDensity {
+    fn read(t: &dyn TensorSource, l: Layout) -> Result<FlowDensity> {
+        Ok(FlowDensity::new(read_flow(t, "flow", l.flow, l.version)?, l.dim, l.log_priors))
     }
 }
 
@@ -186,7 +195,7 @@ pub(crate) fn write_flow(flow: &Flow, prefix: &str, put: &mut Put) {
 /// Read a flow written by [`write_flow`]. Every tensor's shape is checked
 /// before the flow is built, so the metadata cannot size the flow's
 /// parameters beyond what the file holds.
-pub(crate) fn read_flow(t: &dyn super::TensorSource, prefix: &str, spec: &FlowSpec, version: u32) -> Result<Flow> {
+pub(crate) fn read_flow(t: &dyn TensorSource, prefix: &str, spec: &FlowSpec, version: u32) -> Result<Flow> {
     let path = t.path();
     if version < crate::model::format_version_for(spec.mixing, Kind::Flow, false) {
         return Err(Error::model(path, format!("{prefix}: LU mixing in a version {version} model file")));

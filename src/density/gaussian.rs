@@ -4,7 +4,9 @@
 //! around each class's whitened mean (one shared covariance), weighted by
 //! the class priors.
 
-use super::{draw_classes, le_bytes_f32, unit_gaussian_parts, Density, Evaluate, Parts, Put, TensorSource};
+use super::{
+    draw_classes, le_bytes_f32, unit_gaussian_parts, Density, Evaluate, Layout, Parts, Put, Stored, TensorSource,
+};
 use crate::error::Result;
 use rand::rngs::StdRng;
 use rand_distr::{Distribution, StandardNormal};
@@ -25,12 +27,12 @@ pub struct Gaussian {
     pub log_priors: Vec<f64>,
 }
 
-impl Gaussian {
-    /// Read the class means of `classes` classes over `mean_dims` dims.
-    pub(crate) fn read(t: &dyn TensorSource, dim: usize, mean_dims: usize, log_priors: Vec<f64>) -> Result<Gaussian> {
+impl Stored for Gaussian {
+    /// Reads the class means of each class over `mean_dims` dims.
+    fn read(t: &dyn TensorSource, l: Layout) -> Result<Gaussian> {
         let class_means =
-            if log_priors.is_empty() { Vec::new() } else { t.f32s(CLASS_MEANS, &[log_priors.len(), mean_dims])? };
-        Ok(Gaussian { dim, mean_dims, class_means, log_priors })
+            if l.log_priors.is_empty() { Vec::new() } else { t.f32s(CLASS_MEANS, &[l.log_priors.len(), l.mean_dims])? };
+        Ok(Gaussian { dim: l.dim, mean_dims: l.mean_dims, class_means, log_priors: l.log_priors })
     }
 }
 

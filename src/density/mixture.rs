@@ -4,7 +4,7 @@
 //! own components, weighted within the class and then by the class prior,
 //! so that p(u) = sum_c pi_c p(u | c) is itself one mixture.
 
-use super::{argmax, le_bytes_f64, le_bytes_i64, Density, Evaluate, Parts, Put, TensorSource};
+use super::{argmax, le_bytes_f64, le_bytes_i64, Density, Evaluate, Layout, Parts, Put, Stored, TensorSource};
 use crate::error::{Error, Result};
 use crate::mixture::Mixture;
 use rand::rngs::StdRng;
@@ -22,13 +22,14 @@ pub struct MixtureDensity {
 /// Where the class of each component sits in a model file.
 const COMPONENT_CLASS: &str = "mixture.component_class";
 
-impl MixtureDensity {
-    /// A mixture of `c` components over `d` dims: weights that are
+impl Stored for MixtureDensity {
+    /// A mixture of `components` components over `dim` dims: weights that are
     /// log-probabilities summing to 1, finite means, and precision factors
     /// that are upper triangular with a positive diagonal; with classes,
     /// every class owns a component and its components' weights sum to its
     /// prior.
-    pub(crate) fn read(t: &dyn TensorSource, c: usize, d: usize, log_priors: Vec<f64>) -> Result<MixtureDensity> {
+    fn read(t: &dyn TensorSource, l: Layout) -> Result<MixtureDensity> {
+        let (c, d, log_priors) = (l.components, l.dim, l.log_priors);
         let log_weights = t.f64s("mixture.log_weights", &[c])?;
         let means = t.f64s("mixture.means", &[c, d])?;
         let precision_cholesky = t.f64s("mixture.precision_cholesky", &[c, d, d])?;

@@ -5,8 +5,12 @@
 //! with its parts, draws whitened rows, and writes its tensors, so that the
 //! model (which adds the whitening's log-determinant: the change of
 //! variables back to input space), scoring, calibration and the report
-//! treat them alike. How each kind is fitted stays with training: a flow
-//! learns by gradient steps, a mixture by EM, a Gaussian in closed form.
+//! treat them alike, and reads its tensors back ([`Stored`]). How each kind
+//! is fitted stays with training: a flow learns by gradient steps with
+//! checkpoints and early stopping, a mixture by EM with its size chosen on
+//! validation rows, a Gaussian in closed form with the whitening; one
+//! signature would fit none of them well, and the search compares the
+//! fitted models through [`Density`] and their validation NLL.
 
 pub mod flow;
 pub mod gaussian;
@@ -88,6 +92,30 @@ pub(crate) trait TensorSource {
     fn f64s(&self, name: &str, shape: &[usize]) -> crate::error::Result<Vec<f64>>;
     /// Non-negative indices stored as i64.
     fn indices(&self, name: &str, len: usize) -> crate::error::Result<Vec<usize>>;
+}
+
+/// What a model file's metadata says about its density, for reading its
+/// tensors back: the whitened dims and class priors, and per kind the dims
+/// that carry class means, the components, or the flow's shape and the
+/// file's format version.
+pub(crate) struct Layout<'a> {
+    pub dim: usize,
+    pub log_priors: Vec<f64>,
+    pub mean_dims: usize,
+    pub components: usize,
+    pub flow: &'a crate::flow::FlowSpec,
+    pub version: u32,
+}
+
+/// A kind as a model file holds it: [`Density::write`] puts its tensors,
+/// [`Stored::read`] reads them back, every shape and value checked.
+pub(crate) trait Stored: Density + Sized + 'static {
+    fn read(t: &dyn TensorSource, layout: Layout) -> crate::error::Result<Self>;
+}
+
+/// Read a density of kind `D`, behind the one interface.
+pub(crate) fn read_boxed<D: Stored>(t: &dyn TensorSource, layout: Layout) -> crate::error::Result<Box<dyn Density>> {
+    Ok(Box::new(D::read(t, layout)?))
 }
 
 /// Adds one tensor (name, dtype, shape, little-endian bytes) to a model file.

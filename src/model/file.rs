@@ -5,7 +5,8 @@
 use super::{Kind, Meta, Model, ScoringRefs, FORMAT_VERSION, META_KEY};
 use crate::density::flow::{read_flow, write_flow};
 use crate::density::{
-    le_bytes_f32, le_bytes_f64, le_bytes_i64, Density, FlowDensity, Gaussian, MixtureDensity, TensorSource,
+    le_bytes_f32, le_bytes_f64, le_bytes_i64, read_boxed, Density, FlowDensity, Gaussian, Layout, MixtureDensity,
+    TensorSource,
 };
 use crate::error::{Error, Result};
 use crate::flow::FlowSpec;
@@ -475,19 +476,20 @@ impl Extras {
 
 /// The density the metadata describes, from its tensors.
 fn read_density(t: &Tensors, meta: &Meta) -> Result<Box<dyn Density>> {
-    let dim = meta.preprocessing.whitened_dims;
     let counts: Vec<usize> = meta.classes.iter().map(|c| c.rows).collect();
-    let log_priors = crate::density::log_priors(&counts);
-    Ok(match (meta.kind, &meta.mixture) {
-        (Kind::Mixture, Some(mm)) => Box::new(MixtureDensity::read(t, mm.components, dim, log_priors)?),
-        (Kind::Gaussian | Kind::ClassGaussian, _) if meta.flow.layers == 0 => {
-            Box::new(Gaussian::read(t, dim, meta.flow_dims, log_priors)?)
-        }
-        _ => {
-            let flow = read_flow(t, "flow", &meta.flow, meta.format_version)?;
-            Box::new(FlowDensity::new(flow, dim, log_priors))
-        }
-    })
+    let layout = Layout {
+        dim: meta.preprocessing.whitened_dims,
+        log_priors: crate::density::log_priors(&counts),
+        mean_dims: meta.flow_dims,
+        components: meta.mixture.as_ref().map_or(0, |m| m.components),
+        flow: &meta.flow,
+        version: meta.format_version,
+    };
+    match meta.kind {
+        Kind::Mixture => read_boxed::<MixtureDensity>(t, layout),
+        Kind::Gaussian | Kind::ClassGaussian if meta.flow.layers == 0 => read_boxed::<Gaussian>(t, layout),
+        _ => read_boxed::<FlowDensity>(t, layout),
+    }
 }
 
 fn from_f32(b: &[u8]) -> Vec<f32> {
