@@ -115,14 +115,26 @@ const MAX_DROPOUT: f64 = 0.5;
 /// cosine schedule.
 const LOCAL_SCHEDULE: usize = 2;
 
-/// The local round waits this many times the last round's patience before
-/// stopping early: twice, as the learning rate falls as much in twice the
-/// epochs, and half as much again because its flows are the candidates for
-/// the final model, whose validation NLL still falls in steps late in the
-/// cosine schedule. Measured on fashion (D = 320): its winner stopped at
-/// epoch 269 with a patience of 20; with 25 it ran to epoch 325 and its
-/// held-out log-likelihood rose by 2 nats.
+/// The first local round waits this many times the table's patience
+/// before stopping early: twice, as the learning rate falls as much in
+/// twice the epochs, and half as much again because its flows are the
+/// candidates for the final model, whose validation NLL still falls in
+/// steps late in the cosine schedule. Measured on fashion (D = 320): its
+/// winner stopped at epoch 269 with a patience of 20; with 25 it ran to
+/// epoch 325 and its held-out log-likelihood rose by 2 nats. Each further
+/// round waits [`LOCAL_SCHEDULE`] times its winner's patience, as long
+/// relative to its schedule.
 const LOCAL_PATIENCE: usize = 3;
+
+/// The early-stopping patience of a local round around a flow trained
+/// with `patience`, in the first round (`first`) or a local one.
+fn local_patience(patience: usize, first: bool) -> usize {
+    if first {
+        LOCAL_PATIENCE * patience
+    } else {
+        LOCAL_SCHEDULE * patience
+    }
+}
 
 /// What mixes features, as the local round varies it: the permutation, LU
 /// blocks at the rule's rate ([`lu_rate`] of the flow's dims, `None`) and,
@@ -152,11 +164,11 @@ fn mixing_name(choice: MixingChoice) -> &'static str {
 /// `settings` as resolved, its `opts` as given) with one regularisation
 /// step either way (dropout and input noise, weight decay at least
 /// [`REGULARISED_DECAY`] on the way up) crossed with every mixing choice
-/// ([`mixing_choices`]), all on the longer schedule and patience, the
-/// winner's own settings included. The first round samples each setting
+/// ([`mixing_choices`]), all on the longer schedule and with `patience`,
+/// the winner's own settings included. The first round samples each setting
 /// coarsely around the table; this round searches the winner's
 /// neighbourhood, as one tuning by hand would next.
-fn local_configs(winner: &FlowConfig, settings: &Settings) -> Vec<FlowConfig> {
+fn local_configs(winner: &FlowConfig, settings: &Settings, patience: usize) -> Vec<FlowConfig> {
     let epochs = LOCAL_SCHEDULE * settings.epochs;
     let own = (settings.mixing, winner.opts.lu_rate);
     let mut mixings = vec![own];
@@ -178,7 +190,7 @@ fn local_configs(winner: &FlowConfig, settings: &Settings) -> Vec<FlowConfig> {
                 mixing: Some(mixing),
                 lu_rate,
                 epochs: Some(epochs),
-                patience: Some(LOCAL_PATIENCE * settings.patience),
+                patience: Some(patience),
                 ..winner.opts.clone()
             };
             let mut what: Vec<String> = change.map(|c| format!("{c} regularisation")).into_iter().collect();
@@ -195,7 +207,8 @@ fn local_configs(winner: &FlowConfig, settings: &Settings) -> Vec<FlowConfig> {
 /// The next local round's configurations, around the best flow so far.
 fn around_winner(racers: &[Racer]) -> Vec<FlowConfig> {
     let w = &racers[winner(racers)];
-    local_configs(&w.config, w.flow.settings())
+    let settings = w.flow.settings();
+    local_configs(&w.config, settings, local_patience(settings.patience, w.first_stage == 0))
 }
 
 /// Most configurations of a local round around a flow over `flow_dims`:
@@ -651,6 +664,15 @@ mod tests {
         assert_eq!(running, [1, 0]);
     }
 
+    /// 10 epochs in the first round, 30 in the first local round, then
+    /// twice as many each round as the schedule doubles.
+    #[test]
+    fn patience_grows_with_the_schedule_after_the_first_local_round() {
+        assert_eq!(local_patience(10, true), 30);
+        assert_eq!(local_patience(30, false), 60);
+        assert_eq!(local_patience(60, false), 120);
+    }
+
     #[test]
     fn the_local_round_runs_on_a_longer_schedule() {
         assert_eq!(stages(0, 200), [50, 100, 200]);
@@ -696,7 +718,7 @@ mod tests {
         let opts = FitOptions { dropout: Some(0.0), noise: Some(0.0), ..FitOptions::default() };
         let table = Settings::resolve(&opts, 4000, 32, true, false).expect("valid settings");
         let winner = FlowConfig { name: "plain".into(), opts: opts.clone() };
-        let local = local_configs(&winner, &table);
+        let local = local_configs(&winner, &table, local_patience(table.patience, true));
         let names: Vec<&str> = local.iter().map(|c| c.name.as_str()).collect();
         let e = 2 * table.epochs;
         assert_eq!(
@@ -724,7 +746,7 @@ mod tests {
         let table = Settings::resolve(&opts, 40_000, 128, true, false).expect("valid settings");
         assert_eq!((table.flow_dims, local_most(128), local_most(76)), (128, 9, 6));
         let winner = FlowConfig { name: "w".into(), opts: opts.clone() };
-        let local = local_configs(&winner, &table);
+        let local = local_configs(&winner, &table, local_patience(table.patience, true));
         assert_eq!(local.len(), 9);
         let full =
             local.iter().find(|c| c.name == format!("w / LU mixing at the full rate, {} epochs", 2 * table.epochs));
@@ -732,7 +754,7 @@ mod tests {
         let lu = FitOptions { mixing: Some(Mixing::Lu), lu_rate: Some(1.0), ..opts.clone() };
         let lu_table = Settings::resolve(&lu, 40_000, 128, true, false).expect("valid settings");
         assert_eq!((lu_table.lu_rate, lu_table.lu_block_rate()), (Some(1.0), 1.0));
-        let around = local_configs(&FlowConfig { name: "w".into(), opts: lu }, &lu_table);
+        let around = local_configs(&FlowConfig { name: "w".into(), opts: lu }, &lu_table, 30);
         let rule = around.iter().find(|c| c.name == format!("w / LU mixing, {} epochs", 2 * table.epochs));
         assert_eq!(rule.map(|c| c.opts.lu_rate), Some(None));
         let by_rule = Settings::resolve(&rule.unwrap().opts, 40_000, 128, true, false).expect("valid settings");
