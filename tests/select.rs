@@ -92,7 +92,7 @@ fn interrupted_search_resumes_to_the_same_model() {
     let dir = tempfile::tempdir().unwrap();
     let s = |p: &std::path::Path| p.to_str().unwrap().to_string();
     let train = dir.path().join("train.npy");
-    common::save(&train, &common::wavy(6000, 0.0));
+    common::save(&train, &common::wavy(3000, 0.0));
     let args = |out: &std::path::Path| {
         vec![
             "fit".to_string(),
