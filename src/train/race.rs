@@ -576,18 +576,17 @@ pub(super) fn race_flows(
     Ok((racers, dims))
 }
 
-/// Sorts the flows still `running` after a stage by validation NLL (`nll`
-/// of each), keeps as many as half of the `entered` flows that began the
-/// stage (rounded up) and returns the ones cut, best first. A flow that
-/// stopped early within the stage left the race on its best and needs no
-/// more epochs, so its place goes to the next flow by rank: cutting half of
-/// the rest instead would drop flows that learn slowly at first (the more
-/// regularised ones) in favour of quick ones that already stopped, and
-/// spend less than the budget's projection ([`race_epochs`]) gave.
-fn halve_running(running: &mut Vec<usize>, entered: usize, nll: impl Fn(usize) -> f64) -> Vec<usize> {
-    running.sort_by(|&a, &b| nll(a).total_cmp(&nll(b)));
-    let keep = entered.div_ceil(2).min(running.len());
-    running.split_off(keep)
+/// Ranks the flows that began a stage (`entered`) by validation NLL
+/// (`nll` of each), early-stopped ones on their best among them, and splits
+/// the ranking after its better half (rounded up): successive halving's
+/// rule. Of the better half, the flows still training carry on; the ones
+/// that stopped need no more epochs, and their places are not handed down
+/// to flows ranked below them, which trail a flow that already stopped.
+fn better_half(entered: &[usize], nll: impl Fn(usize) -> f64) -> (Vec<usize>, Vec<usize>) {
+    let mut ranked = entered.to_vec();
+    ranked.sort_by(|&a, &b| nll(a).total_cmp(&nll(b)));
+    let rest = ranked.split_off(entered.len().div_ceil(2));
+    (ranked, rest)
 }
 
 /// End a stage: the better half of the flows that began it carries on; a
@@ -610,15 +609,15 @@ fn halve(racers: &mut [Racer], at: &mut Position) {
         }
     }
     let entered = at.alive.len();
-    at.alive.retain(|&i| racers[i].stopped.is_none());
-    let n = at.alive.len();
-    let cut = halve_running(&mut at.alive, entered, |i| racers[i].flow.best_validation_nll());
+    let (better, worse) = better_half(&at.alive, |i| racers[i].flow.best_validation_nll());
     if (round + 1) % ROUNDS != 0 {
-        for (rank, &i) in cut.iter().enumerate() {
-            let rank = rank + 1 + at.alive.len();
-            racers[i].stopped = Some(format!("halved out after {stage} (ranked {rank} of {n} still training)"));
+        for (rank, &i) in worse.iter().enumerate() {
+            let rank = rank + 1 + better.len();
+            let why = format!("halved out after {stage} (ranked {rank} of the {entered} that began it)");
+            racers[i].stopped.get_or_insert(why);
         }
     }
+    at.alive = better.into_iter().filter(|&i| racers[i].stopped.is_none()).collect();
     at.round += 1;
     at.next = 0;
 }
@@ -647,21 +646,18 @@ mod tests {
         assert_eq!(race_epochs(1, &[50, 100, 200]), 200);
     }
 
-    /// Nine flows began a stage and three stopped early in it: five of the
-    /// six still training carry on, the worst is cut. With none stopped,
-    /// the better half (rounded up) carries on.
+    /// Successive halving ranks every flow that began the stage, early
+    /// stopped or not: of nine, the better five by NLL are kept (whether
+    /// they still train is the caller's matter), the other four go, best
+    /// first; ties keep the order they entered in.
     #[test]
-    fn flows_that_stop_early_leave_their_places_to_the_next() {
-        let nll = [5.0, 1.0, 4.0, 2.0, 6.0, 3.0];
-        let mut running: Vec<usize> = (0..6).collect();
-        let cut = halve_running(&mut running, 9, |i| nll[i]);
-        assert_eq!((running, cut), (vec![1, 3, 5, 2, 0], vec![4]));
-        let mut running: Vec<usize> = (0..6).collect();
-        let cut = halve_running(&mut running, 6, |i| nll[i]);
-        assert_eq!((running, cut), (vec![1, 3, 5], vec![2, 0, 4]));
-        let mut running = vec![0, 1];
-        assert!(halve_running(&mut running, 9, |i| nll[i]).is_empty());
-        assert_eq!(running, [1, 0]);
+    fn the_better_half_of_the_flows_that_began_a_stage_is_kept() {
+        let nll = [5.0, 1.0, 4.0, 2.0, 6.0, 3.0, 9.0, 7.0, 8.0];
+        let entered: Vec<usize> = (0..9).collect();
+        assert_eq!(better_half(&entered, |i| nll[i]), (vec![1, 3, 5, 2, 0], vec![4, 7, 8, 6]));
+        assert_eq!(better_half(&[4, 2], |i| nll[i]), (vec![2], vec![4]));
+        assert_eq!(better_half(&[6], |i| nll[i]), (vec![6], vec![]));
+        assert_eq!(better_half(&[0, 1, 2], |_| 0.0), (vec![0, 1], vec![2]));
     }
 
     /// 10 epochs in the first round, 30 in the first local round, then
