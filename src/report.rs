@@ -241,7 +241,7 @@ fn chosen_epochs(log: &TrainingLog) -> Vec<LogEntry> {
 }
 
 /// The candidates a search compared: a table best first, and the flows'
-/// validation NLL after each round of successive halving beside the other
+/// validation NLL after each stage of successive halving beside the other
 /// kinds' (flat lines).
 fn leaderboard(candidates: &[Candidate]) -> Result<String> {
     let mut order: Vec<&Candidate> = candidates.iter().collect();
@@ -274,7 +274,7 @@ fn leaderboard(candidates: &[Candidate]) -> Result<String> {
     Ok(html)
 }
 
-/// Validation NLL per round of the successive halving, one line per flow;
+/// Validation NLL per stage of the successive halving, one line per flow;
 /// the kinds fitted once are drawn flat across the rounds.
 fn rounds(candidates: &[Candidate], raced: &[&Candidate]) -> Result<String> {
     let last = raced.iter().map(|c| c.first_stage + c.stages.len()).max().unwrap_or(1).max(2) as u32;
@@ -305,7 +305,7 @@ fn rounds(candidates: &[Candidate], raced: &[&Candidate]) -> Result<String> {
             .map_err(plot_error)?;
         chart
             .configure_mesh()
-            .x_desc("round")
+            .x_desc("stage of successive halving")
             .y_desc("validation NLL (nats per vector)")
             .x_labels(last as usize)
             .draw()
@@ -314,7 +314,7 @@ fn rounds(candidates: &[Candidate], raced: &[&Candidate]) -> Result<String> {
             let pts = c.stages.iter().enumerate().map(|(r, &v)| ((c.first_stage + r) as u32 + 1, v));
             let width = if c.chosen { 3 } else { 1 };
             chart.draw_series(LineSeries::new(pts.clone(), color(i).stroke_width(width))).map_err(plot_error)?;
-            // A flow halved out after the first round is a single point.
+            // A flow halved out after its first stage is a single point.
             chart.draw_series(pts.map(|p| Circle::new(p, 3, color(i).filled()))).map_err(plot_error)?;
         }
         for (j, c) in flat.iter().enumerate() {
@@ -327,9 +327,10 @@ fn rounds(candidates: &[Candidate], raced: &[&Candidate]) -> Result<String> {
     let names: Vec<String> = raced.iter().chain(&flat).map(|c| c.name.clone()).collect();
     let items: Vec<(&str, RGBColor)> = names.iter().enumerate().map(|(i, n)| (n.as_str(), color(i))).collect();
     Ok(format!(
-        "<figure>{svg}{}</figure>\n<p class=\"note\">Each flow's best validation NLL after each round; the better half \
-         of each round trains on. Flows that join at a later round race around the best flow so far on a longer schedule. \
-         Kinds fitted once are flat lines; the chosen density is drawn thick. Lower is better.</p>\n",
+        "<figure>{svg}{}</figure>\n<p class=\"note\">Each flow's best validation NLL after each stage of successive \
+         halving; of the better half of the flows that began a stage, those still training carry on. Flows that join \
+         at a later round race around the best flow so far on a longer schedule. Kinds fitted once are flat lines; the \
+         chosen density is drawn thick. Lower is better.</p>\n",
         legend(&items)
     ))
 }

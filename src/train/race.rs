@@ -576,22 +576,30 @@ pub(super) fn race_flows(
     Ok((racers, dims))
 }
 
-/// Ranks the flows that began a stage (`entered`) by validation NLL
-/// (`nll` of each), early-stopped ones on their best among them, and splits
-/// the ranking after its better half (rounded up): successive halving's
-/// rule. Of the better half, the flows still training carry on; the ones
-/// that stopped need no more epochs, and their places are not handed down
-/// to flows ranked below them, which trail a flow that already stopped.
-fn better_half(entered: &[usize], nll: impl Fn(usize) -> f64) -> (Vec<usize>, Vec<usize>) {
+/// The end of a stage under successive halving's rule: ranks the flows
+/// that began it (`entered`) by validation NLL (`nll` of each), early-stopped
+/// ones (`stopped`) on their best among them, and keeps the better half
+/// (rounded up). Returns the flows of that half still training, which carry
+/// on, and the flows still training below it, each with its rank among the
+/// `entered`, which are cut. An early-stopped flow needs no more epochs, and
+/// its place is not handed down to a flow that trails it; it takes a place
+/// only from flows it beats.
+fn halve_stage(
+    entered: &[usize],
+    nll: impl Fn(usize) -> f64,
+    stopped: impl Fn(usize) -> bool,
+) -> (Vec<usize>, Vec<(usize, usize)>) {
     let mut ranked = entered.to_vec();
     ranked.sort_by(|&a, &b| nll(a).total_cmp(&nll(b)));
-    let rest = ranked.split_off(entered.len().div_ceil(2));
-    (ranked, rest)
+    let keep = entered.len().div_ceil(2);
+    let on = ranked[..keep].iter().copied().filter(|&i| !stopped(i)).collect();
+    let cut = ranked.iter().enumerate().skip(keep).filter(|&(_, &i)| !stopped(i)).map(|(r, &i)| (i, r + 1)).collect();
+    (on, cut)
 }
 
-/// End a stage: the better half of the flows that began it carries on; a
-/// finished run stands on its best, and one the budget left waiting stops
-/// where it is.
+/// End a stage: of the better half of the flows that began it, those
+/// still training carry on ([`halve_stage`]); a finished run stands on its
+/// best, and one the budget left waiting stops where it is.
 fn halve(racers: &mut [Racer], at: &mut Position) {
     let round = at.round;
     let which = match round / ROUNDS {
@@ -609,15 +617,16 @@ fn halve(racers: &mut [Racer], at: &mut Position) {
         }
     }
     let entered = at.alive.len();
-    let (better, worse) = better_half(&at.alive, |i| racers[i].flow.best_validation_nll());
+    let (on, cut) = halve_stage(&at.alive, |i| racers[i].flow.best_validation_nll(), |i| racers[i].stopped.is_some());
+    // After a round's last stage a flow still training was paused by the
+    // budget, and the race's end says so.
     if (round + 1) % ROUNDS != 0 {
-        for (rank, &i) in worse.iter().enumerate() {
-            let rank = rank + 1 + better.len();
-            let why = format!("halved out after {stage} (ranked {rank} of the {entered} that began it)");
-            racers[i].stopped.get_or_insert(why);
+        for (i, rank) in cut {
+            racers[i].stopped =
+                Some(format!("halved out after {stage} (ranked {rank} of the {entered} that began it)"));
         }
     }
-    at.alive = better.into_iter().filter(|&i| racers[i].stopped.is_none()).collect();
+    at.alive = on;
     at.round += 1;
     at.next = 0;
 }
@@ -647,17 +656,22 @@ mod tests {
     }
 
     /// Successive halving ranks every flow that began the stage, early
-    /// stopped or not: of nine, the better five by NLL are kept (whether
-    /// they still train is the caller's matter), the other four go, best
-    /// first; ties keep the order they entered in.
+    /// stopped or not. Of nine, the better five by NLL hold the places: two
+    /// of them stopped early (flows 3 and 5), so only three carry on, and the
+    /// four below are cut, with their ranks, but for one that also stopped
+    /// (flow 7). Ties keep the order the flows entered in.
     #[test]
-    fn the_better_half_of_the_flows_that_began_a_stage_is_kept() {
+    fn early_stopped_flows_keep_their_rank_in_the_halving() {
         let nll = [5.0, 1.0, 4.0, 2.0, 6.0, 3.0, 9.0, 7.0, 8.0];
         let entered: Vec<usize> = (0..9).collect();
-        assert_eq!(better_half(&entered, |i| nll[i]), (vec![1, 3, 5, 2, 0], vec![4, 7, 8, 6]));
-        assert_eq!(better_half(&[4, 2], |i| nll[i]), (vec![2], vec![4]));
-        assert_eq!(better_half(&[6], |i| nll[i]), (vec![6], vec![]));
-        assert_eq!(better_half(&[0, 1, 2], |_| 0.0), (vec![0, 1], vec![2]));
+        let stopped = |i: usize| [3, 5, 7].contains(&i);
+        assert_eq!(halve_stage(&entered, |i| nll[i], stopped), (vec![1, 2, 0], vec![(4, 6), (8, 8), (6, 9)]));
+        assert_eq!(halve_stage(&entered, |i| nll[i], |_| false).0, vec![1, 3, 5, 2, 0]);
+        assert_eq!(halve_stage(&[4, 2], |i| nll[i], |_| false), (vec![2], vec![(4, 2)]));
+        assert_eq!(halve_stage(&[4, 2], |i| nll[i], |i| i == 2), (vec![], vec![(4, 2)]));
+        assert_eq!(halve_stage(&[6], |i| nll[i], |_| false), (vec![6], vec![]));
+        assert_eq!(halve_stage(&[0, 1, 2], |_| 0.0, |_| false), (vec![0, 1], vec![(2, 3)]));
+        assert_eq!(halve_stage(&[], |_| 0.0, |_| false), (vec![], vec![]));
     }
 
     /// 10 epochs in the first round, 30 in the first local round, then
