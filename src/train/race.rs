@@ -276,10 +276,11 @@ fn default_budget(table: &Racer, racers: &[Racer], epochs: usize) -> f64 {
 /// Epochs that successive halving trains over all `n` flows when none stops
 /// early: every flow to the first stage, the better half on to the second, ...
 fn race_epochs(n: usize, stages: &[usize; ROUNDS]) -> usize {
-    let (mut alive, mut before, mut epochs) = (n, 0, 0);
-    for &until in stages {
-        epochs += alive * (until - before);
-        (alive, before) = (alive.div_ceil(2), until);
+    let mut before = 0;
+    let mut epochs = 0;
+    for (stage, &until) in stages.iter().enumerate() {
+        epochs += places(n, stage) * (until - before);
+        before = until;
     }
     epochs
 }
@@ -576,30 +577,42 @@ pub(super) fn race_flows(
     Ok((racers, dims))
 }
 
-/// The end of a stage under successive halving's rule: ranks the flows
-/// that began it (`entered`) by validation NLL (`nll` of each), early-stopped
-/// ones (`stopped`) on their best among them, and keeps the better half
-/// (rounded up). Returns the flows of that half still training, which carry
-/// on, and the flows still training below it, each with its rank among the
-/// `entered`, which are cut. An early-stopped flow needs no more epochs, and
-/// its place is not handed down to a flow that trails it; it takes a place
-/// only from flows it beats.
+/// Flows that stage `stage` (0 for the first) of a round begun by `n`
+/// flows trains: all of them, then half as many (rounded up) each stage, as
+/// successive halving fixes them in advance.
+fn places(n: usize, stage: usize) -> usize {
+    (0..stage).fold(n, |places, _| places.div_ceil(2))
+}
+
+/// The end of a stage under successive halving's rule: ranks the round's
+/// flows still in the race (`ranked`: those that trained the stage and
+/// those that stopped early in it or before, on their best) by validation
+/// NLL (`nll` of each) and gives the next stage's `places` by rank. Returns
+/// the flows with a place still training, which carry on, and the flows
+/// still training without one, each with its rank, which are cut. An
+/// early-stopped flow needs no more epochs but keeps its rank, so it takes
+/// a place only from flows it beats, and a flow that trails it does not
+/// inherit its place; the places themselves do not shrink when flows stop,
+/// so flows that learn slowly at first are not cut only because quicker
+/// ones stopped.
 fn halve_stage(
-    entered: &[usize],
+    ranked: &[usize],
+    places: usize,
     nll: impl Fn(usize) -> f64,
     stopped: impl Fn(usize) -> bool,
 ) -> (Vec<usize>, Vec<(usize, usize)>) {
-    let mut ranked = entered.to_vec();
-    ranked.sort_by(|&a, &b| nll(a).total_cmp(&nll(b)));
-    let keep = entered.len().div_ceil(2);
-    let on = ranked[..keep].iter().copied().filter(|&i| !stopped(i)).collect();
-    let cut = ranked.iter().enumerate().skip(keep).filter(|&(_, &i)| !stopped(i)).map(|(r, &i)| (i, r + 1)).collect();
+    let mut order = ranked.to_vec();
+    order.sort_by(|&a, &b| nll(a).total_cmp(&nll(b)));
+    let keep = places.min(order.len());
+    let on = order[..keep].iter().copied().filter(|&i| !stopped(i)).collect();
+    let cut = order.iter().enumerate().skip(keep).filter(|&(_, &i)| !stopped(i)).map(|(r, &i)| (i, r + 1)).collect();
     (on, cut)
 }
 
-/// End a stage: of the better half of the flows that began it, those
-/// still training carry on ([`halve_stage`]); a finished run stands on its
-/// best, and one the budget left waiting stops where it is.
+/// End a stage: the next stage's places go by rank ([`halve_stage`]) among
+/// the round's flows that trained this stage or stopped early; a finished
+/// run stands on its best, and one the budget left waiting stops where it
+/// is.
 fn halve(racers: &mut [Racer], at: &mut Position) {
     let round = at.round;
     let which = match round / ROUNDS {
@@ -616,14 +629,20 @@ fn halve(racers: &mut [Racer], at: &mut Position) {
             r.stopped = Some(r.flow.why_finished());
         }
     }
-    let entered = at.alive.len();
-    let (on, cut) = halve_stage(&at.alive, |i| racers[i].flow.best_validation_nll(), |i| racers[i].stopped.is_some());
+    let begun = round - round % ROUNDS;
+    let round_flows: Vec<usize> = (0..racers.len()).filter(|&i| racers[i].first_stage == begun).collect();
+    let next = places(round_flows.len(), round % ROUNDS + 1);
+    // A flow cut before is paused, not finished; one that stopped early is
+    // finished and stays in the ranking on its best.
+    let ranked: Vec<usize> =
+        round_flows.into_iter().filter(|&i| at.alive.contains(&i) || racers[i].flow.finished()).collect();
+    let (on, cut) =
+        halve_stage(&ranked, next, |i| racers[i].flow.best_validation_nll(), |i| racers[i].stopped.is_some());
     // After a round's last stage a flow still training was paused by the
     // budget, and the race's end says so.
     if (round + 1) % ROUNDS != 0 {
         for (i, rank) in cut {
-            racers[i].stopped =
-                Some(format!("halved out after {stage} (ranked {rank} of the {entered} that began it)"));
+            racers[i].stopped = Some(format!("halved out after {stage} (ranked {rank} for {next} places)"));
         }
     }
     at.alive = on;
@@ -655,23 +674,34 @@ mod tests {
         assert_eq!(race_epochs(1, &[50, 100, 200]), 200);
     }
 
-    /// Successive halving ranks every flow that began the stage, early
-    /// stopped or not. Of nine, the better five by NLL hold the places: two
-    /// of them stopped early (flows 3 and 5), so only three carry on, and the
-    /// four below are cut, with their ranks, but for one that also stopped
-    /// (flow 7). Ties keep the order the flows entered in.
+    /// Nine, five, three: the places successive halving gives each stage.
     #[test]
-    fn early_stopped_flows_keep_their_rank_in_the_halving() {
+    fn each_stage_has_half_the_places_of_the_last() {
+        assert_eq!((0..4).map(|s| places(9, s)).collect::<Vec<_>>(), [9, 5, 3, 2]);
+        assert_eq!(places(1, 2), 1);
+    }
+
+    /// Nine flows began a round. After its first stage five places go by
+    /// rank: two early-stopped flows hold two of them (3 and 5), so three
+    /// carry on, and the flows still training below are cut with their
+    /// ranks (7 stopped and is not). After the second stage three places go
+    /// among the three still training and every early-stopped flow: flow 3
+    /// keeps its place, so of the three only the best two carry on, and the
+    /// third (0) is cut fourth, behind flow 3.
+    #[test]
+    fn early_stopped_flows_keep_their_rank_and_the_places_stay_fixed() {
         let nll = [5.0, 1.0, 4.0, 2.0, 6.0, 3.0, 9.0, 7.0, 8.0];
-        let entered: Vec<usize> = (0..9).collect();
+        let all: Vec<usize> = (0..9).collect();
         let stopped = |i: usize| [3, 5, 7].contains(&i);
-        assert_eq!(halve_stage(&entered, |i| nll[i], stopped), (vec![1, 2, 0], vec![(4, 6), (8, 8), (6, 9)]));
-        assert_eq!(halve_stage(&entered, |i| nll[i], |_| false).0, vec![1, 3, 5, 2, 0]);
-        assert_eq!(halve_stage(&[4, 2], |i| nll[i], |_| false), (vec![2], vec![(4, 2)]));
-        assert_eq!(halve_stage(&[4, 2], |i| nll[i], |i| i == 2), (vec![], vec![(4, 2)]));
-        assert_eq!(halve_stage(&[6], |i| nll[i], |_| false), (vec![6], vec![]));
-        assert_eq!(halve_stage(&[0, 1, 2], |_| 0.0, |_| false), (vec![0, 1], vec![(2, 3)]));
-        assert_eq!(halve_stage(&[], |_| 0.0, |_| false), (vec![], vec![]));
+        let (on, cut) = halve_stage(&all, places(9, 1), |i| nll[i], stopped);
+        assert_eq!((on.clone(), cut), (vec![1, 2, 0], vec![(4, 6), (8, 8), (6, 9)]));
+        let later = [0.5, 0.2, 2.5];
+        let at = |i: usize| on.iter().position(|&j| j == i).map_or(nll[i], |k| later[k]);
+        let ranked = [0, 1, 2, 3, 5, 7];
+        assert_eq!(halve_stage(&ranked, places(9, 2), at, stopped), (vec![2, 1], vec![(0, 4)]));
+        assert_eq!(halve_stage(&all, 5, |i| nll[i], |_| false).0, vec![1, 3, 5, 2, 0]);
+        assert_eq!(halve_stage(&[0, 1, 2], 2, |_| 0.0, |_| false), (vec![0, 1], vec![(2, 3)]));
+        assert_eq!(halve_stage(&[], 1, |_| 0.0, |_| false), (vec![], vec![]));
     }
 
     /// 10 epochs in the first round, 30 in the first local round, then

@@ -1,0 +1,54 @@
+#!/usr/bin/env python3
+"""A raced flow's best validation NLL (nats per vector) after a given epoch,
+measured outside the search: fits the flow with explicit settings (the
+configuration the search names, on the full schedule, so that the learning
+rate follows the race's) and `--log`, stops it with SIGTERM once the log
+passes EPOCH, and reads the best validation NLL up to EPOCH from the log.
+The log is in nats per dimension; the number of dimensions is read from
+`inspect` of the model that SIGTERM writes.
+
+Run: python3 scripts/quality/stage_value.py TIDEMARK_BIN SET_DIR EPOCH -- FIT_OPTIONS...
+e.g. ... sets/sentences 50 -- --kind flow --flow-dims 381 --hidden 256 --dropout 0.3 --noise 0.3
+         --weight-decay 1e-4 --epochs 200 --patience 10
+"""
+import json
+import os
+import re
+import signal
+import subprocess
+import sys
+import tempfile
+import time
+
+
+def main():
+    if "--" not in sys.argv or sys.argv.index("--") != 4:
+        sys.exit(__doc__)
+    binary, set_dir, epoch = sys.argv[1], sys.argv[2], int(sys.argv[3])
+    fit_args = sys.argv[5:]
+    with tempfile.TemporaryDirectory() as tmp:
+        model, log = os.path.join(tmp, "m.safetensors"), os.path.join(tmp, "log.jsonl")
+        cmd = [binary, "fit", os.path.join(set_dir, "train.npy"), "--val", os.path.join(set_dir, "val.npy"),
+               "-o", model, "--log", log, "-q", *fit_args]
+        fit = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+        while fit.poll() is None:
+            if os.path.exists(log) and sum(1 for _ in open(log)) >= epoch:
+                fit.send_signal(signal.SIGTERM)
+                break
+            time.sleep(0.5)
+        fit.wait()
+        entries = [json.loads(line) for line in open(log)]
+        if max(e["epoch"] for e in entries) < epoch:
+            sys.exit(f"the fit ended at epoch {entries[-1]['epoch']}, before epoch {epoch}")
+        shown = subprocess.run([binary, "inspect", model], capture_output=True, text=True, check=True).stdout
+        found = re.search(r"validation NLL\s+(-?[\d.]+) nats/vector \((-?[\d.]+) nats/dim\)", shown)
+        if not found:
+            sys.exit("inspect shows no validation NLL")
+        per_vector, per_dim = map(float, found.groups())
+        dims = round(per_vector / per_dim)
+        best = min(e["val_nll"] for e in entries if e["epoch"] <= epoch)
+        print(f"best validation NLL up to epoch {epoch}: {best * dims:.2f} nats/vector ({dims} dims)")
+
+
+if __name__ == "__main__":
+    main()
