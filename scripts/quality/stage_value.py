@@ -1,14 +1,14 @@
 #!/usr/bin/env python3
-"""A raced flow's best validation NLL (nats per vector) after a given epoch,
+"""A raced flow's best validation NLL (nats per vector) after given epochs,
 measured outside the search: fits the flow with explicit settings (the
 configuration the search names, on the full schedule, so that the learning
 rate follows the race's) and `--log`, stops it with SIGTERM once the log
-passes EPOCH, and reads the best validation NLL up to EPOCH from the log.
+passes the last of EPOCHS, and reads the best validation NLL up to each from the log.
 The log is in nats per dimension; the number of dimensions is read from
 `inspect` of the model that SIGTERM writes.
 
-Run: python3 scripts/quality/stage_value.py TIDEMARK_BIN SET_DIR EPOCH -- FIT_OPTIONS...
-e.g. ... sets/sentences 50 -- --kind flow --flow-dims 381 --hidden 256 --dropout 0.3 --noise 0.3
+Run: python3 scripts/quality/stage_value.py TIDEMARK_BIN SET_DIR EPOCHS -- FIT_OPTIONS...   (EPOCHS: 50 or 50,100)
+e.g. ... sets/sentences 50,100 -- --kind flow --flow-dims 381 --hidden 256 --dropout 0.3 --noise 0.3
          --weight-decay 1e-4 --epochs 200 --patience 10
 """
 import json
@@ -24,7 +24,9 @@ import time
 def main():
     if "--" not in sys.argv or sys.argv.index("--") != 4:
         sys.exit(__doc__)
-    binary, set_dir, epoch = sys.argv[1], sys.argv[2], int(sys.argv[3])
+    binary, set_dir = sys.argv[1], sys.argv[2]
+    epochs = sorted(int(e) for e in sys.argv[3].split(","))
+    epoch = epochs[-1]
     fit_args = sys.argv[5:]
     with tempfile.TemporaryDirectory() as tmp:
         model, log = os.path.join(tmp, "m.safetensors"), os.path.join(tmp, "log.jsonl")
@@ -46,8 +48,9 @@ def main():
             sys.exit("inspect shows no validation NLL")
         per_vector, per_dim = map(float, found.groups())
         dims = round(per_vector / per_dim)
-        best = min(e["val_nll"] for e in entries if e["epoch"] <= epoch)
-        print(f"best validation NLL up to epoch {epoch}: {best * dims:.2f} nats/vector ({dims} dims)")
+        for until in epochs:
+            best = min(e["val_nll"] for e in entries if e["epoch"] <= until)
+            print(f"best validation NLL up to epoch {until}: {best * dims:.2f} nats/vector ({dims} dims)")
 
 
 if __name__ == "__main__":
