@@ -328,9 +328,10 @@ fn rounds(candidates: &[Candidate], raced: &[&Candidate]) -> Result<String> {
     let items: Vec<(&str, RGBColor)> = names.iter().enumerate().map(|(i, n)| (n.as_str(), color(i))).collect();
     Ok(format!(
         "<figure>{svg}{}</figure>\n<p class=\"note\">Each flow's best validation NLL after each stage of successive \
-         halving; of the better half of the flows that began a stage, those still training carry on. Flows that join \
-         at a later round race around the best flow so far on a longer schedule. Kinds fitted once are flat lines; the \
-         chosen density is drawn thick. Lower is better.</p>\n",
+         halving; each stage has half the places of the last, which go by rank (an early-stopped flow on its best), and \
+         the flows with a place that still train carry on. Flows that join at a later round race around the best flow \
+         so far on a longer schedule. Kinds fitted once are flat lines; the chosen density is drawn thick. Lower is \
+         better.</p>\n",
         legend(&items)
     ))
 }

@@ -577,9 +577,9 @@ pub(super) fn race_flows(
     Ok((racers, dims))
 }
 
-/// Flows that stage `stage` (0 for the first) of a round begun by `n`
-/// flows trains: all of them, then half as many (rounded up) each stage, as
-/// successive halving fixes them in advance.
+/// The places of stage `stage` (0 for the first) of a round that `n`
+/// flows began: all of them, then half as many (rounded up) each stage,
+/// fixed in advance as successive halving fixes them.
 fn places(n: usize, stage: usize) -> usize {
     (0..stage).fold(n, |places, _| places.div_ceil(2))
 }
