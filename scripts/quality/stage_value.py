@@ -3,7 +3,8 @@
 measured outside the search: fits the flow with explicit settings (the
 configuration the search names, on the full schedule, so that the learning
 rate follows the race's) and `--log`, stops it with SIGTERM once the log
-passes the last of EPOCHS, and reads the best validation NLL up to each from the log.
+passes the last of EPOCHS, and reads the best validation NLL up to each
+from the log.
 The log is in nats per dimension; the number of dimensions is read from
 `inspect` of the model that SIGTERM writes.
 
@@ -32,7 +33,8 @@ def main():
         model, log = os.path.join(tmp, "m.safetensors"), os.path.join(tmp, "log.jsonl")
         cmd = [binary, "fit", os.path.join(set_dir, "train.npy"), "--val", os.path.join(set_dir, "val.npy"),
                "-o", model, "--log", log, "-q", *fit_args]
-        fit = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+        # stderr is left to the terminal: an unread pipe could fill and stall the fit, and a failed fit says why.
+        fit = subprocess.Popen(cmd, stdout=subprocess.DEVNULL)
         while fit.poll() is None:
             if os.path.exists(log) and sum(1 for _ in open(log)) >= epoch:
                 fit.send_signal(signal.SIGTERM)
