@@ -15,7 +15,7 @@ against each outlier set for
               with its held-out figure when it is the chosen one.
 
 Run: python3 scripts/quality/compare.py TIDEMARK_BIN [DIR] [--sets a,b] [--extra-fit-args "--kind mixture"]
-           [--json FILE] [--md FILE]
+           [--json FILE] [--md FILE] [--reuse EARLIER.json] [--fitted]
 Writes DIR/results.json (after every set, so an interrupted run keeps what
 it measured) and prints a markdown table (also to --md FILE).
 """
@@ -73,14 +73,17 @@ def sk_mixture(train, val):
     return gm.score_samples, f"K={k}, reg={reg:g} x mean var"
 
 
-def tidemark(binary, d, extra, run=subprocess.run):
+def tidemark(binary, d, extra, run=subprocess.run, fitted=False):
     """Default (or `extra`) fit of set folder d; its held-out log-likelihood per file name, wall seconds and
-    inspect metadata. `run` stands in for subprocess.run (a caller may add a timeout)."""
+    inspect metadata. `run` stands in for subprocess.run (a caller may add a timeout). With `fitted` the model
+    already in d is scored as it is (a search finished with `fit --resume`), and its wall time is unknown (None)."""
     model = os.path.join(d, "model" + ("_" + "_".join(x.strip("-") for x in extra) if extra else "") + ".safetensors")
-    t = time.time()
-    run([binary, "fit", os.path.join(d, "train.npy"), "--val", os.path.join(d, "val.npy"), "-o", model, "--force",
-         "-q", *extra], check=True)
-    seconds = time.time() - t
+    seconds = None
+    if not fitted:
+        t = time.time()
+        run([binary, "fit", os.path.join(d, "train.npy"), "--val", os.path.join(d, "val.npy"), "-o", model,
+             "--force", "-q", *extra], check=True)
+        seconds = time.time() - t
     meta = json.loads(run([binary, "inspect", model, "--json"], check=True, capture_output=True, text=True).stdout)
 
     def ll(name):
@@ -103,6 +106,9 @@ def main():
     p.add_argument("--reuse", default="",
                    help="an earlier results JSON on the same sets: take its Gaussian and scikit-learn mixture rows "
                         "instead of refitting them (only tidemark changed)")
+    p.add_argument("--fitted", action="store_true",
+                   help="score the models already in the set folders instead of fitting them (e.g. a search that was "
+                        "interrupted and finished with `tidemark fit ... --resume`); their wall times are not known")
     args = p.parse_args()
     earlier = json.load(open(args.reuse)) if args.reuse else {}
 
@@ -146,7 +152,7 @@ def main():
             sk, how = sk_mixture(cut(train), cut(val))
             record("sk_mixture", lambda x: sk(cut(x)), how=how, seconds=time.time() - t0)
         for extra in [[]] + [e.split() for e in args.extra]:
-            ll, seconds, meta = tidemark(args.binary, d, extra)
+            ll, seconds, meta = tidemark(args.binary, d, extra, fitted=args.fitted)
             files = {"test": ll("test"), **{k: ll(f"ood_{k}") for k in oods}}
             key = "tidemark" + (" " + " ".join(extra) if extra else "")
             row[key] = {

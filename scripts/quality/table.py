@@ -19,7 +19,9 @@ def markdown(rows, keys=("gaussian", "sk_mixture", "tidemark")):
                 continue
             aucs = ", ".join(f"{kk[6:]} {v:.3f}" for kk, v in r.items() if kk.startswith("auroc_"))
             more = f"; {r['how']}, {r['seconds']:.0f} s" if "how" in r else ""
-            more = f"; chose {r['kind']}, fit {r['seconds']:.0f} s" if "kind" in r else more
+            if "kind" in r:
+                took = "resumed, time not known" if r["seconds"] is None else f"{r['seconds']:.0f} s"
+                more = f"; chose {r['kind']}, fit {took}"
             cells.append(f"{r['test_ll']:.2f} ({aucs}){more}")
         ex = ""
         if "exact" in row:
