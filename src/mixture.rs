@@ -8,16 +8,26 @@
 //! per component for a whole block of rows. The covariance update and the
 //! log-likelihood follow the usual full-covariance EM; a ridge is added to
 //! every covariance's diagonal.
+//!
+//! The E-step and evaluation run blocks of rows in parallel, the M-step
+//! components, on the rayon pool the caller installs; every row and every
+//! component is computed as one thread would, so the result does not depend
+//! on the number of threads.
 
 use crate::linalg::{log_sum_exp, matmul, View};
 use rand::rngs::StdRng;
 use rand::{Rng, SeedableRng};
 use rand_distr::{Distribution, StandardNormal};
+use rayon::prelude::*;
 
 const HALF_LN_2PI: f64 = 0.918_938_533_204_672_8;
 
 /// Rows per block when evaluating, to bound scratch memory.
 const BLOCK: usize = 1024;
+/// Training rows whose covariance terms one product sums in the M-step: bounds
+/// each thread's scratch (this many rows x dim), and is above every training
+/// set of the quality suite, so their fits are those of one product.
+const COVARIANCE_BLOCK: usize = 16_384;
 
 /// A fitted mixture over `dim`-dimensional vectors.
 #[derive(Clone, Debug, PartialEq)]
@@ -100,31 +110,55 @@ impl Mixture {
     /// As [`Mixture::evaluate`], and the log of each group's share of the
     /// density, where component `k` belongs to group `group_of[k]`.
     pub fn evaluate_grouped(&self, u: &[f64], rows: usize, group_of: &[usize], groups: usize) -> MixtureEvaluation {
-        let (d, kk) = (self.dim, self.components());
+        let parts = self.blocks(u, rows, |u, n| self.evaluate_block(u, n, group_of, groups));
+        let mut e = MixtureEvaluation::default();
+        for p in parts {
+            e.log_density.extend(p.log_density);
+            e.component.extend(p.component);
+            e.probability.extend(p.probability);
+            e.mahalanobis_sq.extend(p.mahalanobis_sq);
+            e.group_log_joint.extend(p.group_log_joint);
+        }
+        e
+    }
+
+    /// `f` on every block of [`BLOCK`] rows of `u`, in parallel, the results
+    /// in row order.
+    fn blocks<T: Send>(&self, u: &[f64], rows: usize, f: impl Fn(&[f64], usize) -> T + Sync) -> Vec<T> {
+        let d = self.dim;
+        (0..rows.div_ceil(BLOCK))
+            .into_par_iter()
+            .map(|b| {
+                let (start, n) = (b * BLOCK, BLOCK.min(rows - b * BLOCK));
+                f(&u[start * d..(start + n) * d], n)
+            })
+            .collect()
+    }
+
+    /// [`Mixture::evaluate_grouped`] of one block of `n` rows.
+    fn evaluate_block(&self, u: &[f64], n: usize, group_of: &[usize], groups: usize) -> MixtureEvaluation {
+        let kk = self.components();
         let mut e = MixtureEvaluation::default();
         let mut members: Vec<Vec<f64>> = vec![Vec::new(); groups];
-        for start in (0..rows).step_by(BLOCK) {
-            let n = BLOCK.min(rows - start);
-            let (mut lp, maha) = self.log_gaussians(&u[start * d..(start + n) * d], n);
-            for r in 0..n {
-                let row = &mut lp[r * kk..(r + 1) * kk];
-                for (v, w) in row.iter_mut().zip(&self.log_weights) {
-                    *v += w;
+        let (mut lp, maha) = self.log_gaussians(u, n);
+        for r in 0..n {
+            let row = &mut lp[r * kk..(r + 1) * kk];
+            for (v, w) in row.iter_mut().zip(&self.log_weights) {
+                *v += w;
+            }
+            let total = log_sum_exp(row);
+            let (best, top) =
+                row.iter().enumerate().fold((0, f64::NEG_INFINITY), |b, (k, &v)| if v > b.1 { (k, v) } else { b });
+            e.log_density.push(total);
+            e.component.push(best);
+            e.probability.push((top - total).exp());
+            e.mahalanobis_sq.push(maha[r * kk + best]);
+            if groups > 0 {
+                members.iter_mut().for_each(Vec::clear);
+                for (&v, &g) in row.iter().zip(group_of) {
+                    members[g].push(v);
                 }
-                let total = log_sum_exp(row);
-                let (best, top) =
-                    row.iter().enumerate().fold((0, f64::NEG_INFINITY), |b, (k, &v)| if v > b.1 { (k, v) } else { b });
-                e.log_density.push(total);
-                e.component.push(best);
-                e.probability.push((top - total).exp());
-                e.mahalanobis_sq.push(maha[r * kk + best]);
-                if groups > 0 {
-                    members.iter_mut().for_each(Vec::clear);
-                    for (&v, &g) in row.iter().zip(group_of) {
-                        members[g].push(v);
-                    }
-                    e.group_log_joint.extend(members.iter().map(|m| log_sum_exp(m)));
-                }
+                e.group_log_joint.extend(members.iter().map(|m| log_sum_exp(m)));
             }
         }
         e
@@ -221,45 +255,70 @@ impl Fitted {
     }
 }
 
+/// One component's M-step result.
+struct Component {
+    log_weight: f64,
+    mean: Vec<f64>,
+    covariance: Vec<f64>,
+    precision_cholesky: Vec<f64>,
+}
+
+/// Weight, mean, covariance (ridge added) and precision factor of component
+/// `k` from responsibilities (`rows x K`); `None` when the covariance is not
+/// positive definite.
+fn component(u: &[f64], rows: usize, d: usize, resp: &[f64], k: usize, ridge: f64) -> Option<Component> {
+    let kk = resp.len() / rows;
+    // Tiny floor on component mass, as is common practice, so that an empty
+    // component does not divide by zero.
+    let floor = 10.0 * f64::EPSILON;
+    let nk: f64 = (0..rows).map(|r| resp[r * kk + k]).sum::<f64>() + floor;
+    let mut mean = vec![0.0f64; d];
+    for r in 0..rows {
+        let p = resp[r * kk + k];
+        for (m, &v) in mean.iter_mut().zip(&u[r * d..(r + 1) * d]) {
+            *m += p * v;
+        }
+    }
+    mean.iter_mut().for_each(|m| *m /= nk);
+    let mut cov = vec![0.0f64; d * d];
+    let mut scaled = vec![0.0f64; rows.min(COVARIANCE_BLOCK) * d];
+    for start in (0..rows).step_by(COVARIANCE_BLOCK) {
+        let n = COVARIANCE_BLOCK.min(rows - start);
+        for r in 0..n {
+            let s = resp[(start + r) * kk + k].sqrt();
+            let row = &u[(start + r) * d..(start + r + 1) * d];
+            for ((out, &v), m) in scaled[r * d..(r + 1) * d].iter_mut().zip(row).zip(&mean) {
+                *out = s * (v - m);
+            }
+        }
+        let scaled = &scaled[..n * d];
+        matmul(&mut cov, d, start > 0, View::transposed(scaled, n, d), View::rows(scaled, n, d, d));
+    }
+    for i in 0..d {
+        for j in 0..d {
+            cov[i * d + j] /= nk;
+        }
+        cov[i * d + i] += ridge;
+    }
+    let precision_cholesky = precision_cholesky_of(&cov, d)?;
+    Some(Component { log_weight: (nk / rows as f64).ln(), mean, covariance: cov, precision_cholesky })
+}
+
 /// Weights, means and covariances from responsibilities (`rows x K`), the
 /// M-step; then the mixture that they define.
 pub fn maximise(u: &[f64], rows: usize, d: usize, resp: &[f64], ridge: f64) -> Option<Fitted> {
     let kk = resp.len() / rows;
+    let parts: Vec<Component> =
+        (0..kk).into_par_iter().map(|k| component(u, rows, d, resp, k, ridge)).collect::<Option<_>>()?;
     let mut log_weights = Vec::with_capacity(kk);
-    let mut means = vec![0.0f64; kk * d];
+    let mut means = Vec::with_capacity(kk * d);
     let mut precision_cholesky = Vec::with_capacity(kk * d * d);
     let mut covariances = Vec::with_capacity(kk * d * d);
-    let mut scaled = vec![0.0f64; rows * d];
-    // Tiny floor on component mass, as is common practice, so that an empty
-    // component does not divide by zero.
-    let floor = 10.0 * f64::EPSILON;
-    for k in 0..kk {
-        let nk: f64 = (0..rows).map(|r| resp[r * kk + k]).sum::<f64>() + floor;
-        let mean = &mut means[k * d..(k + 1) * d];
-        for r in 0..rows {
-            let p = resp[r * kk + k];
-            for (m, &v) in mean.iter_mut().zip(&u[r * d..(r + 1) * d]) {
-                *m += p * v;
-            }
-        }
-        mean.iter_mut().for_each(|m| *m /= nk);
-        for r in 0..rows {
-            let s = resp[r * kk + k].sqrt();
-            for j in 0..d {
-                scaled[r * d + j] = s * (u[r * d + j] - mean[j]);
-            }
-        }
-        let mut cov = vec![0.0f64; d * d];
-        matmul(&mut cov, d, false, View::transposed(&scaled, rows, d), View::rows(&scaled, rows, d, d));
-        for i in 0..d {
-            for j in 0..d {
-                cov[i * d + j] /= nk;
-            }
-            cov[i * d + i] += ridge;
-        }
-        precision_cholesky.extend(precision_cholesky_of(&cov, d)?);
-        covariances.extend(cov);
-        log_weights.push((nk / rows as f64).ln());
+    for c in parts {
+        log_weights.push(c.log_weight);
+        means.extend(c.mean);
+        precision_cholesky.extend(c.precision_cholesky);
+        covariances.extend(c.covariance);
     }
     // Renormalise: the floor may have added a hair of mass.
     let total = log_sum_exp(&log_weights);
@@ -275,17 +334,27 @@ pub fn responsibilities(m: &Mixture, u: &[f64], rows: usize) -> Vec<f64> {
 /// Responsibilities (`rows x K`) and the mean log-likelihood: the E-step.
 fn expect(m: &Mixture, u: &[f64], rows: usize) -> (Vec<f64>, f64) {
     let kk = m.components();
-    let (mut lp, _) = m.log_gaussians(u, rows);
-    let mut total = 0.0;
-    for row in lp.chunks_mut(kk) {
-        for (v, w) in row.iter_mut().zip(&m.log_weights) {
-            *v += w;
+    let blocks = m.blocks(u, rows, |u, n| {
+        let (mut lp, _) = m.log_gaussians(u, n);
+        let mut norms = Vec::with_capacity(n);
+        for row in lp.chunks_mut(kk) {
+            for (v, w) in row.iter_mut().zip(&m.log_weights) {
+                *v += w;
+            }
+            let norm = log_sum_exp(row);
+            norms.push(norm);
+            row.iter_mut().for_each(|v| *v = (*v - norm).exp());
         }
-        let norm = log_sum_exp(row);
-        total += norm;
-        row.iter_mut().for_each(|v| *v = (*v - norm).exp());
+        (lp, norms)
+    });
+    let mut resp = Vec::with_capacity(rows * kk);
+    let mut total = 0.0;
+    for (lp, norms) in blocks {
+        resp.extend(lp);
+        // Summed row by row in order, as one thread would.
+        total = norms.iter().fold(total, |t, n| t + n);
     }
-    (lp, total / rows as f64)
+    (resp, total / rows as f64)
 }
 
 /// EM from initial responsibilities: the M-step on them, then up to
@@ -467,6 +536,68 @@ mod tests {
     }
 
     /// EM on two well-separated clusters finds them from a k-means++ start.
+    /// Rows drawn around two centres in `d` dims (seeded).
+    fn two_clusters(rows: usize, d: usize, seed: u64) -> Vec<f64> {
+        let mut rng = StdRng::seed_from_u64(seed);
+        (0..rows * d)
+            .map(|i| {
+                let shift = if (i / d) % 3 == 0 { 4.0 } else { -1.0 };
+                let noise: f64 = StandardNormal.sample(&mut rng);
+                shift * ((i % d) as f64 / d as f64) + noise
+            })
+            .collect()
+    }
+
+    /// EM and evaluation give bit-identical results on one thread and on
+    /// several: rows and components are computed as one thread would, only
+    /// in parallel.
+    #[test]
+    fn em_and_evaluation_do_not_depend_on_the_thread_count() {
+        let (rows, d) = (3000, 5);
+        let u = two_clusters(rows, d, 7);
+        let run = |threads: usize| {
+            let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().unwrap();
+            pool.install(|| {
+                let init = kmeans_start(&u, rows, d, &[1.0; 5], 3, 1);
+                let (fitted, report) = em(&u, rows, d, &init, 1e-6, 50, 1e-9).unwrap();
+                let e = fitted.mixture.evaluate(&u, rows);
+                (fitted.mixture, fitted.covariances, report.mean_log_likelihood, e.log_density, e.mahalanobis_sq)
+            })
+        };
+        let one = run(1);
+        let three = run(3);
+        assert_eq!(one.0, three.0);
+        assert_eq!(one.1, three.1);
+        assert_eq!(one.2.to_bits(), three.2.to_bits());
+        assert_eq!(one.3, three.3);
+        assert_eq!(one.4, three.4);
+    }
+
+    /// The M-step's covariance, summed over blocks of rows when there are
+    /// more than one product takes, equals the weighted covariance
+    /// sum_r p_r (u_r - mu)(u_r - mu)^T / sum_r p_r computed directly
+    /// (the M-step of full-covariance EM).
+    #[test]
+    fn the_blocked_covariance_is_the_weighted_covariance() {
+        let (rows, d) = (COVARIANCE_BLOCK + 1500, 3);
+        let u = two_clusters(rows, d, 11);
+        let resp: Vec<f64> = (0..rows).flat_map(|r| if r % 3 == 0 { [0.9, 0.1] } else { [0.2, 0.8] }).collect();
+        let fitted = maximise(&u, rows, d, &resp, 0.0).unwrap();
+        for k in 0..2 {
+            let p: Vec<f64> = (0..rows).map(|r| resp[r * 2 + k]).collect();
+            let n: f64 = p.iter().sum();
+            let mean: Vec<f64> = (0..d).map(|j| (0..rows).map(|r| p[r] * u[r * d + j]).sum::<f64>() / n).collect();
+            for i in 0..d {
+                for j in 0..d {
+                    let direct: f64 =
+                        (0..rows).map(|r| p[r] * (u[r * d + i] - mean[i]) * (u[r * d + j] - mean[j])).sum::<f64>() / n;
+                    let got = fitted.covariances[k * d * d + i * d + j];
+                    assert!((got - direct).abs() <= 1e-10 * direct.abs().max(1.0), "{k} {i} {j}: {got} vs {direct}");
+                }
+            }
+        }
+    }
+
     #[test]
     fn em_recovers_two_separated_clusters() {
         let mut rng = StdRng::seed_from_u64(3);

@@ -75,6 +75,9 @@ impl Stored for MixtureDensity {
 struct MixtureEvaluator<'a> {
     density: &'a MixtureDensity,
     u: Vec<f64>,
+    /// Runs the blocks of rows (one thread when scoring is asked for one).
+    pool: rayon::ThreadPool,
+    threads: usize,
 }
 
 impl Evaluate for MixtureEvaluator<'_> {
@@ -83,7 +86,7 @@ impl Evaluate for MixtureEvaluator<'_> {
         self.u.clear();
         self.u.extend(u[..rows * m.mixture.dim].iter().map(|&v| v as f64));
         let classes = m.log_priors.len();
-        let e = m.mixture.evaluate_grouped(&self.u, rows, &m.component_class, classes);
+        let e = self.pool.install(|| m.mixture.evaluate_grouped(&self.u, rows, &m.component_class, classes));
         // ln p(u | c) = ln [pi_c p(u | c)] - ln pi_c; the posterior by Bayes' rule.
         for (joint, total) in e.group_log_joint.chunks(classes.max(1)).zip(&e.log_density) {
             let (best, top) = argmax(joint);
@@ -98,6 +101,10 @@ impl Evaluate for MixtureEvaluator<'_> {
         out.mahalanobis_sq.extend(&e.mahalanobis_sq);
         out.component.extend(e.component);
         out.component_probability.extend(e.probability);
+    }
+
+    fn pool(&self) -> Option<&rayon::ThreadPool> {
+        (self.threads > 1).then_some(&self.pool)
     }
 }
 
@@ -114,8 +121,10 @@ impl Density for MixtureDensity {
         self.mixture.components()
     }
 
-    fn evaluator(&self, _threads: usize, _cap: usize) -> Box<dyn Evaluate + '_> {
-        Box::new(MixtureEvaluator { density: self, u: Vec::new() })
+    fn evaluator(&self, threads: usize, _cap: usize) -> Box<dyn Evaluate + '_> {
+        let threads = threads.max(1);
+        let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().expect("threads start");
+        Box::new(MixtureEvaluator { density: self, u: Vec::new(), pool, threads })
     }
 
     fn sample(&self, n: usize, rng: &mut StdRng) -> Vec<f32> {

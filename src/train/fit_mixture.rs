@@ -332,6 +332,8 @@ pub(super) fn fit_mixture(
         tried: Vec::new(),
         seen: Vec::new(),
     };
+    // EM's steps run on this pool (see crate::mixture); the result is the same for any thread count.
+    let pool = rayon::ThreadPoolBuilder::new().num_threads(l.settings.threads.max(1)).build().expect("threads start");
     let largest = groups.iter().map(|g| g.n).max().unwrap_or(0);
     let ladder = component_counts(largest, d, asked);
     let mut since_best = 0;
@@ -347,7 +349,7 @@ pub(super) fn fit_mixture(
         if out_of_time(&search) {
             break;
         }
-        match search.try_count(k) {
+        match pool.install(|| search.try_count(k)) {
             None => break, // every class is at the most its rows allow
             Some(true) => since_best = 0,
             Some(false) => since_best += 1,
@@ -363,7 +365,7 @@ pub(super) fn fit_mixture(
                 if out_of_time(&search) {
                     break;
                 }
-                search.try_count(c);
+                pool.install(|| search.try_count(c));
             }
         }
     }
