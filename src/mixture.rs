@@ -29,6 +29,13 @@ const BLOCK: usize = 1024;
 /// set of the quality suite, so their fits are those of one product.
 const COVARIANCE_BLOCK: usize = 16_384;
 
+/// The pool to install around this module's parallel steps: `threads`
+/// workers (at least one), so that a run asked for one thread uses one
+/// rather than rayon's global pool.
+pub fn pool(threads: usize) -> rayon::ThreadPool {
+    rayon::ThreadPoolBuilder::new().num_threads(threads.max(1)).build().expect("threads start")
+}
+
 /// A fitted mixture over `dim`-dimensional vectors.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Mixture {
@@ -556,8 +563,7 @@ mod tests {
         let (rows, d) = (3000, 5);
         let u = two_clusters(rows, d, 7);
         let run = |threads: usize| {
-            let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().unwrap();
-            pool.install(|| {
+            pool(threads).install(|| {
                 let init = kmeans_start(&u, rows, d, &[1.0; 5], 3, 1);
                 let (fitted, report) = em(&u, rows, d, &init, 1e-6, 50, 1e-9).unwrap();
                 let e = fitted.mixture.evaluate(&u, rows);

@@ -122,9 +122,7 @@ impl Density for MixtureDensity {
     }
 
     fn evaluator(&self, threads: usize, _cap: usize) -> Box<dyn Evaluate + '_> {
-        let threads = threads.max(1);
-        let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().expect("threads start");
-        Box::new(MixtureEvaluator { density: self, u: Vec::new(), pool, threads })
+        Box::new(MixtureEvaluator { density: self, u: Vec::new(), pool: crate::mixture::pool(threads), threads })
     }
 
     fn sample(&self, n: usize, rng: &mut StdRng) -> Vec<f32> {

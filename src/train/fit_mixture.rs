@@ -333,7 +333,7 @@ pub(super) fn fit_mixture(
         seen: Vec::new(),
     };
     // EM's steps run on this pool (see crate::mixture); the result is the same for any thread count.
-    let pool = rayon::ThreadPoolBuilder::new().num_threads(l.settings.threads.max(1)).build().expect("threads start");
+    let pool = crate::mixture::pool(l.settings.threads);
     let largest = groups.iter().map(|g| g.n).max().unwrap_or(0);
     let ladder = component_counts(largest, d, asked);
     let mut since_best = 0;
